@@ -1,0 +1,5 @@
+import sys
+
+from vault.cli import main
+
+sys.exit(main())

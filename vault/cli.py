@@ -1,0 +1,233 @@
+"""The `mindward` command line: parse, make one library call, print.
+
+Every command takes --json. Errors are one line on stderr (and a JSON object
+on stdout under --json) with an exit code from the table in docs/cli.md;
+no traceback for bad input. Set MINDWARD_DEBUG=1 to see tracebacks of bugs.
+"""
+
+from __future__ import annotations
+
+import getpass
+import json
+import os
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Annotated, Any
+
+import click
+import typer
+
+import vault
+from vault.errors import EXIT_CODES, AuthenticationFailed, VaultError
+
+app = typer.Typer(
+    name="mindward", no_args_is_help=True, add_completion=False,
+    pretty_exceptions_enable=False,
+    help="Keep EEG recordings and the preferences derived from them under participants' consent.",
+    epilog="Exit codes: " + "; ".join(f"{k} {v.split(':')[0]}" for k, v in EXIT_CODES.items()),
+)
+audit_app = typer.Typer(no_args_is_help=True, help="Read, prove and verify the audit log.")
+app.add_typer(audit_app, name="audit")
+
+VaultOpt = Annotated[Path, typer.Option(
+    "--vault", envvar="MINDWARD_VAULT", help="Vault directory (or MINDWARD_VAULT).")]
+MemberOpt = Annotated[str, typer.Option(
+    "--member", envvar="MINDWARD_MEMBER", help="Act as this member (or MINDWARD_MEMBER).")]
+JsonOpt = Annotated[bool, typer.Option("--json", help="Print machine-readable JSON.")]
+KeyOpt = Annotated[str | None, typer.Option(
+    "--key", help="The vault's public key (hex) as you hold it, e.g. from 'mindward info'.")]
+
+CAUTION = ("Caution: this vault holds special-category data (GDPR Art. 9). Keep the passphrase "
+           "and any backups safe; lost passphrases cannot be recovered. Follow your ethics "
+           "board's, data-protection officer's and local law's rules.")
+
+
+def _emit(as_json: bool, payload: Any, text: str | Callable[[], str]) -> None:
+    if as_json:
+        typer.echo(json.dumps(payload, indent=2, sort_keys=True, default=str))
+    else:
+        typer.echo(text() if callable(text) else text)
+
+
+def _passphrase(prompt: str = "Passphrase: ", *, env: str = "MINDWARD_PASSPHRASE",
+                confirm: bool = False) -> str:
+    value = os.environ.get(env)
+    if value is not None:
+        return value
+    if not sys.stdin.isatty():
+        raise AuthenticationFailed(f"no passphrase: set {env} or run in a terminal")
+    first = getpass.getpass(prompt)
+    if confirm and getpass.getpass("Repeat: ") != first:
+        raise AuthenticationFailed("the two passphrases differ")
+    return first
+
+
+def _open(path: Path, member: str) -> vault.Vault:
+    return vault.Vault.open(path, _passphrase(), member=member)
+
+
+@app.command()
+def init(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Create a new, empty vault; you become its first steward."""
+    with vault.Vault.init(path, _passphrase(confirm=True), member=member) as v:
+        facts = v.info()
+    _emit(as_json, facts, lambda: (
+        f"Created vault {facts['vault_id']} at {facts['path']}\n"
+        f"Signing key fingerprint: {facts['fingerprint']}\n"
+        f"Public key: {facts['public_key']}\n"
+        "Keep a copy of the public key outside the vault: auditors verify against it.\n"
+        + CAUTION))
+
+
+@app.command()
+def info(path: VaultOpt, as_json: JsonOpt = False) -> None:
+    """Public facts about a vault: id, signing key fingerprint, counts. No passphrase needed."""
+    facts = vault.describe(path)
+    _emit(as_json, facts, lambda: "\n".join(
+        f"{k.replace('_', ' ')}: {v}" for k, v in facts.items() if k != "latest_tree_head"))
+
+
+@app.command()
+def rekey(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """New master key and passphrase (MINDWARD_NEW_PASSPHRASE); re-wraps keys, not data."""
+    with _open(path, member) as v:
+        new = _passphrase("New passphrase: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
+        result = v.rekey(new)
+    _emit(as_json, result, lambda: (
+        f"Rekeyed: {result['keys_rewrapped']} participant keys re-wrapped under a new master key."
+        + (f" {result['member_slots_dropped']} other members must be re-added."
+           if result["member_slots_dropped"] else "")))
+
+
+@app.command()
+def verify(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Verify the audit log and authenticate every stored blob (needs a passphrase)."""
+    with _open(path, member) as v:
+        result = v.verify()
+    _emit(as_json, result, lambda: (
+        f"audit log: {'ok' if result['audit']['ok'] else 'FAILED: ' + str(result['audit']['problem'])}"
+        f"\nblobs: {result['blobs_checked']} checked, {len(result['blobs_failed'])} failed"))
+    if not result["ok"]:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
+@audit_app.command("verify")
+def audit_verify(
+    path: VaultOpt, key: KeyOpt = None, as_json: JsonOpt = False,
+    head: Annotated[list[Path] | None, typer.Option(
+        "--head", help="An earlier signed tree head (JSON file) that the log must still contain.")
+    ] = None,
+) -> None:
+    """Recompute the whole audit log against its signed tree heads. No passphrase needed."""
+    trusted = [vault.read_tree_head(_read_text(p)) for p in head or []]
+    public = vault.parse_public_key(key) if key else None
+    report = vault.verify_audit(path, public_key=public, trusted=trusted)
+    _emit(as_json, report.as_dict(), lambda: (
+        f"audit log ok: {report.entries} entries, {report.heads_checked} signed heads match"
+        if report.ok else f"audit log FAILED: {report.problem}")
+        + "".join(f"\nnote: {n}" for n in report.notes))
+    if not report.ok:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
+@audit_app.command("show")
+def audit_show(
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    start: Annotated[int, typer.Option(min=0, help="First entry to show.")] = 0,
+    limit: Annotated[int, typer.Option(min=1, help="How many entries.")] = 50,
+) -> None:
+    """Show audit entries (actor, action, purpose, random ids, decision, reasons)."""
+    with _open(path, member) as v:
+        entries = v.audit_entries(start, limit)
+    _emit(as_json, entries, lambda: "\n".join(
+        f"{e['seq']:>6}  {e.get('at', '')}  {e.get('actor', '')}  {e.get('action', '')}  "
+        f"{e.get('decision', '')}" + (f"  {','.join(e['reasons'])}" if e.get("reasons") else "")
+        for e in entries) or "(no entries)")
+
+
+@audit_app.command("prove")
+def audit_prove(
+    seq: Annotated[int, typer.Argument(min=0, help="Entry number.")],
+    path: VaultOpt, as_json: JsonOpt = False,
+) -> None:
+    """Inclusion proof of entry N under the latest signed tree head (JSON). No passphrase."""
+    _emit(True, vault.prove(path, seq), "")
+    del as_json  # a proof is always JSON
+
+
+@audit_app.command("check-proof")
+def audit_check_proof(
+    proof: Annotated[Path, typer.Argument(help="A proof file written by 'mindward audit prove'.")],
+    key: Annotated[str, typer.Option("--key", help="The vault's public key (hex).")],
+    as_json: JsonOpt = False,
+) -> None:
+    """Check an inclusion proof offline with the vault's public key alone."""
+    try:
+        bundle = json.loads(_read_text(proof))
+    except ValueError as exc:
+        raise vault.InvalidInput(f"{proof} is not a JSON proof") from exc
+    ok = isinstance(bundle, dict) and vault.verify_proof(bundle, vault.parse_public_key(key))
+    _emit(as_json, {"ok": ok}, "proof ok" if ok else "proof FAILED")
+    if not ok:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
+@audit_app.command("head")
+def audit_head(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Sign and print the current tree head; keep it to detect later rewriting."""
+    with _open(path, member) as v:
+        head = v.sign_head()
+    _emit(True, head.to_dict(), "")
+    del as_json  # a tree head is always JSON
+
+
+@app.command()
+def bench(
+    as_json: JsonOpt = False,
+    quick: Annotated[bool, typer.Option("--quick", help="Small sizes (a smoke run).")] = False,
+) -> None:
+    """Measure the vault against limits measured in the same run; prints ratios."""
+    from vault.bench import format_report, run_all
+
+    report = run_all(quick=quick)
+    _emit(as_json, report, lambda: format_report(report))
+
+
+def _read_text(path: Path) -> str:
+    try:
+        return path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise vault.NotFound(f"cannot read {path}") from exc
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = sys.argv[1:] if argv is None else argv
+    try:
+        result = app(args=args, prog_name="mindward", standalone_mode=False)
+    except VaultError as exc:
+        return _error(exc.message, exc.exit_code, "--json" in args)
+    except click.exceptions.Exit as exc:
+        return exc.exit_code
+    except click.exceptions.Abort:
+        return _error("aborted", 130, "--json" in args)
+    except click.ClickException as exc:
+        exc.show()
+        return exc.exit_code
+    except Exception as exc:  # a bug: say so in one line, never with data values
+        if os.environ.get("MINDWARD_DEBUG"):
+            raise
+        return _error(f"internal error ({type(exc).__name__}); rerun with MINDWARD_DEBUG=1 "
+                      "and report it", 1, "--json" in args)
+    return result if isinstance(result, int) else 0
+
+
+def _error(message: str, code: int, as_json: bool) -> int:
+    if as_json:
+        typer.echo(json.dumps({"error": message, "exit_code": code}))
+    typer.echo(f"mindward: error: {message}", err=True)
+    return code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

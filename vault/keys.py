@@ -1,0 +1,141 @@
+"""The key hierarchy (docs/design.md draws it).
+
+    member passphrase --Argon2id--> slot key --AES-KW--> master key (random, 256 bit)
+    master key --HKDF("data-key-wrap", vault id, participant id)--> wrapping key
+        --AES-KW--> participant data key (random, 256 bit) --C2SP--> that participant's blobs
+    master key --HKDF("signing-key-wrap", vault id)--> wrapping key --AES-KW--> Ed25519 seed
+
+Destroying a participant's wrapped data key erases all of their data
+(cryptographic erase, NIST SP 800-88). Rekeying re-wraps keys, never data.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from dataclasses import dataclass
+
+from vault import crypto
+from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFound
+
+
+@dataclass(frozen=True)
+class NewParticipantKey:
+    wrapped: bytes
+    commitment: str
+
+
+class KeyRing:
+    """The unlocked master key of one vault, held in memory only while the vault is open."""
+
+    def __init__(self, vault_id: str, master: bytes) -> None:
+        self.vault_id = vault_id
+        self._master = master
+
+    def __reduce__(self) -> object:
+        raise TypeError("key rings are not serialisable")
+
+    # -- slots ------------------------------------------------------------------------------
+
+    @staticmethod
+    def new_slot(passphrase: str, master: bytes) -> tuple[str, bytes]:
+        """(kdf parameters JSON, wrapped master) for a member's passphrase."""
+        params = crypto.KdfParams.fresh()
+        kek = crypto.passphrase_key(passphrase, params)
+        return json.dumps(params.as_dict(), sort_keys=True), crypto.wrap_key(kek, master)
+
+    @classmethod
+    def unlock(cls, conn: sqlite3.Connection, vault_id: str, member: str, passphrase: str
+               ) -> tuple[KeyRing, str]:
+        """Unwrap the master key with a member's passphrase; returns (ring, role)."""
+        row = conn.execute(
+            "SELECT kdf, wrapped_master, role FROM keyslots WHERE member = ?", (member,)
+        ).fetchone()
+        if row is None:
+            raise AuthenticationFailed(f"no member '{member}' in this vault")
+        params = crypto.KdfParams.from_dict(json.loads(row[0]))
+        master = crypto.unwrap_master(crypto.passphrase_key(passphrase, params), row[1])
+        return cls(vault_id, master), str(row[2])
+
+    def add_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+                 now: str) -> None:
+        kdf, wrapped = self.new_slot(passphrase, self._master)
+        try:
+            conn.execute(
+                "INSERT INTO keyslots (member, role, kdf, wrapped_master, created_at) "
+                "VALUES (?, ?, ?, ?, ?)",
+                (member, role, kdf, wrapped, now),
+            )
+        except sqlite3.IntegrityError as exc:
+            raise Conflict(f"member '{member}' exists already") from exc
+
+    # -- participant keys ---------------------------------------------------------------------
+
+    def _participant_kek(self, pid: str) -> bytes:
+        return crypto.derive_key(
+            self._master, "data-key-wrap", self.vault_id.encode(), pid.encode()
+        )
+
+    def new_participant_key(self, pid: str) -> NewParticipantKey:
+        key = crypto.new_key()
+        return NewParticipantKey(
+            wrapped=crypto.wrap_key(self._participant_kek(pid), key),
+            commitment=crypto.key_commitment(key, self.vault_id.encode(), pid.encode()),
+        )
+
+    def participant_key(self, conn: sqlite3.Connection, pid: str) -> bytes:
+        """The data key of a participant. Callers: the blob store only."""
+        row = conn.execute(
+            "SELECT wrapped_key FROM participants WHERE pid = ?", (pid,)
+        ).fetchone()
+        if row is None:
+            raise NotFound(f"no participant '{pid}'")
+        if row[0] is None:
+            raise NotFound(f"participant '{pid}' was erased; their data cannot be read")
+        try:
+            return crypto.unwrap_key(self._participant_kek(pid), row[0])
+        except IntegrityError as exc:
+            raise IntegrityError(
+                f"the data key of participant '{pid}' failed its integrity check"
+            ) from exc
+
+    # -- signing key ----------------------------------------------------------------------------
+
+    def _signing_kek(self) -> bytes:
+        return crypto.derive_key(self._master, "signing-key-wrap", self.vault_id.encode())
+
+    def wrap_signing_key(self, key: crypto.SigningKey) -> bytes:
+        return key.wrapped(self._signing_kek())
+
+    def signing_key(self, wrapped: bytes) -> crypto.SigningKey:
+        return crypto.SigningKey.unwrap(self._signing_kek(), wrapped)
+
+    # -- per-purpose secrets (pseudonyms) -----------------------------------------------------
+
+    def purpose_key(self, label: str, purpose: str) -> bytes:
+        """A key bound to one purpose, e.g. for keyed pseudonyms (one domain per purpose)."""
+        return crypto.derive_key(self._master, label, self.vault_id.encode(), purpose.encode())
+
+    # -- rekey ----------------------------------------------------------------------------------
+
+    def rekeyed(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+                wrapped_signing: bytes, now: str) -> tuple[KeyRing, bytes]:
+        """Re-wrap every key under a fresh master key (inside the caller's transaction).
+
+        Every other member's slot is dropped: their passphrases wrap the old
+        master key, and only they can choose a new one.
+        """
+        fresh = KeyRing(self.vault_id, crypto.new_key())
+        signing = self.signing_key(wrapped_signing)
+        rows = conn.execute(
+            "SELECT pid, wrapped_key FROM participants WHERE wrapped_key IS NOT NULL"
+        ).fetchall()
+        for pid, wrapped in rows:
+            key = crypto.unwrap_key(self._participant_kek(pid), wrapped)
+            conn.execute(
+                "UPDATE participants SET wrapped_key = ? WHERE pid = ?",
+                (crypto.wrap_key(fresh._participant_kek(pid), key), pid),
+            )
+        conn.execute("DELETE FROM keyslots")
+        fresh.add_slot(conn, member, role, passphrase, now)
+        return fresh, fresh.wrap_signing_key(signing)

@@ -1,0 +1,132 @@
+"""The vault's SQLite database: schema, pragmas, transactions.
+
+Holds ciphertext, wrapped keys and metadata only; this module never sees a key
+or a plaintext and never imports the crypto module. WAL mode with
+synchronous=FULL (a committed transaction survives power loss), secure_delete
+on (freed pages are zeroed), incremental auto-vacuum (so erasure can hand
+free pages back to the file system).
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import sqlite_utils
+
+from vault.errors import Conflict, IntegrityError, StorageFull
+
+SCHEMA_VERSION = 1
+DB_NAME = "vault.db"
+
+_TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
+    "meta": ({"key": str, "value": str}, "key"),
+    # one row per member: the master key wrapped under a key from that member's passphrase
+    "keyslots": (
+        {"member": str, "role": str, "kdf": str, "wrapped_master": bytes, "created_at": str},
+        "member",
+    ),
+    # one row per participant; wrapped_key NULL once erased (cryptographic erase)
+    "participants": (
+        {"pid": str, "wrapped_key": bytes, "key_commitment": str, "created_at": str,
+         "erased_at": str},
+        "pid",
+    ),
+    "blobs": (
+        {"blob_id": str, "pid": str, "kind": str, "plain_size": int, "stored_size": int,
+         "created_at": str},
+        "blob_id",
+    ),
+    "audit_log": ({"seq": int, "entry": bytes, "leaf_hash": bytes}, "seq"),
+    "tree_heads": ({"tree_size": int, "body": bytes, "signature": bytes}, "tree_size"),
+}
+
+_NOT_NULL: dict[str, set[str]] = {
+    "meta": {"value"},
+    "keyslots": {"role", "kdf", "wrapped_master", "created_at"},
+    "participants": {"key_commitment", "created_at"},
+    "blobs": {"pid", "kind", "plain_size", "stored_size", "created_at"},
+    "audit_log": {"entry", "leaf_hash"},
+    "tree_heads": {"body", "signature"},
+}
+
+_APPEND_ONLY_TRIGGERS = """
+CREATE TRIGGER IF NOT EXISTS {table}_no_update BEFORE UPDATE ON {table}
+BEGIN SELECT RAISE(ABORT, '{table} is append-only'); END;
+CREATE TRIGGER IF NOT EXISTS {table}_no_delete BEFORE DELETE ON {table}
+BEGIN SELECT RAISE(ABORT, '{table} is append-only'); END;
+"""
+
+
+def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
+    """Open the vault database with the pragmas every connection must have."""
+    path = directory / DB_NAME
+    if readonly:
+        conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True, isolation_level=None)
+    else:
+        conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA secure_delete = ON")
+    conn.execute("PRAGMA foreign_keys = ON")
+    conn.execute("PRAGMA busy_timeout = 10000")
+    if not readonly:
+        conn.execute("PRAGMA journal_mode = WAL")
+        conn.execute("PRAGMA synchronous = FULL")
+    return conn
+
+
+def create_schema(conn: sqlite3.Connection) -> None:
+    conn.execute("PRAGMA auto_vacuum = INCREMENTAL")
+    conn.execute("VACUUM")  # auto_vacuum takes effect only on an empty database after VACUUM
+    db = sqlite_utils.Database(conn)
+    for name, (columns, pk) in _TABLES.items():
+        db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
+    db["blobs"].create_index(["pid"])  # type: ignore[union-attr]
+    for table in ("audit_log", "tree_heads"):
+        conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
+
+
+@contextmanager
+def transaction(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
+    """One durable write transaction (BEGIN IMMEDIATE ... COMMIT, rollback on error)."""
+    try:
+        conn.execute("BEGIN IMMEDIATE")
+    except sqlite3.OperationalError as exc:
+        raise Conflict("the vault is busy (another process holds the write lock)") from exc
+    try:
+        yield conn
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    try:
+        conn.execute("COMMIT")
+    except sqlite3.OperationalError as exc:
+        conn.execute("ROLLBACK")
+        if "full" in str(exc).lower():
+            raise StorageFull("the disk is full; the change was rolled back") from exc
+        raise
+
+
+def get_meta(conn: sqlite3.Connection, key: str) -> str:
+    row = conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+    if row is None:
+        raise IntegrityError(f"vault metadata '{key}' is missing")
+    return str(row[0])
+
+
+def set_meta(conn: sqlite3.Connection, key: str, value: str) -> None:
+    conn.execute(
+        "INSERT INTO meta (key, value) VALUES (?, ?) "
+        "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+        (key, value),
+    )
+
+
+def checkpoint(conn: sqlite3.Connection) -> None:
+    """Fold the WAL into the main file and truncate it (used after erasure)."""
+    conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+
+
+def incremental_vacuum(conn: sqlite3.Connection) -> None:
+    conn.execute("PRAGMA incremental_vacuum")

@@ -1,0 +1,154 @@
+"""The encrypted blob store: the only module that turns vault ciphertext into plaintext.
+
+Each blob is one C2SP chunked-encryption message under its participant's data
+key, with the context binding vault id, participant id and blob id, so a blob
+copied into another participant's or another blob's place fails the key
+commitment before any chunk is decrypted.
+
+Writes are atomic: ciphertext goes to a temporary file inside the vault, is
+fsynced, renamed into place and its directory fsynced; only then does the
+caller commit the metadata row (with its audit entry) in one transaction. A
+crash before the commit leaves at most an orphan file, which `recover()`
+removes when the vault is next opened for writing; no row ever points at a
+missing or partial blob.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import BinaryIO
+
+from vault import crypto
+from vault.errors import IntegrityError, NotFound, StorageFull
+
+BLOB_DIR = "blobs"
+TMP_DIR = "tmp"
+_SUFFIX = ".mwb"
+_WRITE_BUFFER = 1 << 20
+
+
+@dataclass(frozen=True)
+class BlobInfo:
+    blob_id: str
+    pid: str
+    kind: str
+    plain_size: int
+    stored_size: int
+
+
+def blob_context(vault_id: str, pid: str, blob_id: str) -> bytes:
+    """The C2SP context: binds a ciphertext to its vault, participant and slot."""
+    parts = (b"mindward/v1/blob", vault_id.encode(), pid.encode(), blob_id.encode())
+    return b"\x00".join(parts)
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+class BlobStore:
+    def __init__(self, root: Path, vault_id: str) -> None:
+        self.root = root
+        self.vault_id = vault_id
+        self.blob_dir = root / BLOB_DIR
+        self.tmp_dir = root / TMP_DIR
+
+    def create_dirs(self) -> None:
+        for d in (self.blob_dir, self.tmp_dir):
+            d.mkdir(mode=0o700, exist_ok=True)
+
+    def path(self, blob_id: str) -> Path:
+        return self.blob_dir / blob_id[:2] / (blob_id + _SUFFIX)
+
+    # -- writing --------------------------------------------------------------------------------
+
+    def write(self, key: bytes, pid: str, blob_id: str, kind: str,
+              chunks: Iterable[bytes]) -> BlobInfo:
+        """Encrypt `chunks` into a new blob file; durable and in place when it returns."""
+        enc = crypto.ChunkedEncryptor(key, blob_context(self.vault_id, pid, blob_id))
+        tmp = self.tmp_dir / (crypto.random_id(8) + ".part")
+        final = self.path(blob_id)
+        stored = 0
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+            with os.fdopen(fd, "wb", buffering=0) as out:
+                pending = [enc.header]
+                size = len(enc.header)
+                for chunk in chunks:
+                    sealed = enc.update(chunk)
+                    if sealed:
+                        pending.append(sealed)
+                        size += len(sealed)
+                    if size >= _WRITE_BUFFER:
+                        stored += out.write(b"".join(pending))
+                        pending, size = [], 0
+                pending.append(enc.finalize())
+                stored += out.write(b"".join(pending))
+                os.fsync(out.fileno())
+            final.parent.mkdir(mode=0o700, exist_ok=True)
+            os.replace(tmp, final)
+            _fsync_dir(final.parent)
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise StorageFull("not enough disk space for this blob; nothing was stored") from exc
+            raise
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+        return BlobInfo(blob_id, pid, kind, enc.plaintext_length, stored)
+
+    def discard(self, blob_id: str) -> None:
+        """Remove a blob file whose metadata row was not committed (or was erased)."""
+        path = self.path(blob_id)
+        path.unlink(missing_ok=True)
+        if path.parent.exists():
+            _fsync_dir(path.parent)
+
+    def recover(self, known_ids: set[str]) -> int:
+        """Remove temporary files and blobs with no committed row; returns how many."""
+        removed = 0
+        for tmp in self.tmp_dir.glob("*.part"):
+            tmp.unlink(missing_ok=True)
+            removed += 1
+        for path in self.blob_dir.glob("*/*" + _SUFFIX):
+            if path.name[: -len(_SUFFIX)] not in known_ids:
+                path.unlink(missing_ok=True)
+                removed += 1
+        return removed
+
+    # -- reading (the one door's back room: callers must hold a grant) --------------------------
+
+    def _open(self, blob_id: str) -> BinaryIO:
+        try:
+            return open(self.path(blob_id), "rb")
+        except FileNotFoundError as exc:
+            raise IntegrityError(f"blob '{blob_id}' is missing from the vault") from exc
+
+    def plaintext(self, key: bytes, pid: str, blob_id: str) -> Iterator[bytes]:
+        """Authenticated plaintext chunks of a blob; raises IntegrityError on any tampering.
+
+        Only the grant-checking read path in `vault.access` may call this.
+        """
+        with self._open(blob_id) as fh:
+            yield from crypto.ChunkedDecryptor(key, blob_context(self.vault_id, pid, blob_id), fh)
+
+    def authenticate(self, key: bytes, pid: str, blob_id: str, plain_size: int) -> None:
+        """Check every chunk's tag and the length; no plaintext leaves this function."""
+        total = 0
+        for chunk in self.plaintext(key, pid, blob_id):
+            total += len(chunk)
+        if total != plain_size:
+            raise IntegrityError(f"blob '{blob_id}' has the wrong length")
+
+    def require(self, blob_id: str) -> None:
+        if not self.path(blob_id).exists():
+            raise NotFound(f"no blob '{blob_id}'")
