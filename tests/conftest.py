@@ -32,3 +32,30 @@ def shared_vectors_dir(*parts: str) -> Path:
 @pytest.fixture
 def vectors() -> Path:
     return shared_vectors_dir()
+
+
+@pytest.fixture
+def vault_path(tmp_path: Path) -> Path:
+    return tmp_path / "vault"
+
+
+@pytest.fixture
+def fresh_vault(vault_path: Path):
+    from vault import Vault
+
+    v = Vault.init(vault_path, TEST_PASSPHRASE)
+    yield v
+    v.close()
+
+
+def files_of(root: Path) -> list[Path]:
+    """Every regular file below `root` (DB, WAL, SHM, blobs, temp)."""
+    return [p for p in root.rglob("*") if p.is_file()]
+
+
+def assert_absent(root: Path, *needles: bytes) -> None:
+    """No file below `root` contains any of `needles`."""
+    for path in files_of(root):
+        data = path.read_bytes()
+        for needle in needles:
+            assert needle not in data, f"{needle[:16]!r}... found in {path.relative_to(root)}"

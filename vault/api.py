@@ -131,12 +131,15 @@ class Vault:
         path = Path(path)
         _require_vault(path)
         lock_fd = _take_lock(path)
+        conn: sqlite3.Connection | None = None
         try:
             conn = storage.connect(path)
             vault_id = _check_schema(conn)
             keys, role = KeyRing.unlock(conn, vault_id, member, passphrase)
             vault = cls(path, conn, keys, member, role, lock_fd)
         except BaseException:
+            if conn is not None:
+                conn.close()
             os.close(lock_fd)
             raise
         vault._recover()

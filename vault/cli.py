@@ -15,7 +15,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any
 
-import click
 import typer
 
 import vault
@@ -207,15 +206,15 @@ def main(argv: list[str] | None = None) -> int:
         result = app(args=args, prog_name="mindward", standalone_mode=False)
     except VaultError as exc:
         return _error(exc.message, exc.exit_code, "--json" in args)
-    except click.exceptions.Exit as exc:
-        return exc.exit_code
-    except click.exceptions.Abort:
+    except typer.Exit as exc:
+        return int(exc.exit_code)
+    except typer.Abort:
         return _error("aborted", 130, "--json" in args)
-    except click.ClickException as exc:
-        exc.show()
-        return exc.exit_code
-    except Exception as exc:  # a bug: say so in one line, never with data values
-        if os.environ.get("MINDWARD_DEBUG"):
+    except Exception as exc:
+        if callable(getattr(exc, "show", None)) and isinstance(getattr(exc, "exit_code", None), int):
+            exc.show()  # a usage error found by the parser: its message and exit code 2
+            return int(exc.exit_code)
+        if os.environ.get("MINDWARD_DEBUG"):  # a bug: one line, never with data values
             raise
         return _error(f"internal error ({type(exc).__name__}); rerun with MINDWARD_DEBUG=1 "
                       "and report it", 1, "--json" in args)

@@ -386,7 +386,7 @@ class ChunkedDecryptor:
         self._failed = why
         raise IntegrityError(f"integrity check failed: {why}")
 
-    def _open(self, chunk: bytes) -> bytes:
+    def _open(self, chunk: bytes | memoryview) -> bytes:
         if self._counter >= MAX_CHUNKS:
             self._fail("message exceeds the chunk counter")
         nonce = (self._base_nonce ^ self._counter).to_bytes(NONCE_SIZE, "big")
@@ -397,22 +397,29 @@ class ChunkedDecryptor:
         self._counter += 1
         return plain
 
-    def next_chunk(self) -> bytes | None:
-        """The next authenticated plaintext chunk, or None at the verified end."""
+    def next_chunk(self, max_chunks: int = 64) -> bytes | None:
+        """The next run of up to `max_chunks` authenticated chunks, or None at the verified end.
+
+        A run is handed out only when every chunk in it authenticated and, if
+        it holds the final chunk, nothing follows that chunk.
+        """
         if self._failed is not None:
             raise IntegrityError(f"integrity check failed: {self._failed}")
         if self._finished:
             return None
-        block = _read_exactly(self._reader, CT_CHUNK_SIZE)
-        if len(block) == CT_CHUNK_SIZE:
-            return self._open(block)
-        if len(block) < TAG_SIZE:
+        want = max_chunks * CT_CHUNK_SIZE
+        block = _read_exactly(self._reader, want)
+        view = memoryview(block)
+        full = len(block) // CT_CHUNK_SIZE
+        out = [self._open(view[i * CT_CHUNK_SIZE : (i + 1) * CT_CHUNK_SIZE]) for i in range(full)]
+        if len(block) == want:
+            return out[0] if len(out) == 1 else b"".join(out)
+        rest = view[full * CT_CHUNK_SIZE :]
+        if len(rest) < TAG_SIZE:
             self._fail("ciphertext is truncated (final chunk missing)")
-        plain = self._open(block)
-        if self._reader.read(1):
-            self._fail("data follows the final chunk")
+        out.append(self._open(rest))
         self._finished = True
-        return plain
+        return b"".join(out)
 
     def __iter__(self) -> Iterator[bytes]:
         while (chunk := self.next_chunk()) is not None:

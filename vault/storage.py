@@ -67,12 +67,17 @@ def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
         conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True, isolation_level=None)
     else:
         conn = sqlite3.connect(path, isolation_level=None)
-    conn.execute("PRAGMA secure_delete = ON")
-    conn.execute("PRAGMA foreign_keys = ON")
-    conn.execute("PRAGMA busy_timeout = 10000")
-    if not readonly:
-        conn.execute("PRAGMA journal_mode = WAL")
-        conn.execute("PRAGMA synchronous = FULL")
+    try:
+        conn.execute("PRAGMA secure_delete = ON")
+        conn.execute("PRAGMA foreign_keys = ON")
+        conn.execute("PRAGMA busy_timeout = 10000")
+        if not readonly:
+            conn.execute("PRAGMA journal_mode = WAL")
+            conn.execute("PRAGMA synchronous = FULL")
+        conn.execute("SELECT COUNT(*) FROM sqlite_master").fetchone()
+    except sqlite3.DatabaseError as exc:
+        conn.close()
+        raise IntegrityError(f"{path} is unreadable or not a vault database") from exc
     return conn
 
 

@@ -1,0 +1,243 @@
+"""`mindward bench`: the vault's speed and memory against limits measured in the same run.
+
+Each figure is a ratio to a baseline this machine achieves in the same run
+(raw AES-256-GCM to an fsynced file, a bare durable SQLite transaction, bare
+SHA-256 over the same Merkle hashes), so the targets hold on any machine.
+Nothing here is participant data: the bench writes random bytes to a
+throw-away vault in the system's temporary directory and deletes it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sqlite3
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+from vault import audit, crypto, storage
+from vault.api import Vault
+
+MIB = 1 << 20
+_PASSPHRASE = "benchmark passphrase, not a secret"
+_TARGETS = {
+    "store_vs_raw": (">=", 0.6), "read_vs_raw": (">=", 0.6), "store_1gib_peak_mib": ("<", 100.0),
+    "audit_single_vs_sqlite": (">=", 0.7), "audit_batch_per_s": (">=", 50_000.0),
+    "audit_verify_vs_hashlib": ("<=", 5.0),
+}
+
+
+def _timed(fn: Callable[[], Any]) -> float:
+    start = time.perf_counter()
+    fn()
+    return time.perf_counter() - start
+
+
+def _source(data: bytes, total: int) -> Iterator[bytes]:
+    for _ in range(total // len(data)):
+        yield data
+
+
+# -- blobs ------------------------------------------------------------------------------------
+
+
+def _raw_rates(workdir: Path, data: bytes, total: int) -> tuple[float, float]:
+    aead = crypto.RawAesGcm(crypto.new_key())
+    nonce = crypto.random_bytes(12)
+    path = workdir / "raw.bin"
+
+    def write() -> None:
+        with open(path, "wb", buffering=0) as out:
+            for block in _source(data, total):
+                out.write(aead.encrypt(nonce, block))
+            os.fsync(out.fileno())
+
+    def read() -> None:
+        with open(path, "rb", buffering=0) as fh:
+            while block := fh.read(len(data) + 16):
+                aead.decrypt(nonce, block)
+
+    t_write, t_read = _timed(write), _timed(read)
+    path.unlink()
+    return total / t_write / MIB, total / t_read / MIB
+
+
+def _vault_rates(v: Vault, data: bytes, total: int) -> tuple[float, float]:
+    pid = v.new_participant()
+    holder: dict[str, str] = {}
+
+    def store() -> None:
+        holder["id"] = v.put_blob(pid, "bench", _source(data, total)).blob_id
+
+    t_store = _timed(store)
+    key = v._keys.participant_key(v._conn, pid)  # the bench measures the store, not the door
+
+    def read() -> None:
+        for _ in v._store.plaintext(key, pid, holder["id"]):
+            pass
+
+    return total / t_store / MIB, total / _timed(read) / MIB
+
+
+def _rss_mib() -> float:
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / MIB
+
+
+def memory_child(path: str, total_mib: int) -> None:
+    """Run in a subprocess: store a blob of `total_mib` MiB and print RSS growth as JSON."""
+    v = Vault.open(Path(path), _PASSPHRASE)
+    pid = v.new_participant()
+    data = crypto.random_bytes(MIB)
+    before = peak = _rss_mib()
+
+    def sampled() -> Iterator[bytes]:
+        nonlocal peak
+        for i, block in enumerate(_source(data, total_mib * MIB)):
+            if i % 8 == 0:
+                peak = max(peak, _rss_mib())
+            yield block
+
+    v.put_blob(pid, "bench", sampled())
+    peak = max(peak, _rss_mib())
+    v.close()
+    print(json.dumps({"before_mib": before, "peak_mib": peak}))
+
+
+def _memory(path: Path, total_mib: int) -> dict[str, float]:
+    code = f"from vault.bench import memory_child; memory_child({str(path)!r}, {total_mib})"
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
+    figures = json.loads(out.stdout)
+    return {"store_peak_growth_mib": figures["peak_mib"] - figures["before_mib"],
+            "store_blob_mib": total_mib}
+
+
+# -- audit ------------------------------------------------------------------------------------
+
+
+def _bare_sqlite_rate(workdir: Path, n: int) -> float:
+    conn = sqlite3.connect(workdir / "bare.db", isolation_level=None)
+    conn.execute("PRAGMA journal_mode = WAL")
+    conn.execute("PRAGMA synchronous = FULL")
+    conn.execute("CREATE TABLE t (seq INTEGER PRIMARY KEY, entry BLOB, leaf BLOB)")
+    row = b"x" * 160
+
+    def run() -> None:
+        for i in range(n):
+            conn.execute("BEGIN IMMEDIATE")
+            conn.execute("INSERT INTO t VALUES (?, ?, ?)", (i, row, row[:32]))
+            conn.execute("COMMIT")
+
+    rate = n / _timed(run)
+    conn.close()
+    return rate
+
+
+def _audit_single_rate(v: Vault, n: int) -> float:
+    def run() -> None:
+        for i in range(n):
+            with storage.transaction(v._conn):
+                v._audit.append({"actor": "bench", "action": "bench.single", "n": i},
+                                "2026-01-01T00:00:00Z")
+
+    return n / _timed(run)
+
+
+def _fields(n: int, offset: int = 0) -> Iterator[dict[str, Any]]:
+    for i in range(offset, offset + n):
+        yield {"actor": "bench", "action": "bench.batch", "subjects": [f"p-{i:016x}"],
+               "decision": "permit", "n": i}
+
+
+def _audit_batch_rate(v: Vault, n: int) -> float:
+    def run() -> None:
+        with storage.transaction(v._conn):
+            v._audit.append_many(_fields(n), "2026-01-01T00:00:00Z")
+
+    return n / _timed(run)
+
+
+def _verify_ratio(v: Vault, n: int) -> dict[str, float]:
+    have = v._audit.size
+    step = 200_000
+    for start in range(have, n, step):
+        with storage.transaction(v._conn):
+            v._audit.append_many(_fields(min(step, n - start), start), "2026-01-01T00:00:00Z")
+    v.sign_head()
+    entries = [r[0] for r in v._conn.execute("SELECT entry FROM audit_log ORDER BY seq")]
+    size = len(entries)
+
+    def bare() -> None:
+        leaves = [crypto.merkle_leaf_hash(e) for e in entries]
+        while len(leaves) > 1:  # n - 1 node hashes, as the RFC 9162 tree needs
+            paired = [crypto.merkle_node_hash(a, b) for a, b in zip(leaves[::2], leaves[1::2], strict=False)]
+            leaves = paired + ([leaves[-1]] if len(leaves) % 2 else [])
+
+    t_bare = _timed(bare)
+    del entries
+    report: dict[str, audit.VerifyReport] = {}
+    t_ours = _timed(lambda: report.setdefault("r", audit.verify_log(v._conn, v.public_key)))
+    if not report["r"].ok:
+        raise RuntimeError(f"bench log failed to verify: {report['r'].problem}")
+    return {"audit_verify_entries": size, "audit_verify_s": t_ours, "hashlib_s": t_bare,
+            "audit_verify_vs_hashlib": t_ours / t_bare}
+
+
+# -- the run ----------------------------------------------------------------------------------
+
+
+def run_all(*, quick: bool = False) -> dict[str, Any]:
+    blob_mib, mem_mib, singles, batch, verify_n = (
+        (16, 64, 50, 20_000, 20_000) if quick else (256, 1024, 300, 100_000, 1_000_000))
+    workdir = Path(tempfile.mkdtemp(prefix="mindward-bench-"))
+    figures: dict[str, Any] = {"quick": quick}
+    try:
+        data = crypto.random_bytes(MIB)
+        raw_w, raw_r = _raw_rates(workdir, data, blob_mib * MIB)
+        v = Vault.init(workdir / "vault", _PASSPHRASE)
+        try:
+            store, read = _vault_rates(v, data, blob_mib * MIB)
+            figures.update(blob_mib=blob_mib, raw_write_mib_s=raw_w, raw_read_mib_s=raw_r,
+                           store_mib_s=store, read_mib_s=read,
+                           store_vs_raw=store / raw_w, read_vs_raw=read / raw_r)
+            bare = _bare_sqlite_rate(workdir, singles)
+            ours = _audit_single_rate(v, singles)
+            figures.update(sqlite_single_per_s=bare, audit_single_per_s=ours,
+                           audit_single_vs_sqlite=ours / bare,
+                           audit_batch_per_s=_audit_batch_rate(v, batch))
+            figures.update(_verify_ratio(v, verify_n))
+        finally:
+            v.close()
+        mem = _memory(workdir / "vault", mem_mib)
+        figures.update(mem, store_1gib_peak_mib=mem["store_peak_growth_mib"])
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+    figures["targets"] = {name: {"rule": f"{op} {limit}", "value": figures[name],
+                                 "met": _met(op, figures[name], limit)}
+                          for name, (op, limit) in _TARGETS.items()}
+    return figures
+
+
+def _met(op: str, value: float, limit: float) -> bool:
+    return {">=": value >= limit, "<": value < limit, "<=": value <= limit}[op]
+
+
+def format_report(figures: dict[str, Any]) -> str:
+    lines = [f"mindward bench ({'quick' if figures['quick'] else 'full'} sizes)"]
+    for name, target in figures["targets"].items():
+        mark = "ok  " if target["met"] else "MISS"
+        lines.append(f"  {mark} {name:<26} {target['value']:>12.3f}   target {target['rule']}")
+    lines.append("  raw AES-GCM write {raw_write_mib_s:.0f} MiB/s, read {raw_read_mib_s:.0f} MiB/s; "
+                 "vault store {store_mib_s:.0f} MiB/s, read {read_mib_s:.0f} MiB/s".format(**figures))
+    lines.append("  durable appends: bare SQLite {sqlite_single_per_s:.0f}/s, audit "
+                 "{audit_single_per_s:.0f}/s; verify {audit_verify_entries} entries in "
+                 "{audit_verify_s:.2f} s (bare hashlib {hashlib_s:.2f} s)".format(**figures))
+    if figures["quick"]:
+        lines.append("  (quick sizes: the targets are stated for the full run)")
+    return "\n".join(lines)
