@@ -10,7 +10,7 @@ import pytest
 
 import vault
 from tests.conftest import TEST_PASSPHRASE
-from vault import IntegrityError, Vault
+from vault import Vault
 from vault.audit import TreeHead, encode_entry, verify_inclusion_bundle
 
 
@@ -45,7 +45,7 @@ def test_untouched_log_verifies_with_the_key_alone(vault_path: Path) -> None:
 
 
 def test_edited_entry_is_named(vault_path: Path) -> None:
-    public, pids = _vault_with_entries(vault_path, 5)
+    public, _pids = _vault_with_entries(vault_path, 5)
     conn = _raw(vault_path)
     raw = conn.execute("SELECT entry FROM audit_log WHERE seq = 3").fetchone()[0]
     conn.execute("UPDATE audit_log SET entry = ? WHERE seq = 3", (raw.replace(b"done", b"undo"),))

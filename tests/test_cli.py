@@ -69,7 +69,7 @@ def test_tampered_log_exits_with_integrity_code(capsys, env: Path) -> None:
     conn.execute("UPDATE audit_log SET entry = CAST('{\"seq\":0,\"x\":1}' AS BLOB) WHERE seq = 0")
     conn.commit()
     conn.close()
-    code, out, err = run(capsys, "audit", "verify")
+    code, out, _err = run(capsys, "audit", "verify")
     assert code == 5 and "FAILED" in out and "entry 0" in out
 
 

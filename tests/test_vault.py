@@ -113,9 +113,8 @@ def test_second_process_waits_then_gets_a_clear_busy_error(vault_path: Path, mon
     from vault import api
 
     monkeypatch.setattr(api, "_LOCK_WAIT_S", 0.2)
-    with Vault.init(vault_path, TEST_PASSPHRASE):
-        with pytest.raises(Conflict, match="busy"):
-            Vault.open(vault_path, TEST_PASSPHRASE)
+    with Vault.init(vault_path, TEST_PASSPHRASE), pytest.raises(Conflict, match="busy"):
+        Vault.open(vault_path, TEST_PASSPHRASE)
     Vault.open(vault_path, TEST_PASSPHRASE).close()
 
 

@@ -13,6 +13,7 @@ from vault.api import (
     verify_audit,
     verify_proof,
 )
+from vault.demo import run_demo
 from vault.errors import (
     EXIT_CODES,
     AuthenticationFailed,
@@ -42,6 +43,7 @@ __all__ = [
     "parse_public_key",
     "prove",
     "read_tree_head",
+    "run_demo",
     "verify_audit",
     "verify_proof",
 ]

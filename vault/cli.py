@@ -182,6 +182,29 @@ def audit_head(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt =
 
 
 @app.command()
+def demo(
+    directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "
+                                            "holds an earlier demo).")] = Path("mindward-demo"),
+    participants: Annotated[int, typer.Option(min=24, max=40, help="Cohort size.")] = 30,
+    as_json: JsonOpt = False,
+) -> None:
+    """Run the whole job on an invented study (synthetic people only), narrated."""
+    from rich.console import Console
+    from rich.progress import Progress
+
+    console = Console(stderr=as_json, highlight=False, soft_wrap=True)
+    with Progress(console=console, transient=True) as bar:
+        def progress(label: str, total: int) -> Callable[[], None]:
+            task = bar.add_task(label, total=total)
+            return lambda: bar.advance(task)
+
+        summary = vault.run_demo(directory, n_participants=participants,
+                                 say=console.print, progress=progress)
+    _emit(as_json, summary, lambda: "\n".join(
+        ["", "Summary"] + [f"  {k.replace('_', ' ')}: {v}" for k, v in summary.items()]))
+
+
+@app.command()
 def bench(
     as_json: JsonOpt = False,
     quick: Annotated[bool, typer.Option("--quick", help="Small sizes (a smoke run).")] = False,

@@ -162,14 +162,14 @@ class KdfParams:
 
 
 def argon2id(
-    secret: bytes, salt: bytes, *, iterations: int, lanes: int, memory_kib: int, length: int,
-    ad: bytes | None = None,
+    password: bytes, salt: bytes, *, iterations: int, lanes: int, memory_kib: int, length: int,
+    ad: bytes | None = None, key: bytes | None = None,
 ) -> bytes:
-    """Raw Argon2id (RFC 9106); exposed for the published vectors."""
+    """Raw Argon2id (RFC 9106; `key` is its secret value K); exposed for the published vectors."""
     return Argon2id(
         salt=salt, length=length, iterations=iterations, lanes=lanes,
-        memory_cost=memory_kib, ad=ad,
-    ).derive(secret)
+        memory_cost=memory_kib, ad=ad, secret=key,
+    ).derive(password)
 
 
 def passphrase_key(passphrase: str, params: KdfParams) -> bytes:
@@ -183,13 +183,19 @@ def passphrase_key(passphrase: str, params: KdfParams) -> bytes:
 
 def hkdf_sha256(ikm: bytes, salt: bytes | None, info: bytes, length: int) -> bytes:
     """HKDF extract-and-expand (RFC 5869); exposed for the published vectors."""
-    return HKDF(algorithm=hashes.SHA256(), length=length, salt=salt, info=info).derive(ikm)
+    try:
+        return HKDF(algorithm=hashes.SHA256(), length=length, salt=salt, info=info).derive(ikm)
+    except ValueError as exc:
+        raise UsageError(f"HKDF cannot produce {length} bytes") from exc
 
 
 def hkdf_expand(prk: bytes, info: bytes, length: int, *, sha512: bool = False) -> bytes:
     """HKDF-Expand only (RFC 5869 section 2.3)."""
     algorithm = hashes.SHA512() if sha512 else hashes.SHA256()
-    return HKDFExpand(algorithm=algorithm, length=length, info=info).derive(prk)
+    try:
+        return HKDFExpand(algorithm=algorithm, length=length, info=info).derive(prk)
+    except ValueError as exc:
+        raise UsageError(f"HKDF-Expand cannot produce {length} bytes") from exc
 
 
 def derive_key(root: bytes, label: str, *context: bytes) -> bytes:
@@ -208,7 +214,10 @@ def derive_key(root: bytes, label: str, *context: bytes) -> bytes:
 
 def wrap_key(kek: bytes, key: bytes) -> bytes:
     """AES key wrap (RFC 3394): 40 bytes out for a 32-byte key."""
-    return aes_key_wrap(kek, key)
+    try:
+        return aes_key_wrap(kek, key)
+    except ValueError as exc:
+        raise UsageError("AES-KW wraps keys of 16 bytes or more, in 8-byte steps") from exc
 
 
 def unwrap_key(kek: bytes, wrapped: bytes) -> bytes:
@@ -220,7 +229,10 @@ def unwrap_key(kek: bytes, wrapped: bytes) -> bytes:
 
 def wrap_key_padded(kek: bytes, key: bytes) -> bytes:
     """AES key wrap with padding (RFC 5649), for secrets of any length."""
-    return aes_key_wrap_with_padding(kek, key)
+    try:
+        return aes_key_wrap_with_padding(kek, key)
+    except ValueError as exc:
+        raise UsageError("AES-KWP needs a non-empty key and a valid wrapping key") from exc
 
 
 def unwrap_key_padded(kek: bytes, wrapped: bytes) -> bytes:
@@ -407,6 +419,8 @@ class ChunkedDecryptor:
             raise IntegrityError(f"integrity check failed: {self._failed}")
         if self._finished:
             return None
+        if max_chunks < 1:
+            raise UsageError("max_chunks must be at least 1")
         want = max_chunks * CT_CHUNK_SIZE
         block = _read_exactly(self._reader, want)
         view = memoryview(block)
@@ -418,6 +432,8 @@ class ChunkedDecryptor:
         if len(rest) < TAG_SIZE:
             self._fail("ciphertext is truncated (final chunk missing)")
         out.append(self._open(rest))
+        if self._reader.read(1):
+            self._fail("data follows the final chunk")
         self._finished = True
         return b"".join(out)
 
