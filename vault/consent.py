@@ -22,13 +22,12 @@ import datetime as dt
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from enum import StrEnum
 from functools import cached_property
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import (
     BaseModel,
     ConfigDict,
     Field,
-    PrivateAttr,
     StringConstraints,
     ValidationError,
     field_serializer,
@@ -194,7 +193,8 @@ _Fail = Callable[[str, str], InvalidInput]
 def check_terms(terms: ConsentTerms, policy: PolicySet, *, now: dt.datetime,
                 source: str = FORM_SOURCE) -> None:
     """Refuse anything ambiguous: unknown ids, impossible dates, contradictions."""
-    today = _aware(now, "now").astimezone(dt.UTC).date()
+    # A form dated today anywhere on Earth is not in the future (UTC+14 is the latest zone).
+    today = (_aware(now, "now").astimezone(dt.UTC) + dt.timedelta(hours=14)).date()
 
     def fail(path: str, message: str) -> InvalidInput:
         return InvalidInput(f"{source}: {path}: {message}")
@@ -303,8 +303,6 @@ class ConsentVersion(_Model):
     external_sharing: bool | None = None
     purposes: dict[PurposeId, PurposeConsent]
 
-    _digest: str | None = PrivateAttr(default=None)
-
     @field_validator("recorded_at")
     @classmethod
     def _utc(cls, value: dt.datetime) -> dt.datetime:
@@ -328,21 +326,31 @@ class ConsentVersion(_Model):
                                                                    self.retention_end)
         return dt.datetime.combine(end, dt.time(0, 0), tzinfo=dt.UTC)
 
-    @property
+    @cached_property
     def digest(self) -> str:
-        if self._digest is None:
-            self._digest = crypto.sha256_hex(DIGEST_DOMAIN + self.to_json())
-        return self._digest
+        """SHA-256 (hex) of the canonical JSON; the next version names it."""
+        return crypto.sha256_hex(DIGEST_DOMAIN + self.to_json())
+
+    def model_copy(self, *, update: Mapping[str, Any] | None = None,
+                   deep: bool = False) -> ConsentVersion:
+        """Copies are validated afresh, so the cached `ends_at` and `digest` are never stale."""
+        data = self.model_dump()
+        data.update(update or {})
+        return type(self).model_validate(data)
 
     def to_json(self) -> bytes:
         return canonical_json(self)
 
     @classmethod
     def from_json(cls, raw: bytes) -> ConsentVersion:
+        """Load a stored version; its digest is taken over the stored bytes themselves,
+        so a later change in how JSON is written cannot break the chain."""
         try:
-            return cls.model_validate_json(raw)
+            version = cls.model_validate_json(raw)
         except ValidationError:
             raise IntegrityError("stored consent version is malformed") from None
+        version.__dict__["digest"] = crypto.sha256_hex(DIGEST_DOMAIN + bytes(raw))
+        return version
 
     def is_expired(self, now: dt.datetime) -> bool:
         return self.ends_at <= now

@@ -7,11 +7,13 @@ budget go in; a `CohortDecision` comes out. Nothing is read or written.
 Deny by default. Request-wide rules are checked first (role, purpose, categories,
 special-category basis, export limits); if any fails, no consent is even looked
 at. Otherwise each participant is permitted only when every rule allows it:
-an answer for the requested purpose or a broader one (the nearest answer wins),
-a status that permits processing (`given`/`renewed`) and not expired at `now`,
-every requested category granted, explicit consent where the purpose relies on
-GDPR Art. 9(2)(a) for special-category data, and enough budget. A cohort request
-is then refused as a whole when fewer than the purpose's minimum cohort remain.
+an answer for the requested purpose or a broader one (the nearest answer wins);
+a status that permits processing (`given`/`renewed`), not expired at `now`;
+every requested category granted, and for derived data also what it is derived
+from (derived data inherits its recording's consent scope); explicit consent
+where the purpose relies on GDPR Art. 9(2)(a) for special-category data or data
+derived from it; enough budget. A cohort request is then refused as a whole when
+fewer than the purpose's minimum cohort remain.
 
 Speed: the request-wide work is done once; each participant costs a few dict
 lookups and one subset test (see `bench_decide`).
@@ -177,16 +179,12 @@ class CohortDecision:
             return "permitted"
         parts = [f"{r.value} ({REASON_TEXT[r]})" for r in self.cohort_reasons]
         if Reason.COHORT_TOO_SMALL in self.cohort_reasons:
-            minimum = _min_cohort_hint(self)
-            parts[self.cohort_reasons.index(Reason.COHORT_TOO_SMALL)] += minimum
+            parts[self.cohort_reasons.index(Reason.COHORT_TOO_SMALL)] += (
+                f" [{len(self.eligible)} eligible]")
         per = ", ".join(f"{name}: {n}" for name, n in sorted(self.counts.items())
                         if name not in {r.value for r in self.cohort_reasons})
         tail = f"; participants refused by reason: {per}" if per else ""
         return (f"refused: purpose {safe_id(self.request.purpose)}: " + "; ".join(parts) + tail)
-
-
-def _min_cohort_hint(decision: CohortDecision) -> str:
-    return f" [{len(decision.eligible)} eligible]"
 
 
 def _aware(now: dt.datetime) -> None:
@@ -294,7 +292,7 @@ def _decide_each(policy: PolicySet, request: Request,
                  ) -> tuple[dict[str, Decision], list[str], list[int], int]:
     purpose = policy.purposes[request.purpose]
     chain = policy.chain(request.purpose)
-    wanted = frozenset(request.categories)
+    wanted = policy.consent_scope(request.categories)  # derived data needs its source too
     need_explicit = (purpose.special_category_basis == ART9_EXPLICIT_CONSENT
                      and not wanted.isdisjoint(policy.special_categories()))
     epsilon = request.epsilon
@@ -340,7 +338,7 @@ def _decide_each(policy: PolicySet, request: Request,
         if cv.ends_at <= now:
             decisions[pid] = expired
             continue
-        if (wanted <= entry.categories and (True or entry.explicit)
+        if (wanted <= entry.categories and (not need_explicit or entry.explicit)
                 and (epsilon is None or budget.get(pid, 0.0) >= epsilon)):
             decisions[pid] = PERMIT
             eligible.append(pid)

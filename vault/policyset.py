@@ -17,6 +17,7 @@ import re
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
+from types import MappingProxyType
 from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError
@@ -206,9 +207,9 @@ class PolicySet:
             raise InvalidInput(f"{source}: {exc.path}: {exc.message}") from None
         self.document = document
         self.meta = document.policy
-        self.categories: Mapping[str, Category] = document.categories
-        self.roles: Mapping[str, Role] = document.roles
-        self.purposes: Mapping[str, Purpose] = document.purposes
+        self.categories: Mapping[str, Category] = MappingProxyType(dict(document.categories))
+        self.roles: Mapping[str, Role] = MappingProxyType(dict(document.roles))
+        self.purposes: Mapping[str, Purpose] = MappingProxyType(dict(document.purposes))
         self.digest = crypto.sha256_hex(DIGEST_DOMAIN + canonical_json(document))
         self.version = self.digest[:VERSION_LENGTH]
         self._chains = {pid: _chain(document.purposes, pid) for pid in document.purposes}
@@ -229,6 +230,17 @@ class PolicySet:
     def covers(self, consented: str, requested: str) -> bool:
         """True when consent for `consented` covers a request for `requested`."""
         return requested in self._chains and consented in self._chains[requested]
+
+    def consent_scope(self, categories: frozenset[str] | set[str]) -> frozenset[str]:
+        """`categories` plus every category they are derived from: what a participant
+        must have granted, since derived data inherits its source's consent scope."""
+        out = set(categories)
+        for cid in categories:
+            source = self.categories[cid].derived_from if cid in self.categories else None
+            while source is not None:
+                out.add(source)
+                source = self.categories[source].derived_from
+        return frozenset(out)
 
     def special_categories(self) -> frozenset[str]:
         return frozenset(c for c, cat in self.categories.items() if cat.special_category)
