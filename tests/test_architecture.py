@@ -84,3 +84,20 @@ def test_the_checker_itself_catches_a_violation(tmp_path: Path) -> None:
     planted = tmp_path / "planted.py"
     planted.write_text("import hashlib\nfrom cryptography.hazmat.primitives import hashes\n")
     assert {"hashlib", "cryptography"} <= {n.split(".")[0] for n in _imports(_tree(planted))}
+
+
+@pytest.mark.parametrize("path", _modules(), ids=lambda p: p.name)
+def test_only_the_policy_engine_mints_grants(path: Path) -> None:
+    """`_MINT` (the grant-minting token) is named nowhere but vault/policy.py."""
+    if path.name == "policy.py":
+        return
+    tree = _tree(path)
+    names = {n.id for n in ast.walk(tree) if isinstance(n, ast.Name)}
+    names |= {n.attr for n in ast.walk(tree) if isinstance(n, ast.Attribute)}
+    names |= {a.name for n in ast.walk(tree) if isinstance(n, ast.ImportFrom) for a in n.names}
+    assert "_MINT" not in names, f"{path.name} names the grant-minting token"
+
+
+def test_tests_do_not_mint_grants_either() -> None:
+    for path in (PACKAGE.parent / "tests").glob("*.py"):
+        assert "_MINT" not in path.read_text() or path.name == "test_architecture.py", path.name

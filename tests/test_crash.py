@@ -42,7 +42,7 @@ def _check(path: Path) -> int:
         assert not list((path / "tmp").iterdir())
         for blob_id, row in rows.items():
             key = v._keys.participant_key(v._conn, row["pid"])
-            assert sum(len(c) for c in v._store.plaintext(key, row["pid"], blob_id)) == row["plain_size"]
+            assert sum(len(c) for c in v._store._decrypt(key, row["pid"], blob_id)) == row["plain_size"]
     assert verify_audit(path).ok
     return len(rows)
 

@@ -17,7 +17,7 @@ from vault.crypto import CHUNK_SIZE, CT_CHUNK_SIZE, HEADER_SIZE, SALT_SIZE, TAG_
 def _read(v: Vault, pid: str, blob_id: str) -> bytes:
     # Tests reach past the one door on purpose: they check the store itself.
     key = v._keys.participant_key(v._conn, pid)
-    return b"".join(v._store.plaintext(key, pid, blob_id))
+    return b"".join(v._store._decrypt(key, pid, blob_id))
 
 
 def _stored(v: Vault, n_bytes: int, marker: bytes = b"") -> tuple[str, str, bytes, Path]:
@@ -96,7 +96,7 @@ def test_chunk_level_attacks_are_detected(fresh_vault: Vault, attack: str) -> No
     handed_out = bytearray()
     key = fresh_vault._keys.participant_key(fresh_vault._conn, pid)
     with pytest.raises(IntegrityError):
-        for chunk in fresh_vault._store.plaintext(key, pid, blob_id):
+        for chunk in fresh_vault._store._decrypt(key, pid, blob_id):
             handed_out += chunk
     # whatever a streaming reader handed out before failing is a true prefix
     assert data.startswith(bytes(handed_out))

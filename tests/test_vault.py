@@ -83,7 +83,7 @@ def test_rekey_rewraps_keys_and_never_touches_data(vault_path: Path) -> None:
         Vault.open(vault_path, TEST_PASSPHRASE)
     with Vault.open(vault_path, "a brand new passphrase") as v:
         key = v._keys.participant_key(v._conn, pid)
-        assert b"".join(v._store.plaintext(key, pid, info.blob_id)) == b"signal" * 10000
+        assert b"".join(v._store._decrypt(key, pid, info.blob_id)) == b"signal" * 10000
         assert v.info()["fingerprint"] == fingerprint  # same signing key, re-wrapped
         assert v.verify()["ok"]
         assert "vault.rekey" in [e["action"] for e in v.audit_entries()]
@@ -102,9 +102,9 @@ def test_destroying_the_wrapped_key_erases_the_data(vault_path: Path) -> None:
         with pytest.raises(NotFound, match="erased"):
             v._keys.participant_key(v._conn, pid)
         with pytest.raises(vault.IntegrityError):
-            b"".join(v._store.plaintext(os.urandom(32), pid, gone.blob_id))
+            b"".join(v._store._decrypt(os.urandom(32), pid, gone.blob_id))
         other = v._keys.participant_key(v._conn, keep)
-        assert b"".join(v._store.plaintext(other, keep, kept.blob_id)) == b"B" * 5000
+        assert b"".join(v._store._decrypt(other, keep, kept.blob_id)) == b"B" * 5000
     for path in files_of(vault_path):
         assert key not in path.read_bytes()
 

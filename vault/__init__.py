@@ -7,9 +7,11 @@ Public API: `Vault` (open/init an encrypted vault), `describe` and
 from vault.api import (
     Vault,
     describe,
+    format_decision,
     parse_public_key,
     prove,
     read_tree_head,
+    summarise_decision,
     verify_audit,
     verify_proof,
 )
@@ -26,6 +28,7 @@ from vault.errors import (
     UsageError,
     VaultError,
 )
+from vault.policyset import describe_policy, load_policy_dir
 
 __all__ = [
     "EXIT_CODES",
@@ -40,10 +43,14 @@ __all__ = [
     "Vault",
     "VaultError",
     "describe",
+    "describe_policy",
+    "format_decision",
+    "load_policy_dir",
     "parse_public_key",
     "prove",
     "read_tree_head",
     "run_demo",
+    "summarise_decision",
     "verify_audit",
     "verify_proof",
 ]

@@ -3,36 +3,49 @@
 from __future__ import annotations
 
 import fcntl
+import json
 import os
+import re
 import shutil
 import sqlite3
 import time
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from vault import audit, crypto, storage
+from vault import audit, crypto, registry, storage
+from vault.consent import parse_consent_form, record_consent, split_identity
+from vault.decide import CohortDecision, Request
 from vault.errors import (
-    AuthenticationFailed,
     Conflict,
     IntegrityError,
+    InvalidInput,
     NotFound,
+    PolicyRefusal,
     UsageError,
 )
 from vault.keys import KeyRing
+from vault.policy import Grant, PolicyEngine
+from vault.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
 from vault.store import BlobInfo, BlobStore
 
 LOCK_NAME = "lock"
+_MEMBER_NAME = re.compile(r"[A-Za-z0-9._-]{1,40}")
 _LOCK_WAIT_S = 10.0
+
+
+def moment(now: datetime | None = None) -> datetime:
+    """`now`, or the clock: this module is the only reader of the clock."""
+    value = now or datetime.now(UTC)
+    if value.tzinfo is None:
+        raise UsageError("timestamps must carry a time zone")
+    return value.astimezone(UTC)
 
 
 def utc_now(now: datetime | None = None) -> str:
     """ISO 8601 UTC to the second: the one timestamp format of the vault."""
-    moment = now or datetime.now(UTC)
-    if moment.tzinfo is None:
-        raise UsageError("timestamps must carry a time zone")
-    return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return moment(now).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def _require_vault(path: Path) -> None:
@@ -72,17 +85,33 @@ class Vault:
         self._lock_fd = lock_fd
         self.vault_id = keys.vault_id
         self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
+        keys.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
         self._store = BlobStore(path, self.vault_id)
         self._audit = audit.AuditLog(conn, self.vault_id)
         self._closed = False
+        self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
+
+    def _set_policy(self, policy: PolicySet) -> None:
+        self.policy = policy
+        self._engine = PolicyEngine(
+            policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch)
+
+    def _audit_batch(self, entries: list[dict[str, Any]], now: datetime) -> None:
+        with storage.transaction(self._conn):
+            self._audit.append_many(entries, utc_now(now))
 
     # -- lifecycle ------------------------------------------------------------------------------
 
     @classmethod
     def init(cls, path: Path, passphrase: str, *, member: str = "steward",
-             now: datetime | None = None) -> Vault:
-        """Create a new vault at `path` (atomically: all of it or nothing)."""
+             policy_dir: Path | None = None, now: datetime | None = None) -> Vault:
+        """Create a new vault at `path` (atomically: all of it or nothing).
+
+        The policy set (the shipped default, or `policy_dir`) is validated and pinned
+        in the vault; later changes go through `apply_policy`.
+        """
         _check_passphrase(passphrase)
+        policy = load_policy_dir(Path(policy_dir)) if policy_dir else load_default_policy()
         path = Path(path)
         if path.exists() and any(path.iterdir()):
             raise Conflict(f"{path} exists and is not empty; refusing to create a vault there")
@@ -90,7 +119,7 @@ class Vault:
         staging = path.parent / f".{path.name}.creating-{crypto.random_id(6)}"
         staging.mkdir(mode=0o700, parents=True)
         try:
-            cls._create(staging, passphrase, member, at)
+            cls._create(staging, passphrase, member, at, policy)
             if path.exists():
                 path.rmdir()
             os.replace(staging, path)
@@ -100,7 +129,7 @@ class Vault:
         return cls.open(path, passphrase, member=member, now=now)
 
     @staticmethod
-    def _create(root: Path, passphrase: str, member: str, at: str) -> None:
+    def _create(root: Path, passphrase: str, member: str, at: str, policy: PolicySet) -> None:
         vault_id = crypto.random_id(16)
         master = crypto.new_key()
         ring = KeyRing(vault_id, master)
@@ -114,12 +143,16 @@ class Vault:
                     "vault_id": vault_id, "schema_version": str(storage.SCHEMA_VERSION),
                     "created_at": at, "signing_public_key": signing.public_key.hex(),
                     "wrapped_signing_key": ring.wrap_signing_key(signing).hex(),
+                    "wrapped_vault_secret": ring.wrap_secret(crypto.new_key()).hex(),
+                    "policy_version": policy.version,
                 }.items():
                     storage.set_meta(conn, key, value)
+                registry.store_policy(conn, policy, at)
                 ring.add_slot(conn, member, "steward", passphrase, at)
                 log = audit.AuditLog(conn, vault_id)
                 log.append({"actor": member, "action": "vault.init", "decision": "done",
-                            "details": {"fingerprint": crypto.fingerprint(signing.public_key)}}, at)
+                            "details": {"fingerprint": crypto.fingerprint(signing.public_key),
+                                        "policy_version": policy.version}}, at)
                 log.sign_head(signing, at)
         finally:
             conn.close()
@@ -192,9 +225,10 @@ class Vault:
         with storage.transaction(self._conn):
             others = self._conn.execute(
                 "SELECT COUNT(*) FROM keyslots WHERE member != ?", (self.member,)).fetchone()[0]
-            fresh, rewrapped = self._keys.rekeyed(
+            fresh, rewrapped, secret = self._keys.rekeyed(
                 self._conn, self.member, self.role, new_passphrase, wrapped_signing, at)
             storage.set_meta(self._conn, "wrapped_signing_key", rewrapped.hex())
+            storage.set_meta(self._conn, "wrapped_vault_secret", secret.hex())
             count = self._conn.execute(
                 "SELECT COUNT(*) FROM participants WHERE wrapped_key IS NOT NULL").fetchone()[0]
             self._audit.append({"actor": self.member, "action": "vault.rekey", "decision": "done",
@@ -206,13 +240,14 @@ class Vault:
 
     def _require_steward(self) -> None:
         if self.role != "steward":
-            raise AuthenticationFailed(f"member '{self.member}' is not a steward")
+            raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not do this: "
+                                "stewards only")
 
     def new_participant(self, *, now: datetime | None = None) -> str:
         """Create a participant with a fresh data key; returns their random id."""
         self._require_steward()
         at = utc_now(now)
-        pid = "p-" + crypto.random_id(8)
+        pid = crypto.random_id(16)
         key = self._keys.new_participant_key(pid)
         with storage.transaction(self._conn):
             self._conn.execute(
@@ -232,10 +267,7 @@ class Vault:
         info = self._store.write(key, pid, blob_id, kind, chunks)
         try:
             with storage.transaction(self._conn):
-                self._conn.execute(
-                    "INSERT INTO blobs (blob_id, pid, kind, plain_size, stored_size, created_at) "
-                    "VALUES (?, ?, ?, ?, ?, ?)",
-                    (blob_id, pid, kind, info.plain_size, info.stored_size, at))
+                self._insert_blob(info, at)
                 self._audit.append({"actor": self.member, "action": "blob.store",
                                     "subjects": [pid], "decision": "done",
                                     "details": {"blob": blob_id, "kind": kind, **(details or {})}},
@@ -244,6 +276,155 @@ class Vault:
             self._store.discard(blob_id)
             raise
         return info
+
+    # -- policy, enrolment and consent -----------------------------------------------------------
+
+    def describe_policy(self) -> list[str]:
+        return describe_policy(self.policy)
+
+    def apply_policy(self, policy_dir: Path, *, now: datetime | None = None) -> dict[str, Any]:
+        """Pin a new policy set (validated first); consent already given is not changed."""
+        self._require_steward()
+        policy = load_policy_dir(Path(policy_dir))
+        at = utc_now(now)
+        previous = self.policy.version
+        with storage.transaction(self._conn):
+            new = registry.store_policy(self._conn, policy, at)
+            storage.set_meta(self._conn, "policy_version", policy.version)
+            self._audit.append({"actor": self.member, "action": "policy.apply", "decision": "done",
+                                "details": {"version": policy.version, "previous": previous}}, at)
+        self._set_policy(policy)
+        return {"version": policy.version, "previous": previous, "new": new}
+
+    def enrol(self, form: bytes, *, now: datetime | None = None) -> dict[str, Any]:
+        """Enrol a participant from a filled consent form (TOML bytes).
+
+        Identity and contact details are stored only encrypted under the new
+        participant's own key; the consent terms become version 1 under a random id.
+        """
+        self._require_steward()
+        when = moment(now)
+        identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
+        tag = self._keys.lab_code_tag(identity.code)
+        existing = registry.pid_for_tag(self._conn, tag)
+        if existing is not None:
+            raise Conflict(f"this participant code is enrolled already (participant {existing}); "
+                           "use 'mindward consent amend'")
+        pid = crypto.random_id(16)
+        version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when)
+        key = self._keys.new_participant_key(pid)
+        blob_id = "b-" + crypto.random_id(12)
+        info = self._store.write(key.key, pid, blob_id, "identity-contact", [identity.to_bytes()])
+        at = utc_now(when)
+        try:
+            with storage.transaction(self._conn):
+                self._conn.execute(
+                    "INSERT INTO participants (pid, wrapped_key, key_commitment, lab_code_tag, "
+                    "created_at) VALUES (?, ?, ?, ?, ?)",
+                    (pid, key.wrapped, key.commitment, tag, at))
+                self._insert_blob(info, at)
+                registry.add_consent(self._conn, version)
+                self._audit.append({"actor": self.member, "action": "participant.enrol",
+                                    "subjects": [pid], "decision": "done",
+                                    "details": _consent_details(version)}, at)
+        except BaseException:
+            self._store.discard(blob_id)
+            raise
+        return {"participant_id": pid, **_consent_details(version)}
+
+    def amend_consent(self, pid: str, form: bytes, *, now: datetime | None = None) -> dict[str, Any]:
+        """Add a consent version from a new filled form (a partial withdrawal is one)."""
+        self._require_steward()
+        when = moment(now)
+        registry.require_participant(self._conn, pid)
+        identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
+        if registry.pid_for_tag(self._conn, self._keys.lab_code_tag(identity.code)) != pid:
+            raise InvalidInput(f"consent form: participant.code: does not belong to participant {pid}")
+        history = registry.consent_history(self._conn, pid)
+        version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when,
+                                 previous=history[-1] if history else None)
+        with storage.transaction(self._conn):
+            registry.add_consent(self._conn, version)
+            self._audit.append({"actor": self.member, "action": "consent.amend", "subjects": [pid],
+                                "decision": "done", "details": _consent_details(version)},
+                               utc_now(when))
+        return {"participant_id": pid, **_consent_details(version)}
+
+    def consent_history(self, pid: str) -> list[dict[str, Any]]:
+        registry.require_participant(self._conn, pid)
+        return [json.loads(v.to_json()) | {"digest": v.digest}
+                for v in registry.consent_history(self._conn, pid)]
+
+    # -- the one door -----------------------------------------------------------------------------
+
+    def request(self, purpose: str, categories: Iterable[str], **options: Any) -> Request:
+        return Request(actor=self.member, role=self.role, purpose=purpose,
+                       categories=frozenset(categories), **options)
+
+    def access_check(self, purpose: str, categories: Iterable[str], *,
+                     now: datetime | None = None, **options: Any) -> CohortDecision:
+        """Who a request would include and why others are not; reads no data (audited)."""
+        return self._engine.decide(self.request(purpose, categories, **options), now=moment(now))
+
+    def authorize(self, purpose: str, categories: Iterable[str], *, now: datetime | None = None,
+                  budget_remaining: dict[str, float] | None = None, **options: Any) -> Grant:
+        """A grant from the policy engine, or PolicyRefusal (both audited)."""
+        return self._engine.authorize(self.request(purpose, categories, **options),
+                                      now=moment(now), budget_remaining=budget_remaining)
+
+    def read_blob(self, grant: Grant, blob_id: str, *, now: datetime | None = None) -> Iterator[bytes]:
+        """Plaintext of one blob through the one door (grant checked live, read audited)."""
+        row = self._conn.execute("SELECT pid, kind FROM blobs WHERE blob_id = ?", (blob_id,)).fetchone()
+        if row is None:
+            raise NotFound(f"no blob '{blob_id}'")
+        pid, category = row
+        when = moment(now)
+        key = self._keys.participant_key(self._conn, pid)
+        chunks = self._store.plaintext(grant, key, pid, blob_id, category, now=when)
+        self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
+                            "subjects": [pid], "decision": "permit",
+                            "details": {"grant": grant.grant_id, "blob": blob_id,
+                                        "category": category}}], when)
+        return chunks
+
+    # -- members ------------------------------------------------------------------------------------
+
+    def add_member(self, name: str, role: str, passphrase: str, *,
+                   now: datetime | None = None) -> dict[str, str]:
+        """A new member with their own passphrase (it wraps the same master key)."""
+        self._require_steward()
+        if role not in self.policy.roles:
+            raise UsageError(f"unknown role '{role}'; the policy set defines "
+                             + ", ".join(sorted(self.policy.roles)))
+        if not _MEMBER_NAME.fullmatch(name):
+            raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
+        _check_passphrase(passphrase)
+        at = utc_now(now)
+        with storage.transaction(self._conn):
+            self._keys.add_slot(self._conn, name, role, passphrase, at)
+            self._audit.append({"actor": self.member, "action": "member.add", "decision": "done",
+                                "details": {"member": name, "role": role}}, at)
+        return {"member": name, "role": role}
+
+    def remove_member(self, name: str, *, now: datetime | None = None) -> dict[str, str]:
+        self._require_steward()
+        at = utc_now(now)
+        with storage.transaction(self._conn):
+            registry.remove_member(self._conn, name)
+            self._audit.append({"actor": self.member, "action": "member.remove", "decision": "done",
+                                "details": {"member": name}}, at)
+        return {"member": name, "removed": "yes"}
+
+    def members(self) -> list[dict[str, str]]:
+        return registry.members(self._conn)
+
+    # -- blobs --------------------------------------------------------------------------------------
+
+    def _insert_blob(self, info: BlobInfo, at: str) -> None:
+        self._conn.execute(
+            "INSERT INTO blobs (blob_id, pid, kind, plain_size, stored_size, created_at) "
+            "VALUES (?, ?, ?, ?, ?, ?)",
+            (info.blob_id, info.pid, info.kind, info.plain_size, info.stored_size, at))
 
     def blobs(self, pid: str | None = None) -> list[dict[str, Any]]:
         sql = "SELECT blob_id, pid, kind, plain_size, stored_size, created_at FROM blobs"
@@ -276,6 +457,12 @@ class Vault:
         with storage.transaction(self._conn):
             return self._audit.sign_head(self._signing, utc_now(now))
 
+
+
+def _consent_details(version: Any) -> dict[str, Any]:
+    return {"consent_version": version.number, "consent_digest": version.digest,
+            "policy_version": version.policy_version,
+            "purposes": {p: c.status.value for p, c in sorted(version.purposes.items())}}
 
 
 def _check_schema(conn: sqlite3.Connection) -> str:
@@ -355,8 +542,6 @@ def verify_audit(path: Path, *, public_key: bytes | None = None,
 
 
 def read_tree_head(text: str) -> audit.TreeHead:
-    import json
-
     try:
         return audit.TreeHead.from_dict(json.loads(text))
     except (ValueError, TypeError) as exc:
@@ -375,3 +560,30 @@ def prove(path: Path, seq: int) -> dict[str, Any]:
 def verify_proof(bundle: dict[str, Any], public_key: bytes) -> bool:
     """Offline check of a proof from `prove`, with the vault's public key alone."""
     return audit.verify_inclusion_bundle(bundle, public_key)
+
+
+def summarise_decision(decision: CohortDecision, *, show_ids: bool) -> dict[str, Any]:
+    """A decision as the CLI shows it: counts always, per-participant reasons to stewards only."""
+    summary: dict[str, Any] = {
+        "permit": decision.permit, "purpose": decision.request.purpose,
+        "categories": sorted(decision.request.categories),
+        "policy_version": decision.policy_version, "eligible": len(decision.eligible),
+        "included": len(decision.included),
+        "cohort_reasons": [r.value for r in decision.cohort_reasons],
+        "refused_by_reason": dict(sorted(decision.counts.items())),
+        "message": decision.refusal_message(),
+    }
+    if show_ids:
+        summary["participants"] = {pid: d.explain() for pid, d in decision.decisions.items()}
+    return summary
+
+
+def format_decision(summary: dict[str, Any]) -> str:
+    lines = [f"purpose {summary['purpose']} ({', '.join(summary['categories'])}): "
+             f"{summary['included']} included" + ("" if summary["permit"] else " - REFUSED"),
+             f"  {summary['message']}"]
+    for reason, count in summary["refused_by_reason"].items():
+        lines.append(f"  refused, {reason}: {count}")
+    for pid, why in summary.get("participants", {}).items():
+        lines.append(f"  {pid}  {why}")
+    return "\n".join(lines)

@@ -181,6 +181,131 @@ def audit_head(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt =
     del as_json  # a tree head is always JSON
 
 
+consent_app = typer.Typer(no_args_is_help=True, help="Amend and show participants' consent.")
+member_app = typer.Typer(no_args_is_help=True, help="Members of the vault and their roles.")
+access_app = typer.Typer(no_args_is_help=True, help="What the policy engine would decide.")
+policy_app = typer.Typer(no_args_is_help=True, help="Validate, show and apply policy sets.")
+app.add_typer(consent_app, name="consent")
+app.add_typer(member_app, name="member")
+app.add_typer(access_app, name="access")
+app.add_typer(policy_app, name="policy")
+FormArg = Annotated[Path, typer.Argument(help="A filled consent form (TOML).")]
+CategoryOpt = Annotated[list[str], typer.Option("--category", help="Data category (repeatable).")]
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise vault.NotFound(f"cannot read {path}") from exc
+
+
+def _consent_text(result: dict[str, Any]) -> str:
+    lines = [f"participant {result['participant_id']}: consent version {result['consent_version']}"]
+    lines += [f"  {p}: {status}" for p, status in result["purposes"].items()]
+    return "\n".join(lines)
+
+
+@app.command()
+def enrol(form: FormArg, path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Enrol a participant from a filled consent form; prints their random id."""
+    raw = _read_bytes(form)
+    with _open(path, member) as v:
+        result = v.enrol(raw)
+    _emit(as_json, result, lambda: _consent_text(result))
+
+
+@consent_app.command("amend")
+def consent_amend(participant: Annotated[str, typer.Argument(help="Participant id.")], form: FormArg,
+                  path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Add a consent version from a new filled form (a partial withdrawal is one)."""
+    raw = _read_bytes(form)
+    with _open(path, member) as v:
+        result = v.amend_consent(participant, raw)
+    _emit(as_json, result, lambda: _consent_text(result))
+
+
+@consent_app.command("show")
+def consent_show(participant: Annotated[str, typer.Argument(help="Participant id.")],
+                 path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Show a participant's consent history, oldest first."""
+    with _open(path, member) as v:
+        history = v.consent_history(participant)
+    _emit(as_json, history, lambda: "\n".join(
+        f"v{h['number']} {h['change']} {h['recorded_at']} signed {h['signed']} expires {h['expires']}: "
+        + ", ".join(f"{p}={c['status']}" for p, c in sorted(h["purposes"].items())) for h in history))
+
+
+@member_app.command("add")
+def member_add(name: Annotated[str, typer.Argument(help="Member name.")],
+               role: Annotated[str, typer.Option("--role", help="steward, analyst or auditor.")],
+               path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Add a member; their passphrase comes from MINDWARD_NEW_PASSPHRASE or a prompt."""
+    with _open(path, member) as v:
+        new = _passphrase(f"Passphrase for {name}: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
+        result = v.add_member(name, role, new)
+    _emit(as_json, result, f"added {result['member']} as {result['role']}")
+
+
+@member_app.command("remove")
+def member_remove(name: Annotated[str, typer.Argument(help="Member name.")], path: VaultOpt,
+                  member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Remove a member's key slot; nobody else is rekeyed."""
+    with _open(path, member) as v:
+        result = v.remove_member(name)
+    _emit(as_json, result, f"removed {name}")
+
+
+@member_app.command("list")
+def member_list(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """List members and their roles."""
+    with _open(path, member) as v:
+        rows = v.members()
+    _emit(as_json, rows, lambda: "\n".join(f"{r['member']}  {r['role']}  since {r['created_at']}"
+                                           for r in rows))
+
+
+@access_app.command("check")
+def access_check(
+    path: VaultOpt,
+    purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
+    category: CategoryOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Who a request would include and why others are not, without reading any data."""
+    with _open(path, member) as v:
+        result = vault.summarise_decision(v.access_check(purpose, category), show_ids=v.role == "steward")
+    _emit(as_json, result, lambda: vault.format_decision(result))
+    if not result["permit"]:
+        raise typer.Exit(vault.PolicyRefusal.exit_code)
+
+
+@policy_app.command("check")
+def policy_check(directory: Annotated[Path, typer.Argument(help="A folder of policy TOML files.")],
+                 as_json: JsonOpt = False) -> None:
+    """Validate a policy folder and print what it defines. No vault needed."""
+    policy = vault.load_policy_dir(directory)
+    lines = vault.describe_policy(policy)
+    _emit(as_json, {"version": policy.version, "lines": lines}, "\n".join(lines))
+
+
+@policy_app.command("show")
+def policy_show(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """The policy set pinned in the vault."""
+    with _open(path, member) as v:
+        lines = v.describe_policy()
+        version = v.policy.version
+    _emit(as_json, {"version": version, "lines": lines}, "\n".join(lines))
+
+
+@policy_app.command("apply")
+def policy_apply(directory: Annotated[Path, typer.Argument(help="A folder of policy TOML files.")],
+                 path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Validate and pin a new policy set in the vault (stewards only; audited)."""
+    with _open(path, member) as v:
+        result = v.apply_policy(directory)
+    _emit(as_json, result, f"policy {result['version']} applied (was {result['previous']})")
+
+
 @app.command()
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "

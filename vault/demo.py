@@ -6,6 +6,7 @@ dishes for a canteen's menu recommender. Nobody real was recorded.
 
 from __future__ import annotations
 
+import csv
 import json
 import shutil
 import time
@@ -39,7 +40,8 @@ def _prepare(root: Path) -> None:
 def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
              progress: Callable[[str, int], Callable[[], None]] | None = None) -> dict[str, Any]:
     """Run the demo in `root` (created, or replaced if it holds an earlier demo)."""
-    from demo_data.generate import generate  # demo-only dependency, loaded on demand
+    from demo_data.forms import write_forms  # demo-only dependency, loaded on demand
+    from demo_data.generate import generate
 
     started = time.perf_counter()
     root = Path(root)
@@ -55,8 +57,16 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
     with Vault.init(vault_dir, DEMO_PASSPHRASE) as v:
         public_key = v.public_key
         say(f"   vault {v.vault_id}, signing key {crypto.fingerprint(public_key)}")
-        say("3. Enrolment: each participant gets a random id and their own data key.")
-        pids = {code: v.new_participant() for code in files.eeg}
+        say("3. Enrolment: each filled consent form is checked against the policy set; identity "
+            "and contact details go only into a record encrypted under the participant's own key.")
+        forms = write_forms(files.root, v.policy)
+        pids = {code: v.enrol(forms[code].read_bytes())["participant_id"] for code in files.eeg}
+        check = v.access_check("recommender-training", ["scores-derived"])
+        refused = ", ".join(f"{n} {r}" for r, n in sorted(check.counts.items()))
+        say(f"   {len(pids)} enrolled; for recommender training {len(check.included)} would be "
+            f"included, refused: {refused}")
+        summary["recommender_cohort"] = len(check.included)
+        summary["recommender_refused"] = dict(check.counts)
         say("4. Ingest: headers and free-text annotations are scrubbed, dates shifted, "
             "then everything is encrypted.")
         tick = progress("ingest", len(files.eeg)) if progress else (lambda: None)
@@ -66,13 +76,13 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
             offset = choose_date_offset(lambda n: uniform_below(n, crypto.random_bytes), start)
             deid = deidentified_blocks(path, DeidOptions(date_offset_days=offset,
                                                         event_codes=_pattern()))
-            v.put_blob(pids[code], "eeg", _prefixed(deid.header, deid.blocks),
+            v.put_blob(pids[code], "eeg-raw", _prefixed(deid.header, deid.blocks),
                        details={"format": deid.meta.format})
             identity = json.dumps({
-                "lab_code": code, "removed": dict(deid.identity.values),
+                "removed": dict(deid.identity.values),
                 "start_date": str(deid.identity.start_date), "date_offset_days": offset,
             }).encode()
-            v.put_blob(pids[code], "identity", [identity])
+            v.put_blob(pids[code], "identity-contact", [identity])
             relabelled += deid.report.annotations_relabelled
             tick()
         summary["annotations_relabelled"] = relabelled
@@ -82,16 +92,19 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
             f"{len(check['blobs_failed'])} failed")
     planted = [p["edf_identity"][k] for p in study["participants"]
                for k in ("name", "patient_code", "technician")]
+    with open(files.participants, newline="") as fh:
+        planted += [row[k] for row in csv.DictReader(fh) for k in ("name", "email", "phone")]
     leaks = _find_any(vault_dir, planted)
-    say(f"6. No invented name, patient code or technician appears in any byte of the vault: "
+    say(f"6. No invented name, contact detail, patient code or technician appears in any byte "
+        "of the vault: "
         f"{'confirmed' if not leaks else 'FAILED'}")
     report = verify_audit(vault_dir, public_key=public_key)
     bundle = prove(vault_dir, report.entries - 1 if report.entries else 0)
     say(f"7. The audit log verifies with the public key alone: {report.ok} "
         f"({report.entries} entries); the last entry's inclusion proof verifies: "
         f"{verify_proof(bundle, public_key)}")
-    say("   Consent policy, pseudonymised DP export and withdrawal with receipts are "
-        "being built (see the project's issues); this demo grows with them.")
+    say("   Pseudonymised DP export and withdrawal with receipts are being built "
+        "(see the project's issues); this demo grows with them.")
     summary.update(
         vault=str(vault_dir), study=str(files.root), audit_ok=report.ok,
         audit_entries=report.entries, identity_leaks=len(leaks),

@@ -4,6 +4,8 @@
     master key --HKDF("data-key-wrap", vault id, participant id)--> wrapping key
         --AES-KW--> participant data key (random, 256 bit) --C2SP--> that participant's blobs
     master key --HKDF("signing-key-wrap", vault id)--> wrapping key --AES-KW--> Ed25519 seed
+    master key --HKDF("vault-secret-wrap", vault id)--> wrapping key --AES-KW--> vault secret
+        --HKDF(label, vault id, purpose)--> keyed lab-code tags, per-purpose pseudonym keys
 
 Destroying a participant's wrapped data key erases all of their data
 (cryptographic erase, NIST SP 800-88). Rekeying re-wraps keys, never data.
@@ -21,6 +23,7 @@ from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFoun
 
 @dataclass(frozen=True)
 class NewParticipantKey:
+    key: bytes  # in memory only, for the first blob written before the row exists
     wrapped: bytes
     commitment: str
 
@@ -31,6 +34,7 @@ class KeyRing:
     def __init__(self, vault_id: str, master: bytes) -> None:
         self.vault_id = vault_id
         self._master = master
+        self._secret = b""
 
     def __reduce__(self) -> object:
         raise TypeError("key rings are not serialisable")
@@ -79,6 +83,7 @@ class KeyRing:
     def new_participant_key(self, pid: str) -> NewParticipantKey:
         key = crypto.new_key()
         return NewParticipantKey(
+            key=key,
             wrapped=crypto.wrap_key(self._participant_kek(pid), key),
             commitment=crypto.key_commitment(key, self.vault_id.encode(), pid.encode()),
         )
@@ -112,20 +117,37 @@ class KeyRing:
 
     # -- per-purpose secrets (pseudonyms) -----------------------------------------------------
 
+    # -- the vault secret: stable across rekeys; roots keyed tags and pseudonyms -------------
+
+    def _secret_kek(self) -> bytes:
+        return crypto.derive_key(self._master, "vault-secret-wrap", self.vault_id.encode())
+
+    def wrap_secret(self, secret: bytes) -> bytes:
+        return crypto.wrap_key(self._secret_kek(), secret)
+
+    def load_secret(self, wrapped: bytes) -> None:
+        self._secret = crypto.unwrap_key(self._secret_kek(), wrapped)
+
+    def lab_code_tag(self, code: str) -> str:
+        """Keyed tag of a lab participant code: finds duplicates without storing the code."""
+        key = crypto.derive_key(self._secret, "lab-code-tag", self.vault_id.encode())
+        return crypto.hmac_sha256(key, code.encode("utf-8")).hex()
+
     def purpose_key(self, label: str, purpose: str) -> bytes:
         """A key bound to one purpose, e.g. for keyed pseudonyms (one domain per purpose)."""
-        return crypto.derive_key(self._master, label, self.vault_id.encode(), purpose.encode())
+        return crypto.derive_key(self._secret, label, self.vault_id.encode(), purpose.encode())
 
     # -- rekey ----------------------------------------------------------------------------------
 
     def rekeyed(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
-                wrapped_signing: bytes, now: str) -> tuple[KeyRing, bytes]:
+                wrapped_signing: bytes, now: str) -> tuple[KeyRing, bytes, bytes]:
         """Re-wrap every key under a fresh master key (inside the caller's transaction).
 
         Every other member's slot is dropped: their passphrases wrap the old
         master key, and only they can choose a new one.
         """
         fresh = KeyRing(self.vault_id, crypto.new_key())
+        fresh._secret = self._secret
         signing = self.signing_key(wrapped_signing)
         rows = conn.execute(
             "SELECT pid, wrapped_key FROM participants WHERE wrapped_key IS NOT NULL"
@@ -138,4 +160,4 @@ class KeyRing:
             )
         conn.execute("DELETE FROM keyslots")
         fresh.add_slot(conn, member, role, passphrase, now)
-        return fresh, fresh.wrap_signing_key(signing)
+        return fresh, fresh.wrap_signing_key(signing), fresh.wrap_secret(self._secret)

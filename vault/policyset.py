@@ -463,7 +463,9 @@ def load_policy_dir(folder: Path) -> PolicySet:
     return parse_policy_files(files)
 
 
-DEFAULT_POLICY_DIR = Path(__file__).resolve().parent.parent / "policies"
+# installed: vault/default_policies (package data); in a checkout: the top-level policies/
+_PACKAGED = Path(__file__).resolve().parent / "default_policies"
+DEFAULT_POLICY_DIR = _PACKAGED if _PACKAGED.is_dir() else Path(__file__).resolve().parent.parent / "policies"
 
 
 def load_default_policy() -> PolicySet:

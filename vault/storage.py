@@ -30,9 +30,16 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     ),
     # one row per participant; wrapped_key NULL once erased (cryptographic erase)
     "participants": (
-        {"pid": str, "wrapped_key": bytes, "key_commitment": str, "created_at": str,
-         "erased_at": str},
+        {"pid": str, "wrapped_key": bytes, "key_commitment": str, "lab_code_tag": str,
+         "created_at": str, "erased_at": str},
         "pid",
+    ),
+    # the policy sets this vault has applied, by content hash
+    "policy_versions": ({"version": str, "body": bytes, "applied_at": str}, "version"),
+    # append-only consent versions (random participant ids, purposes, statuses, dates)
+    "consents": (
+        {"pid": str, "number": int, "body": bytes, "digest": str, "recorded_at": str},
+        ("pid", "number"),
     ),
     "blobs": (
         {"blob_id": str, "pid": str, "kind": str, "plain_size": int, "stored_size": int,
@@ -47,6 +54,8 @@ _NOT_NULL: dict[str, set[str]] = {
     "meta": {"value"},
     "keyslots": {"role", "kdf", "wrapped_master", "created_at"},
     "participants": {"key_commitment", "created_at"},
+    "policy_versions": {"body", "applied_at"},
+    "consents": {"body", "digest", "recorded_at"},
     "blobs": {"pid", "kind", "plain_size", "stored_size", "created_at"},
     "audit_log": {"entry", "leaf_hash"},
     "tree_heads": {"body", "signature"},
@@ -88,7 +97,8 @@ def create_schema(conn: sqlite3.Connection) -> None:
     for name, (columns, pk) in _TABLES.items():
         db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
     db["blobs"].create_index(["pid"])  # type: ignore[union-attr]
-    for table in ("audit_log", "tree_heads"):
+    db["participants"].create_index(["lab_code_tag"], unique=True)  # type: ignore[union-attr]
+    for table in ("audit_log", "tree_heads", "consents", "policy_versions"):
         conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
 
 

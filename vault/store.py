@@ -15,6 +15,7 @@ missing or partial blob.
 
 from __future__ import annotations
 
+import datetime as dt
 import errno
 import os
 from collections.abc import Iterable, Iterator
@@ -23,7 +24,8 @@ from pathlib import Path
 from typing import BinaryIO
 
 from vault import crypto
-from vault.errors import IntegrityError, NotFound, StorageFull
+from vault.errors import IntegrityError, NotFound, PolicyRefusal, StorageFull
+from vault.policy import Grant
 
 BLOB_DIR = "blobs"
 TMP_DIR = "tmp"
@@ -133,18 +135,26 @@ class BlobStore:
         except FileNotFoundError as exc:
             raise IntegrityError(f"blob '{blob_id}' is missing from the vault") from exc
 
-    def plaintext(self, key: bytes, pid: str, blob_id: str) -> Iterator[bytes]:
-        """Authenticated plaintext chunks of a blob; raises IntegrityError on any tampering.
+    def plaintext(self, grant: Grant, key: bytes, pid: str, blob_id: str, category: str, *,
+                  now: dt.datetime) -> Iterator[bytes]:
+        """The one door: authenticated plaintext of a blob, only under a grant that admits it.
 
-        Only the grant-checking read path in `vault.access` may call this.
+        The grant is checked (live consent included) before the file is opened;
+        any tampering raises IntegrityError and no unauthenticated byte is handed out.
         """
+        if not isinstance(grant, Grant):
+            raise PolicyRefusal("reading participant data needs a grant from the policy engine")
+        grant.admit(pid, category, now=now)
+        return self._decrypt(key, pid, blob_id)
+
+    def _decrypt(self, key: bytes, pid: str, blob_id: str) -> Iterator[bytes]:
         with self._open(blob_id) as fh:
             yield from crypto.ChunkedDecryptor(key, blob_context(self.vault_id, pid, blob_id), fh)
 
     def authenticate(self, key: bytes, pid: str, blob_id: str, plain_size: int) -> None:
         """Check every chunk's tag and the length; no plaintext leaves this function."""
         total = 0
-        for chunk in self.plaintext(key, pid, blob_id):
+        for chunk in self._decrypt(key, pid, blob_id):
             total += len(chunk)
         if total != plain_size:
             raise IntegrityError(f"blob '{blob_id}' has the wrong length")
