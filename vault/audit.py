@@ -106,11 +106,34 @@ class AuditLog:
     def __init__(self, conn: sqlite3.Connection, vault_id: str) -> None:
         self.conn = conn
         self.vault_id = vault_id
+        self._cache: merkle.CompactRange | None = None
 
     def _frontier(self) -> merkle.CompactRange:
+        """The tree's frontier: cached in memory, checked against the log's length.
+
+        It is persisted with every signed head; entries appended since then are
+        folded in from their stored leaf hashes, so a rolled-back or crashed
+        transaction can never leave the cache ahead of the log.
+        """
+        row = self.conn.execute("SELECT MAX(seq) FROM audit_log").fetchone()
+        size = 0 if row[0] is None else row[0] + 1
+        if self._cache is None or self._cache.size != size:
+            self._cache = self._rebuild(size)
+        return self._cache
+
+    def _rebuild(self, size: int) -> merkle.CompactRange:
         row = self.conn.execute("SELECT value FROM meta WHERE key = ?", (_FRONTIER_KEY,)).fetchone()
-        return merkle.CompactRange() if row is None else merkle.CompactRange.from_bytes(
-            bytes.fromhex(row[0]))
+        frontier = merkle.CompactRange()
+        if row is not None:
+            frontier = merkle.CompactRange.from_bytes(bytes.fromhex(row[0]))
+        if frontier.size > size:
+            raise IntegrityError("the audit log is shorter than its recorded frontier")
+        tail = [r[0] for r in self.conn.execute(
+            "SELECT leaf_hash FROM audit_log WHERE seq >= ? ORDER BY seq", (frontier.size,))]
+        frontier.extend(tail)
+        if frontier.size != size:
+            raise IntegrityError("the audit log has gaps")
+        return frontier
 
     @property
     def size(self) -> int:
@@ -121,7 +144,7 @@ class AuditLog:
         return self.append_many([fields], at)[0]
 
     def append_many(self, entries: Iterable[Mapping[str, Any]], at: str) -> list[int]:
-        frontier = self._frontier()
+        frontier = merkle.CompactRange.from_bytes(self._frontier().to_bytes())  # a working copy
         rows: list[tuple[int, bytes, bytes]] = []
         for fields in entries:
             seq = frontier.size
@@ -132,12 +155,13 @@ class AuditLog:
         self.conn.executemany(
             "INSERT INTO audit_log (seq, entry, leaf_hash) VALUES (?, ?, ?)", rows
         )
-        set_meta(self.conn, _FRONTIER_KEY, frontier.to_bytes().hex())
+        self._cache = frontier  # re-checked against the log's length on next use
         return [r[0] for r in rows]
 
     def sign_head(self, key: crypto.SigningKey, at: str) -> TreeHead:
         """Sign the current tree head (inside an open transaction) and store it."""
         frontier = self._frontier()
+        set_meta(self.conn, _FRONTIER_KEY, frontier.to_bytes().hex())
         unsigned = TreeHead(self.vault_id, frontier.size, frontier.root(), at, b"")
         head = TreeHead(**{**unsigned.__dict__, "signature": key.sign(HEAD_DOMAIN, unsigned.body())})
         self.conn.execute(

@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import io
 import secrets
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -372,6 +373,24 @@ def _read_exactly(reader: BinaryIO, n: int) -> bytes:
     return parts[0] if len(parts) == 1 else b"".join(parts)
 
 
+def _readinto_exactly(reader: BinaryIO, view: memoryview) -> int:
+    """Fill `view` from `reader` unless the stream ends first; returns the bytes read."""
+    got = 0
+    # real files read straight into the buffer; any other stream through its own read()
+    readinto = reader.readinto if isinstance(reader, io.BufferedReader | io.FileIO) else None
+    while got < len(view):
+        if readinto is not None:
+            n = readinto(view[got:])
+        else:
+            part = reader.read(len(view) - got)
+            n = len(part)
+            view[got : got + n] = part
+        if not n:
+            break
+        got += n
+    return got
+
+
 class ChunkedDecryptor:
     """Pull-based streaming decryption of a C2SP chunked ciphertext.
 
@@ -383,6 +402,7 @@ class ChunkedDecryptor:
 
     def __init__(self, input_key: bytes, context: bytes, reader: BinaryIO) -> None:
         self._reader = reader
+        self._buffer = bytearray()
         self._failed: str | None = None
         self._finished = False
         self._counter = 0
@@ -398,18 +418,20 @@ class ChunkedDecryptor:
         self._failed = why
         raise IntegrityError(f"integrity check failed: {why}")
 
-    def _open(self, chunk: bytes | memoryview) -> bytes:
+    def _nonce(self) -> bytes:
         if self._counter >= MAX_CHUNKS:
             self._fail("message exceeds the chunk counter")
         nonce = (self._base_nonce ^ self._counter).to_bytes(NONCE_SIZE, "big")
-        try:
-            plain = self._aead.decrypt(nonce, chunk, None)
-        except InvalidTag:
-            self._fail(f"chunk {self._counter} failed authentication")
         self._counter += 1
-        return plain
+        return nonce
 
-    def next_chunk(self, max_chunks: int = 64) -> bytes | None:
+    def _open_into(self, chunk: memoryview, out: memoryview) -> None:
+        try:
+            self._aead.decrypt_into(self._nonce(), chunk, None, out)
+        except InvalidTag:
+            self._fail(f"chunk {self._counter - 1} failed authentication")
+
+    def next_chunk(self, max_chunks: int = 64) -> bytes | bytearray | None:
         """The next run of up to `max_chunks` authenticated chunks, or None at the verified end.
 
         A run is handed out only when every chunk in it authenticated and, if
@@ -422,22 +444,28 @@ class ChunkedDecryptor:
         if max_chunks < 1:
             raise UsageError("max_chunks must be at least 1")
         want = max_chunks * CT_CHUNK_SIZE
-        block = _read_exactly(self._reader, want)
-        view = memoryview(block)
-        full = len(block) // CT_CHUNK_SIZE
-        out = [self._open(view[i * CT_CHUNK_SIZE : (i + 1) * CT_CHUNK_SIZE]) for i in range(full)]
-        if len(block) == want:
-            return out[0] if len(out) == 1 else b"".join(out)
-        rest = view[full * CT_CHUNK_SIZE :]
-        if len(rest) < TAG_SIZE:
+        if len(self._buffer) != want:
+            self._buffer = bytearray(want)
+        view = memoryview(self._buffer)
+        got = _readinto_exactly(self._reader, view)
+        full = got // CT_CHUNK_SIZE
+        final = got < want
+        rest = got - full * CT_CHUNK_SIZE
+        if final and rest < TAG_SIZE:
             self._fail("ciphertext is truncated (final chunk missing)")
-        out.append(self._open(rest))
-        if self._reader.read(1):
-            self._fail("data follows the final chunk")
-        self._finished = True
-        return b"".join(out)
+        plain = bytearray(full * CHUNK_SIZE + (rest - TAG_SIZE if final else 0))
+        out = memoryview(plain)
+        for i in range(full):
+            self._open_into(view[i * CT_CHUNK_SIZE : (i + 1) * CT_CHUNK_SIZE],
+                            out[i * CHUNK_SIZE : (i + 1) * CHUNK_SIZE])
+        if final:
+            self._open_into(view[full * CT_CHUNK_SIZE : got], out[full * CHUNK_SIZE :])
+            if self._reader.read(1):
+                self._fail("data follows the final chunk")
+            self._finished = True
+        return plain
 
-    def __iter__(self) -> Iterator[bytes]:
+    def __iter__(self) -> Iterator[bytes | bytearray]:
         while (chunk := self.next_chunk()) is not None:
             yield chunk
 
@@ -450,8 +478,6 @@ def chunked_encrypt(input_key: bytes, context: bytes, plaintext: bytes) -> bytes
 
 def chunked_decrypt(input_key: bytes, context: bytes, ciphertext: bytes) -> bytes:
     """One-shot chunked decryption; raises IntegrityError, never returns partial data."""
-    import io  # local: keeps the module's import surface small
-
     return b"".join(ChunkedDecryptor(input_key, context, io.BytesIO(ciphertext)))
 
 

@@ -360,13 +360,9 @@ def _decide_each(policy: PolicySet, request: Request,
 # --------------------------------------------------------------------------- benchmark
 
 
-def bench_decide(n: int = 100_000, *, repeat: int = 3) -> dict[str, float]:
-    """Time `decide` for a cohort of `n` synthetic participants against a baseline.
-
-    The baseline is a bare loop doing one dict lookup and one dict store per
-    participant (the least any decision needs), measured in the same run.
-    Returns seconds (best of `repeat`), decisions per second and the ratio.
-    """
+def synthetic_cohort(n: int) -> tuple[PolicySet, Request, dict[str, ConsentVersion | None],
+                                      dict[str, float], dt.datetime]:
+    """`n` synthetic participants over four shared consent variants (benchmarks only)."""
     from vault.consent import ConsentTerms, record_consent
     from vault.policyset import load_default_policy
 
@@ -392,7 +388,18 @@ def bench_decide(n: int = 100_000, *, repeat: int = 3) -> dict[str, float]:
     request = Request(actor="bench", role="analyst", purpose="recommender-training/canteen-menu",
                       categories=frozenset({"scores-derived", "ratings-explicit"}), export=True,
                       epsilon=0.25)
-    budget = dict.fromkeys(pids, 1.0)
+    return policy, request, consents, dict.fromkeys(pids, 1.0), at
+
+
+def bench_decide(n: int = 100_000, *, repeat: int = 3) -> dict[str, float]:
+    """Time `decide` for a cohort of `n` synthetic participants against a baseline.
+
+    The baseline is a bare loop doing one dict lookup and one dict store per
+    participant (the least any decision needs), measured in the same run.
+    Returns seconds (best of `repeat`), decisions per second and the ratio.
+    """
+    policy, request, consents, budget, at = synthetic_cohort(n)
+    pids = list(consents)
     best, base = float("inf"), float("inf")
     result = None
     for _ in range(repeat):

@@ -352,7 +352,10 @@ def release_matrix(
     noise (the noise stays unbiased); clipping them is free post-processing.
     """
     mech, budget = choose_mechanism(epsilon, rho, mechanism)
-    unit = PrivacyUnit(unit)
+    try:
+        unit = PrivacyUnit(unit)
+    except ValueError:
+        raise UsageError('unit must be "participant" or "rating"') from None
     grid = make_grid(low, high, grid_k)
     arr = as_ratings(values)
     rated = ~np.isnan(arr)
