@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from decimal import Decimal
 from fractions import Fraction as F
 from types import ModuleType
 
@@ -156,7 +157,7 @@ def test_noise_variance_matches_the_reference(unit: PrivacyUnit, mechanism: str)
     values = rng.integers(0, 5, (n_rows, n_items)).astype(float) / 2  # on the 1/2 grid, 0..2
     values[rng.random(values.shape) < 0.3] = np.nan
     budget = {"epsilon": F(3, 2)} if mechanism == "laplace" else {"rho": F(1, 3)}
-    out, g = release_matrix(values, low=0, high=2, grid_k=2, unit=unit, source=seeded(11),
+    out, _ = release_matrix(values, low=0, high=2, grid_k=2, unit=unit, source=seeded(11),
                             **budget)
     rated = ~np.isnan(values)
     truth = np.where(rated, values * 2, 2)  # midpoint 1 = 2 units where unrated
@@ -286,24 +287,28 @@ ratings_matrices = st.integers(1, 6).flatmap(lambda items: st.lists(
     min_size=1, max_size=6))
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(rows=ratings_matrices, m=st.integers(1, 5), gaussian=st.booleans(),
        centres_seed=st.integers(0, 2**32 - 1), seed=st.integers(0, 2**32 - 1),
-       extreme=st.booleans())
+       extreme=st.booleans(), high=st.sampled_from([F(4), F(9, 2)]), k=st.sampled_from([2, 64]),
+       budget=st.sampled_from([F(1, 3), F(1, 10**6 + 3)]))
 def test_one_participant_moves_each_statistic_by_at_most_its_sensitivity(
-    rows: list, m: int, gaussian: bool, centres_seed: int, seed: int, extreme: bool
+    rows: list, m: int, gaussian: bool, centres_seed: int, seed: int, extreme: bool,
+    high: F, k: int, budget: F,
 ) -> None:
-    # add/remove neighbours: a statistic moves by exactly one participant's contribution
+    # add/remove neighbours: a statistic moves by exactly one participant's contribution.
+    # Odd spans (high 9/2 at k 2), fine grids and budgets with large denominators make
+    # the samplers' limits force divisors D > 1; `extreme` puts ratings at the range ends.
     values = np.array([[np.nan if v is None else v / 2 for v in r] for r in rows])
-    if extreme:  # push ratings to the ends of the range, the worst case for the bounds
-        values = np.where(np.isnan(values), np.nan, np.where(values > 2, 4.0, 0.0))
-    grid = noise.FixedPointGrid(F(0), F(4), 2)
+    if extreme:
+        values = np.where(np.isnan(values), np.nan, np.where(values > 2, float(high), 0.0))
+    grid = noise.FixedPointGrid(F(0), high, k)
     plan = plan_aggregate(len(rows), grid, "discrete-gaussian" if gaussian else "discrete-laplace",
-                          F(1, 3), m, (1, 2, 3, 4))
+                          budget, m, (1, 2, 3, 4))
     kept = bound_contributions(~np.isnan(values), m, seeded(seed))
     assert (kept.sum(axis=1) <= m).all() and not (kept & np.isnan(values)).any()
     units = grid.quantise(np.where(kept, values, 0.0))
-    centres = np.random.default_rng(centres_seed).integers(0, 9, values.shape[1])
+    centres = np.random.default_rng(centres_seed).integers(0, grid.span_units + 1, values.shape[1])
     w, s = first_moments(plan, units, kept)
     for row in range(values.shape[0]):
         cov, co = second_moments(plan, units[row], kept[row], centres)
@@ -314,6 +319,19 @@ def test_one_participant_moves_each_statistic_by_at_most_its_sensitivity(
                 assert int((part.astype(object) ** 2).sum()) <= stat.l2_squared
             else:
                 assert int(np.abs(part).sum()) <= stat.l1
+
+
+def test_large_denominators_force_coarser_released_grids() -> None:
+    # the hypothesis test above exercises D > 1 (truncation) with these parameters
+    grid = noise.FixedPointGrid(F(0), F(9, 2), 64)
+    for mech in ("discrete-laplace", "discrete-gaussian"):
+        plan = plan_aggregate(6, grid, mech, F(1, 10**6 + 3), 5, (1, 2, 3, 4))
+        assert plan.stats["covariance"].divisor > 1
+        assert plan.stats["covariance"].step == F(plan.stats["covariance"].divisor, (320 * 64) ** 2)
+        for stat in plan.stats.values():  # and every noise parameter fits the exact samplers
+            assert stat.noise.numerator <= noise.LAPLACE_MAX_PART
+            if mech == "discrete-gaussian":
+                assert stat.noise.denominator <= noise.GAUSSIAN_MAX_DENOMINATOR
 
 
 def test_the_weight_bounds_are_attained() -> None:
@@ -363,7 +381,7 @@ def test_aggregate_means_approach_weighted_means_at_large_epsilon() -> None:
         w = rated.sum(axis=1) ** -power  # 1/n for Laplace, 1/sqrt(n) for Gaussian
         expected = [np.average(values[rated[:, j], j], weights=w[rated[:, j]])
                     for j in range(n_items)]
-        rel, g = release_aggregate(values, low=0, high=4, grid_k=2, max_items_per_participant=4,
+        rel, _ = release_aggregate(values, low=0, high=4, grid_k=2, max_items_per_participant=4,
                                    source=seeded(46), **budget)
         np.testing.assert_allclose(rel.means, expected, atol=2e-3)  # numpy.average
         np.testing.assert_allclose(rel.weights, (rated * w[:, None]).sum(axis=0), atol=2e-3)
@@ -553,6 +571,13 @@ def test_bad_inputs_are_refused_without_values_in_messages() -> None:
         lambda: Budget(0),
         lambda: zcdp_epsilon(1, 0),
         lambda: spend_pure(1, 0),
+        lambda: exact(Decimal("sNaN")),
+        lambda: exact(True),
+        lambda: release_aggregate(good, low=0, high=4, grid_k=2**40, max_items_per_participant=2,
+                                  epsilon=1),  # the integer grid would overflow
+        lambda: release_aggregate(good, low=0, high=4, grid_k=1, max_items_per_participant=2,
+                                  epsilon=F(1, 2**50)),  # beyond the exact samplers
+        lambda: release_matrix(good, low=0, high=4, grid_k=1, rho=F(1, 3), delta=1),
     ]
     for call in calls:
         with pytest.raises((VaultError, ValueError)) as err:
@@ -648,7 +673,8 @@ def test_aggregate_components_and_composition_match_opendp(dp: ModuleType) -> No
         assert sum((c.epsilon or c.rho) for c in g.components) == stated
 
 
-@pytest.mark.parametrize(("rho", "delta"), [(F(1, 10), F(1, 10**6)), (F(2), F(1, 10**9)), (F(1, 1000), F(1, 100))])
+@pytest.mark.parametrize(("rho", "delta"),
+                         [(F(1, 10), F(1, 10**6)), (F(2), F(1, 10**9)), (F(1, 1000), F(1, 100))])
 def test_zcdp_conversion_is_never_below_opendps(dp: ModuleType, rho: F, delta: F) -> None:
     sigma = 1 / math.sqrt(2 * float(rho))  # rho-zCDP at sensitivity 1
     meas = dp.m.make_gaussian(dp.atom_domain(T="i64"), dp.absolute_distance(T="i64"), sigma)

@@ -387,6 +387,27 @@ class Vault:
                                         "category": category}}], when)
         return chunks
 
+    # -- ingest -------------------------------------------------------------------------------------
+
+    def ingest_eeg(self, pid: str, path: Path, *, sidecar: Path | None = None,
+                   event_codes: str | None = None, keep_sex: bool = False,
+                   age_band_years: int | None = None, keep_header_identity: bool = False,
+                   now: datetime | None = None) -> dict[str, Any]:
+        """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed."""
+        from vault.ingest import ingest_eeg
+
+        self._require_steward()
+        return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
+                          keep_sex=keep_sex, age_band_years=age_band_years,
+                          keep_header_identity=keep_header_identity, now=moment(now))
+
+    def ingest_scores(self, path: Path, kind: str, *, now: datetime | None = None) -> dict[str, Any]:
+        """Store a CSV of derived scores or explicit ratings: all rows or none."""
+        from vault.ingest import ingest_scores
+
+        self._require_steward()
+        return ingest_scores(self, Path(path), kind, now=moment(now))
+
     # -- members ------------------------------------------------------------------------------------
 
     def add_member(self, name: str, role: str, passphrase: str, *,

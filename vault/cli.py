@@ -306,6 +306,55 @@ def policy_apply(directory: Annotated[Path, typer.Argument(help="A folder of pol
     _emit(as_json, result, f"policy {result['version']} applied (was {result['previous']})")
 
 
+ingest_app = typer.Typer(no_args_is_help=True, help="Take recordings and scores into the vault.")
+app.add_typer(ingest_app, name="ingest")
+ParticipantArg = Annotated[str, typer.Argument(help="Participant id (as 'enrol' printed).")]
+
+
+@ingest_app.command("eeg")
+def ingest_eeg(
+    participant: ParticipantArg,
+    recording: Annotated[Path, typer.Argument(help="EDF, EDF+, BDF, or .npy/.npz with --sidecar.")],
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    sidecar: Annotated[Path | None, typer.Option(help="JSON sidecar for NumPy input.")] = None,
+    event_codes: Annotated[str | None, typer.Option(
+        help="Regex of annotation labels to keep (default: the policy set's).")] = None,
+    keep_sex: Annotated[bool, typer.Option(help="Keep the header's sex subfield.")] = False,
+    age_band: Annotated[int | None, typer.Option(
+        min=1, max=50, help="Replace the birthdate by an age band of this many years.")] = None,
+    keep_header_identity: Annotated[bool, typer.Option(
+        help="Keep the removed header fields in the participant's encrypted identity record.")] = False,
+) -> None:
+    """De-identify a recording and store it encrypted; prints what was changed."""
+    with _open(path, member) as v:
+        result = v.ingest_eeg(participant, recording, sidecar=sidecar, event_codes=event_codes,
+                              keep_sex=keep_sex, age_band_years=age_band,
+                              keep_header_identity=keep_header_identity)
+    report = result["deidentification"]
+    _emit(as_json, result, lambda: (
+        f"stored {result['blob_id']} ({result['recording']['format']}, "
+        f"{len(result['recording']['channels'])} channels, {result['recording']['duration']:g} s)\n"
+        f"  header fields removed or replaced: {', '.join(report['fields_changed']) or 'none'}\n"
+        f"  annotations relabelled: {report['annotations_relabelled']} of {report['annotations']}\n"
+        f"  start date shifted: {'yes' if report['date_shift_applied'] else 'no'}\n"
+        "  De-identification removes what the header and labels can name; EEG itself can still "
+        "identify a person. Ask your ethics board and DPO before sharing."))
+
+
+@ingest_app.command("scores")
+def ingest_scores(
+    scores_file: Annotated[Path, typer.Argument(help="CSV: participant_id,item_id,value.")],
+    kind: Annotated[str, typer.Option("--kind", help="derived or explicit.")],
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Store derived scores or explicit ratings (one transaction; re-ingest is a no-op)."""
+    with _open(path, member) as v:
+        result = v.ingest_scores(scores_file, kind)
+    _emit(as_json, result, lambda: (
+        f"{result['rows']} {result['category']} rows for {result['participants']} participants: "
+        f"{result['batches_stored']} batches stored, {result['batches_already_stored']} already there"))
+
+
 @app.command()
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "

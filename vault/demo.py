@@ -17,13 +17,10 @@ from typing import Any
 
 from vault import crypto
 from vault.api import Vault, prove, verify_audit, verify_proof
-from vault.edf import DeidOptions, deidentified_blocks
-from vault.edf_header import choose_date_offset, uniform_below
-from vault.errors import Conflict
+from vault.errors import Conflict, PolicyRefusal
 
 DEMO_PASSPHRASE = "tasting lab demo passphrase (demo only)"  # noqa: S105 (invented data)
 MARKER = ".mindward-demo"
-EVENT_CODES = r"^(stim/dish-\d{2}|block/\d+)$"
 
 Say = Callable[[str], None]
 
@@ -70,23 +67,22 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         say("4. Ingest: headers and free-text annotations are scrubbed, dates shifted, "
             "then everything is encrypted.")
         tick = progress("ingest", len(files.eeg)) if progress else (lambda: None)
-        relabelled = 0
+        relabelled, refused_ingest, kept = 0, 0, {}
         for code, path in files.eeg.items():
-            start = _start_date(path)
-            offset = choose_date_offset(lambda n: uniform_below(n, crypto.random_bytes), start)
-            deid = deidentified_blocks(path, DeidOptions(date_offset_days=offset,
-                                                        event_codes=_pattern()))
-            v.put_blob(pids[code], "eeg-raw", _prefixed(deid.header, deid.blocks),
-                       details={"format": deid.meta.format})
-            identity = json.dumps({
-                "removed": dict(deid.identity.values),
-                "start_date": str(deid.identity.start_date), "date_offset_days": offset,
-            }).encode()
-            v.put_blob(pids[code], "identity-contact", [identity])
-            relabelled += deid.report.annotations_relabelled
+            try:
+                result = v.ingest_eeg(pids[code], path, keep_header_identity=True)
+            except PolicyRefusal:
+                refused_ingest += 1  # e.g. consent already expired: nothing is stored
+            else:
+                relabelled += result["deidentification"]["annotations_relabelled"]
+                kept[code] = pids[code]
             tick()
-        summary["annotations_relabelled"] = relabelled
-        say(f"   {len(files.eeg)} recordings stored; {relabelled} free-text annotations replaced")
+        summary.update(annotations_relabelled=relabelled, ingest_refused=refused_ingest)
+        stored = {kind: v.ingest_scores(_by_vault_id(src, kept, root / f"{kind}.csv"), kind)
+                  for kind, src in (("explicit", files.ratings), ("derived", files.scores))}
+        say(f"   {len(kept)} recordings stored, {refused_ingest} refused (no current consent "
+            f"covering storage); {relabelled} free-text annotations replaced; "
+            f"{stored['explicit']['rows']} ratings and {stored['derived']['rows']} derived scores stored")
         check = v.verify()
         say(f"5. Verification: {check['blobs_checked']} blobs authenticated, "
             f"{len(check['blobs_failed'])} failed")
@@ -114,24 +110,15 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
     return summary
 
 
-def _pattern():  # type: ignore[no-untyped-def]
-    import re
-
-    return re.compile(EVENT_CODES)
-
-
-def _prefixed(header: bytes, blocks):  # type: ignore[no-untyped-def]
-    yield header
-    yield from blocks
-
-
-def _start_date(path: Path):  # type: ignore[no-untyped-def]
-    import datetime as dt
-
-    with open(path, "rb") as fh:
-        raw = fh.read(256)[168:176].decode("ascii")
-    day, month, year = (int(x) for x in raw.split("."))
-    return dt.date(1900 + year if year >= 85 else 2000 + year, month, day)
+def _by_vault_id(source: Path, pids: dict[str, str], out: Path) -> Path:
+    """The steward's step: the lab's participant codes replaced by the vault's random ids."""
+    with open(source, newline="") as fh, open(out, "w", newline="") as dst:
+        writer = csv.writer(dst)
+        writer.writerow(["participant_id", "item_id", "value"])
+        for row in csv.DictReader(fh):
+            if row["participant_code"] in pids:
+                writer.writerow([pids[row["participant_code"]], row["item_id"], row["value"]])
+    return out
 
 
 def _find_any(root: Path, needles: list[str]) -> list[str]:

@@ -104,6 +104,28 @@ class KeyRing:
                 f"the data key of participant '{pid}' failed its integrity check"
             ) from exc
 
+    def date_offset(self, conn: sqlite3.Connection, pid: str) -> int | None:
+        """The participant's secret date shift in days, or None before their first recording.
+
+        Stored only wrapped under a key derived from their data key (gone when they are erased).
+        """
+        row = conn.execute("SELECT date_offset FROM participants WHERE pid = ?", (pid,)).fetchone()
+        if row is None or row[0] is None:
+            return None
+        kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
+        return int.from_bytes(crypto.unwrap_key_padded(kek, row[0]), "big", signed=True)
+
+    def store_date_offset(self, conn: sqlite3.Connection, pid: str, days: int) -> None:
+        kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
+        wrapped = crypto.wrap_key_padded(kek, days.to_bytes(8, "big", signed=True))
+        conn.execute("UPDATE participants SET date_offset = ? WHERE pid = ? AND date_offset IS NULL",
+                     (wrapped, pid))
+
+    def participant_tag(self, conn: sqlite3.Connection, pid: str, label: str, message: bytes) -> str:
+        """HMAC under the participant's own data key: links their rows, dies with their key."""
+        key = crypto.derive_key(self.participant_key(conn, pid), label)
+        return crypto.hmac_sha256(key, message).hex()
+
     # -- signing key ----------------------------------------------------------------------------
 
     def _signing_kek(self) -> bytes:

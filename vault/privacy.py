@@ -93,10 +93,14 @@ def exact(value: Exact, name: str = "value") -> Fraction:
         return value
     if isinstance(value, numbers.Integral):
         return Fraction(int(value))
-    if isinstance(value, float | Decimal):
+    if isinstance(value, Decimal):
+        if not value.is_finite():
+            raise UsageError(f"{name} must be finite")
+        return Fraction(value)
+    if isinstance(value, float):
         if not math.isfinite(value):
             raise UsageError(f"{name} must be finite")
-        return Fraction(str(float(value))) if isinstance(value, float) else Fraction(value)
+        return Fraction(str(float(value)))
     if isinstance(value, str):
         try:
             return Fraction(value)

@@ -37,8 +37,8 @@ covers it; any fixed centre has the same bound). Only the upper triangle is
 noised; its norms are at most those of the full outer product.
 Where a statistic's exact bound is too large for the exact samplers, each
 participant's contribution is divided by an integer D with truncation towards
-zero, which never increases a norm: the released step is D times finer grid
-unit and the bound becomes floor(bound / D) (L1) or floor(bound / D^2) (L2^2).
+zero, which never increases a norm: the released step is D fine grid units
+and the bound becomes floor(bound / D) (L1) or floor(bound / D^2) (L2^2).
 D is the smallest that fits, so most releases use D = 1.
 
 Everything after the noise (shrinkage, clipping, PSD projection, prediction)
@@ -119,6 +119,8 @@ def _fit(mech: Mechanism, name: str, fine: int, part: Fraction, n_people: int,
     if part.numerator > (_SAMPLER_LIMIT if mech == LAPLACE else _GAUSSIAN_DEN_LIMIT // 2):
         raise UsageError("epsilon or rho has too large a numerator for the exact samplers")
     cap = _SAMPLER_LIMIT // part.denominator
+    if cap < 1:
+        raise UsageError("epsilon or rho has too large a denominator for the exact samplers")
     if mech == LAPLACE:
         divisor = max(1, -(-fine // cap))
         bound = fine // divisor
@@ -150,6 +152,8 @@ def plan_aggregate(n_participants: int, grid: noise.FixedPointGrid, mechanism: M
     q = WEIGHT_RESOLUTION * max_items
     b = grid.span_units - grid.span_units // 2
     k = grid.k
+    if (q * b) ** 2 >= _INT_LIMIT:
+        raise UsageError("grid_k or max_items_per_participant too large for the integer grid")
     power = 1 if mechanism == LAPLACE else 2  # L1 bounds, or squared L2 bounds
     fine = {"weights": q, "sums": q * b, "covariance": (q * b) ** 2, "co_weights": q * q}
     steps = {"weights": (Fraction(1, q), "participant weight"),

@@ -31,7 +31,7 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     # one row per participant; wrapped_key NULL once erased (cryptographic erase)
     "participants": (
         {"pid": str, "wrapped_key": bytes, "key_commitment": str, "lab_code_tag": str,
-         "created_at": str, "erased_at": str},
+         "date_offset": bytes, "created_at": str, "erased_at": str},
         "pid",
     ),
     # the policy sets this vault has applied, by content hash
@@ -46,6 +46,14 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
          "created_at": str},
         "blob_id",
     ),
+    # what exports and policies need to know about a stored recording; nothing identifying
+    "recordings": ({"blob_id": str, "pid": str, "format": str, "meta": str, "deid": str}, "blob_id"),
+    # one encrypted batch of scores or ratings per participant per ingested file;
+    # tags are HMACs under the participant's own data key (gone when they are erased)
+    "score_batches": (
+        {"blob_id": str, "pid": str, "category": str, "batch_tag": str, "rows": int}, "blob_id"),
+    "score_items": ({"pid": str, "category": str, "item_tag": str, "blob_id": str},
+                    ("pid", "category", "item_tag")),
     "audit_log": ({"seq": int, "entry": bytes, "leaf_hash": bytes}, "seq"),
     "tree_heads": ({"tree_size": int, "body": bytes, "signature": bytes}, "tree_size"),
 }
@@ -57,6 +65,9 @@ _NOT_NULL: dict[str, set[str]] = {
     "policy_versions": {"body", "applied_at"},
     "consents": {"body", "digest", "recorded_at"},
     "blobs": {"pid", "kind", "plain_size", "stored_size", "created_at"},
+    "recordings": {"pid", "format", "meta", "deid"},
+    "score_batches": {"pid", "category", "batch_tag", "rows"},
+    "score_items": {"blob_id"},
     "audit_log": {"entry", "leaf_hash"},
     "tree_heads": {"body", "signature"},
 }
@@ -98,6 +109,8 @@ def create_schema(conn: sqlite3.Connection) -> None:
         db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
     db["blobs"].create_index(["pid"])  # type: ignore[union-attr]
     db["participants"].create_index(["lab_code_tag"], unique=True)  # type: ignore[union-attr]
+    db["score_batches"].create_index(["pid", "category", "batch_tag"], unique=True)  # type: ignore[union-attr]
+    db["recordings"].create_index(["pid"])  # type: ignore[union-attr]
     for table in ("audit_log", "tree_heads", "consents", "policy_versions"):
         conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
 

@@ -1,0 +1,113 @@
+"""Preference scores and ratings files: parse, validate, canonicalise. No I/O but reading the CSV.
+
+A file has a header naming `participant_id`, `item_id` and `value` (in any order;
+other columns are refused, since free text can name people). Every row is checked
+against the category's declared type and range; the first problem is reported
+with its row number (the header is row 1) and nothing of the file is stored.
+Values are never echoed in messages.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+from vault.errors import InvalidInput, NotFound
+from vault.policyset import Category
+
+COLUMNS = ("participant_id", "item_id", "value")
+MAX_BYTES = 256 << 20
+_PID = re.compile(r"[0-9a-f]{32}")
+_ITEM = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}")
+
+
+@dataclass(frozen=True)
+class ScoreRow:
+    row: int  # 1-based line of the CSV (header is row 1)
+    pid: str
+    item: str
+    value: float
+
+
+def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
+    """Every row of a scores file, validated against the category's type and range."""
+    try:
+        raw = Path(path).read_bytes()
+    except OSError as exc:
+        raise NotFound(f"cannot read {path}") from exc
+    if len(raw) > MAX_BYTES:
+        raise InvalidInput("scores file: larger than 256 MiB; split it")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise InvalidInput("scores file: not UTF-8 text") from None
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header = next(reader, None)
+    if header is None or sorted(h.strip() for h in header) != sorted(COLUMNS):
+        raise InvalidInput("scores file: row 1: the header must name exactly "
+                           "participant_id, item_id and value")
+    index = {h.strip(): i for i, h in enumerate(header)}
+    low, high = spec.value_range or (-math.inf, math.inf)
+    rows: list[ScoreRow] = []
+    seen: set[tuple[str, str]] = set()
+    for number, cells in enumerate(reader, start=2):
+        if not cells or all(not c.strip() for c in cells):
+            continue
+        if len(cells) != len(COLUMNS):
+            raise InvalidInput(f"scores file: row {number}: expected 3 cells, found {len(cells)}")
+        pid, item, text_value = (cells[index[c]].strip() for c in COLUMNS)
+        if not _PID.fullmatch(pid):
+            raise InvalidInput(f"scores file: row {number}: participant_id is not a vault "
+                               "participant id (32 hex digits, as 'mindward enrol' printed)")
+        if not _ITEM.fullmatch(item):
+            raise InvalidInput(f"scores file: row {number}: item_id must be 1-64 letters, digits "
+                               "or . _ : / -")
+        value = _number(text_value, number, category, spec)
+        if not low <= value <= high:
+            raise InvalidInput(f"scores file: row {number}: value outside {category}'s range "
+                               f"[{low:g}, {high:g}]")
+        if (pid, item) in seen:
+            raise InvalidInput(f"scores file: row {number}: duplicate participant and item")
+        seen.add((pid, item))
+        rows.append(ScoreRow(number, pid, item, value))
+    if not rows:
+        raise InvalidInput("scores file: no rows")
+    return rows
+
+
+def _number(text: str, row: int, category: str, spec: Category) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise InvalidInput(f"scores file: row {row}: value is not a number") from None
+    if not math.isfinite(value):
+        raise InvalidInput(f"scores file: row {row}: value is not a finite number")
+    if spec.value_type == "integer" and (value != int(value) or not re.fullmatch(r"[+-]?\d+", text)):
+        raise InvalidInput(f"scores file: row {row}: {category} takes whole numbers")
+    return value
+
+
+def by_participant(rows: Sequence[ScoreRow]) -> dict[str, list[ScoreRow]]:
+    groups: dict[str, list[ScoreRow]] = {}
+    for row in rows:
+        groups.setdefault(row.pid, []).append(row)
+    return groups
+
+
+def canonical(rows: Sequence[ScoreRow]) -> bytes:
+    """The plaintext stored for one participant's batch: {item: value}, sorted, as JSON."""
+    return json.dumps({r.item: r.value for r in sorted(rows, key=lambda r: r.item)},
+                      sort_keys=True, separators=(",", ":")).encode()
+
+
+def decode(raw: bytes) -> Mapping[str, float]:
+    value = json.loads(raw)
+    if not isinstance(value, dict):
+        raise InvalidInput("stored score batch is malformed")
+    return {str(k): float(v) for k, v in value.items()}
