@@ -13,6 +13,7 @@ from vault.api import (
     read_tree_head,
     summarise_decision,
     verify_audit,
+    verify_export,
     verify_proof,
 )
 from vault.demo import run_demo
@@ -52,5 +53,6 @@ __all__ = [
     "run_demo",
     "summarise_decision",
     "verify_audit",
+    "verify_export",
     "verify_proof",
 ]

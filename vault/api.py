@@ -408,6 +408,21 @@ class Vault:
         self._require_steward()
         return ingest_scores(self, Path(path), kind, now=moment(now))
 
+    # -- exports ------------------------------------------------------------------------------------
+
+    def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None,
+                   now: datetime | None = None) -> dict[str, Any]:
+        """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
+        from vault.export_eeg import export_eeg
+
+        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=moment(now))
+
+    def check_export(self, document: dict[str, Any], *, now: datetime | None = None) -> dict[str, Any]:
+        """Whether an export someone holds now contains withdrawn or expired participants."""
+        from vault.exports import check_export
+
+        return check_export(self, document, now=moment(now))
+
     # -- members ------------------------------------------------------------------------------------
 
     def add_member(self, name: str, role: str, passphrase: str, *,
@@ -608,3 +623,10 @@ def format_decision(summary: dict[str, Any]) -> str:
     for pid, why in summary.get("participants", {}).items():
         lines.append(f"  {pid}  {why}")
     return "\n".join(lines)
+
+
+def verify_export(out: Path, public_key: bytes) -> dict[str, Any]:
+    """Check an export folder's manifest signature and file digests; no passphrase."""
+    from vault.export_eeg import verify_export_dir
+
+    return verify_export_dir(Path(out), public_key)

@@ -355,6 +355,64 @@ def ingest_scores(
         f"{result['batches_stored']} batches stored, {result['batches_already_stored']} already there"))
 
 
+export_app = typer.Typer(no_args_is_help=True, help="Policy-checked exports, and checking them.")
+app.add_typer(export_app, name="export")
+RecipientOpt = Annotated[str | None, typer.Option(help="Who receives the export (audited).")]
+
+
+@export_app.command("eeg")
+def export_eeg(
+    path: VaultOpt,
+    purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
+    out: Annotated[Path, typer.Option("--out", help="New or empty folder for the dataset.")],
+    recipient: RecipientOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
+    with _open(path, member) as v:
+        result = v.export_eeg(purpose, out, recipient=recipient)
+    _emit(as_json, result, lambda: (
+        f"exported {result['recordings']} recordings of {result['participants']} participants to "
+        f"{result['out']} (export {result['export_id']}); manifest {result['manifest']}\n"
+        "Pseudonymised EEG is still personal data: share it only under your data use agreement, "
+        "as your ethics board and DPO allow."))
+
+
+@export_app.command("verify")
+def export_verify(
+    directory: Annotated[Path, typer.Argument(help="An export folder (holds manifest.json).")],
+    key: Annotated[str, typer.Option("--key", help="The vault's public key (hex).")],
+    as_json: JsonOpt = False,
+) -> None:
+    """Check an export's manifest signature and every file's digest. No passphrase."""
+    result = vault.verify_export(directory, vault.parse_public_key(key))
+    _emit(as_json, result, lambda: "export ok" if result["ok"]
+          else "export FAILED: " + "; ".join(result["problems"]))
+    if not result["ok"]:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
+@export_app.command("check")
+def export_check(
+    manifest_file: Annotated[Path, typer.Argument(help="The manifest.json of an export you hold.")],
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Does an export you hold now contain withdrawn or expired participants? (counts only)"""
+    try:
+        document = json.loads(_read_text(manifest_file))
+    except ValueError as exc:
+        raise vault.InvalidInput(f"{manifest_file} is not JSON") from exc
+    with _open(path, member) as v:
+        result = v.check_export(document)
+    _emit(as_json, result, lambda: (
+        f"export {result['export_id']}: {result['participants']} participants; "
+        f"{result['withdrawn_or_erased']} erased, {result['consent_no_longer_covers']} whose consent "
+        f"no longer covers {result['purpose']}; export expired: {result['export_expired']}\n"
+        + ("REPLACE this export: request a new one and delete this copy." if result["must_replace"]
+           else "The export still stands.")))
+    if result["must_replace"]:
+        raise typer.Exit(vault.PolicyRefusal.exit_code)
+
+
 @app.command()
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "

@@ -54,6 +54,17 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
         {"blob_id": str, "pid": str, "category": str, "batch_tag": str, "rows": int}, "blob_id"),
     "score_items": ({"pid": str, "category": str, "item_tag": str, "blob_id": str},
                     ("pid", "category", "item_tag")),
+    # export lineage: what left the vault, for which purpose, to whom, containing whom
+    "exports": ({"export_id": str, "kind": str, "purpose": str, "recipient": str,
+                 "created_at": str, "expires_at": str, "manifest": bytes, "manifest_digest": str},
+                "export_id"),
+    "export_members": ({"export_id": str, "pid": str, "pseudonym": str}, ("export_id", "pid")),
+    # privacy budget spent per participant and purpose (exact fractions as text)
+    "budget_ledger": ({"pid": str, "purpose": str, "epsilon": str, "rho": str, "releases": int},
+                      ("pid", "purpose")),
+    # withdrawal requests and their outcome
+    "withdrawals": ({"request_id": str, "pid": str, "scope": str, "received": str, "deadline": str,
+                     "status": str, "processed_at": str, "receipt": bytes}, "request_id"),
     "audit_log": ({"seq": int, "entry": bytes, "leaf_hash": bytes}, "seq"),
     "tree_heads": ({"tree_size": int, "body": bytes, "signature": bytes}, "tree_size"),
 }
@@ -68,6 +79,10 @@ _NOT_NULL: dict[str, set[str]] = {
     "recordings": {"pid", "format", "meta", "deid"},
     "score_batches": {"pid", "category", "batch_tag", "rows"},
     "score_items": {"blob_id"},
+    "exports": {"kind", "purpose", "created_at", "manifest", "manifest_digest"},
+    "export_members": {"pseudonym"},
+    "budget_ledger": {"epsilon", "rho", "releases"},
+    "withdrawals": {"pid", "scope", "received", "deadline", "status"},
     "audit_log": {"entry", "leaf_hash"},
     "tree_heads": {"body", "signature"},
 }
@@ -111,6 +126,8 @@ def create_schema(conn: sqlite3.Connection) -> None:
     db["participants"].create_index(["lab_code_tag"], unique=True)  # type: ignore[union-attr]
     db["score_batches"].create_index(["pid", "category", "batch_tag"], unique=True)  # type: ignore[union-attr]
     db["recordings"].create_index(["pid"])  # type: ignore[union-attr]
+    db["export_members"].create_index(["pid"])  # type: ignore[union-attr]
+    db["withdrawals"].create_index(["pid"])  # type: ignore[union-attr]
     for table in ("audit_log", "tree_heads", "consents", "policy_versions"):
         conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
 

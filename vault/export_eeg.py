@@ -1,0 +1,116 @@
+"""`mindward export eeg`: granted, de-identified recordings as an EEG-BIDS dataset.
+
+Participants get per-purpose pseudonymous labels (vault.exports); recordings
+are the de-identified copies the vault stores, read through the one door and
+streamed into the dataset; a signed manifest lists every file with its SHA-256
+and the export is recorded in the lineage.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import shutil
+from collections.abc import Iterator
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+from vault import exports, manifest
+from vault.bids import BidsWriter
+from vault.edf import RecordingMeta
+from vault.errors import IntegrityError, NotFound
+
+if TYPE_CHECKING:
+    from vault.api import Vault
+
+MANIFEST_NAME = "manifest.json"
+TASK = "dishes"
+
+
+def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
+    """The EDF header (its length is in bytes 184-192 of the stream) and the rest."""
+    first = bytearray()
+    for chunk in chunks:
+        first += chunk
+        if len(first) >= 256:
+            break
+    try:
+        size = int(bytes(first[184:192]).decode("ascii").strip())
+    except ValueError as exc:
+        raise IntegrityError("a stored recording has no readable EDF header") from exc
+    while len(first) < size:
+        more = next(chunks, None)
+        if more is None:
+            raise IntegrityError("a stored recording ends inside its header")
+        first += more
+
+    def rest() -> Iterator[bytes]:
+        if len(first) > size:
+            yield bytes(first[size:])
+        yield from chunks
+
+    return bytes(first[:size]), rest()
+
+
+def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
+               now: dt.datetime) -> dict[str, Any]:
+    grant = v.authorize(purpose, ["eeg-raw"], export=True, recipient=recipient, now=now)
+    marks = ",".join("?" * len(grant.participants))
+    rows = v._conn.execute(
+        f"SELECT r.blob_id, r.pid, r.meta FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
+        f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id",
+        sorted(grant.participants)).fetchall()
+    if not rows:
+        raise NotFound("the granted participants hold no recordings")
+    labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})
+    out = Path(out)
+    writer = BidsWriter(out, dataset_name=f"mindward export for {purpose}", task=TASK,
+                        readme_intro="De-identified EEG released by mindward under a signed "
+                                     "manifest (manifest.json).")
+    try:
+        runs: dict[str, int] = {}
+        for blob_id, pid, meta in rows:
+            runs[pid] = runs.get(pid, 0) + 1
+            header, blocks = _split_header(iter(v.read_blob(grant, blob_id, now=now)))
+            writer.add_recording(labels[pid], None, runs[pid], header, blocks,
+                                 RecordingMeta(**json.loads(meta)))
+        files = writer.finish([{"participant_id": labels[pid]} for pid in sorted(labels)],
+                              bidsignore=[MANIFEST_NAME])
+        export_id = exports.new_export_id()
+        signed = exports.sign_and_record(
+            v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels, now=now,
+            body={"recordings": len(rows), "format": "EEG-BIDS (EDF/EDF+/BDF)",
+                  "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
+                  "privacy": "no differential-privacy noise: de-identified recordings, which can "
+                             "still identify a person"})
+        (out / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
+    except BaseException:
+        shutil.rmtree(out, ignore_errors=True)
+        raise
+    return {"export_id": export_id, "out": str(out), "participants": len(labels),
+            "recordings": len(rows), "manifest": str(out / MANIFEST_NAME)}
+
+
+def verify_export_dir(out: Path, public_key: bytes) -> dict[str, Any]:
+    """Manifest signature and every listed file's size and SHA-256; offline, key only."""
+    from vault.crypto import StreamingDigest
+
+    path = Path(out) / MANIFEST_NAME
+    try:
+        doc = manifest.load(path.read_bytes(), "the manifest")
+    except OSError as exc:
+        raise NotFound(f"no {MANIFEST_NAME} in {out}") from exc
+    problems = [] if manifest.verify(doc, public_key, manifest.MANIFEST) else ["bad signature"]
+    for entry in doc["body"].get("files", []):
+        target = Path(out) / entry["path"]
+        if not target.is_file():
+            problems.append(f"missing {entry['path']}")
+            continue
+        digest = StreamingDigest()
+        with open(target, "rb") as fh:
+            while block := fh.read(1 << 20):
+                digest.update(block)
+        if digest.hexdigest() != entry["sha256"] or target.stat().st_size != entry["size"]:
+            problems.append(f"altered {entry['path']}")
+    return {"ok": not problems, "problems": problems, "export_id": doc["body"].get("export_id"),
+            "files": len(doc["body"].get("files", []))}
