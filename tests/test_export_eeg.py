@@ -41,7 +41,7 @@ def lab(fresh_vault: Vault) -> tuple[Vault, list[str], str]:
 @pytest.mark.filterwarnings("ignore:Did not find any events.tsv")  # events stay in the EDF+ file
 @pytest.mark.parametrize("kind", ["npm", "deno"])
 def test_export_is_valid_bids_and_reads_back(lab, tmp_path: Path, kind: str) -> None:
-    v, granted, _ = lab
+    v, _, _ = lab
     cmd = _validator(kind)
     out = tmp_path / "bids"
     result = v.export_eeg("primary-analysis", out, now=NOW)
@@ -59,7 +59,7 @@ def test_export_is_valid_bids_and_reads_back(lab, tmp_path: Path, kind: str) -> 
 
 def test_refused_participants_are_absent_and_labels_are_per_purpose(lab, tmp_path: Path) -> None:
     v, granted, refuser = lab
-    with pytest.raises(PolicyRefusal, match="cohort-too-small|recipient"):
+    with pytest.raises(PolicyRefusal, match=r"cohort-too-small|recipient"):
         v.export_eeg("external-sharing", tmp_path / "x", recipient="Partner Lab", now=NOW)
     a = v.export_eeg("primary-analysis", tmp_path / "a", now=NOW)
     b = v.export_eeg("primary-analysis", tmp_path / "b", now=NOW)
