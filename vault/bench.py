@@ -30,6 +30,7 @@ _TARGETS = {
     "store_vs_raw": (">=", 0.6), "read_vs_raw": (">=", 0.6), "store_1gib_peak_mib": ("<", 100.0),
     "audit_single_vs_sqlite": (">=", 0.7), "audit_batch_per_s": (">=", 50_000.0),
     "audit_verify_vs_hashlib": ("<=", 5.0), "decisions_per_s": (">=", 100_000.0),
+    "ingest_vs_read_aes": (">=", 0.5), "ingest_peak_mib": ("<", 200.0),
 }
 
 
@@ -189,6 +190,76 @@ def _verify_ratio(v: Vault, n: int) -> dict[str, float]:
             "audit_verify_vs_hashlib": t_ours / t_bare}
 
 
+# -- ingest ---------------------------------------------------------------------------------------
+
+_BENCH_FORM = """form_version = "NSL-2026-DISH/1"
+signed = 2026-03-02
+expires = 2031-03-02
+[participant]
+code = "BENCH-001"
+[purposes.primary-analysis]
+granted = ["eeg-raw", "scores-derived", "ratings-explicit", "demographics"]
+explicit = true
+"""
+
+
+def _bench_participant(v: Vault) -> str:
+    return str(v.enrol(_BENCH_FORM.encode())["participant_id"])
+
+
+def ingest_child(path: str, edf: str) -> None:
+    """Run in a subprocess: ingest `edf` and print time and RSS growth as JSON."""
+    v = Vault.open(Path(path), _PASSPHRASE)
+    pid = _bench_participant(v)
+    before = _rss_mib()
+    peak = [before]
+    import threading
+
+    done = threading.Event()
+
+    def sample() -> None:
+        while not done.wait(0.01):
+            peak[0] = max(peak[0], _rss_mib())
+
+    watcher = threading.Thread(target=sample, daemon=True)
+    watcher.start()
+    seconds = _timed(lambda: v.ingest_eeg(pid, Path(edf)))
+    done.set()
+    watcher.join()
+    v.close()
+    print(json.dumps({"seconds": seconds, "peak_growth_mib": max(peak) - before}))
+
+
+def _ingest(workdir: Path, vault_dir: Path, duration_s: int) -> dict[str, float]:
+    import warnings
+
+    import edfio
+    import numpy as np
+
+    from vault.edf_bench import write_test_edf
+
+    edf = workdir / "bench.edf"
+    write_test_edf(edf, duration_s=duration_s, n_channels=64, rate=1000)
+    raw = crypto.RawAesGcm(crypto.new_key())
+
+    def baseline() -> None:  # merely reading it with the same library, plus raw AES-GCM
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            rec = edfio.read_edf(edf)
+        for i, signal in enumerate(rec.signals):
+            raw.encrypt(i.to_bytes(12, "big"), np.ascontiguousarray(signal.digital).tobytes())
+
+    t_base = _timed(baseline)
+    code = (f"from vault.bench import ingest_child; ingest_child({str(vault_dir)!r}, {str(edf)!r})")
+    out = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
+    child = json.loads(out.stdout)
+    size = edf.stat().st_size
+    edf.unlink()
+    return {"ingest_edf_mib": size / MIB, "ingest_s": child["seconds"], "edfio_read_aes_s": t_base,
+            "ingest_vs_read_aes": t_base / child["seconds"],
+            "ingest_peak_mib": child["peak_growth_mib"]}
+
+
 # -- the policy engine ----------------------------------------------------------------------------
 
 
@@ -209,9 +280,9 @@ def _decide_cohort(v: Vault, n: int) -> dict[str, float]:
 
 
 def run_all(*, quick: bool = False) -> dict[str, Any]:
-    blob_mib, mem_mib, singles, batch, verify_n, decide_n = (
-        (16, 64, 50, 20_000, 20_000, 10_000) if quick
-        else (256, 1024, 300, 100_000, 1_000_000, 100_000))
+    blob_mib, mem_mib, singles, batch, verify_n, decide_n, ingest_s = (
+        (16, 64, 50, 20_000, 20_000, 10_000, 30) if quick
+        else (256, 1024, 300, 100_000, 1_000_000, 100_000, 3600))
     workdir = Path(tempfile.mkdtemp(prefix="mindward-bench-"))
     figures: dict[str, Any] = {"quick": quick}
     try:
@@ -234,6 +305,7 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
             v.close()
         mem = _memory(workdir / "vault", mem_mib)
         figures.update(mem, store_1gib_peak_mib=mem["store_peak_growth_mib"])
+        figures.update(_ingest(workdir, workdir / "vault", ingest_s))
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
     figures["targets"] = {name: {"rule": f"{op} {limit}", "value": figures[name],
@@ -256,6 +328,9 @@ def format_report(figures: dict[str, Any]) -> str:
     lines.append("  durable appends: bare SQLite {sqlite_single_per_s:.0f}/s, audit "
                  "{audit_single_per_s:.0f}/s; verify {audit_verify_entries} entries in "
                  "{audit_verify_s:.2f} s (bare hashlib {hashlib_s:.2f} s)".format(**figures))
+    lines.append("  ingest of a {ingest_edf_mib:.0f} MiB EDF: {ingest_s:.2f} s (edfio read + raw AES-GCM "
+                 "{edfio_read_aes_s:.2f} s), peak memory growth {ingest_peak_mib:.0f} MiB; "
+                 "{decide_participants} decisions in {decide_s:.3f} s".format(**figures))
     if figures["quick"]:
         lines.append("  (quick sizes: the targets are stated for the full run)")
     return "\n".join(lines)
