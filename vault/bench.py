@@ -287,10 +287,13 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
     figures: dict[str, Any] = {"quick": quick}
     try:
         data = crypto.random_bytes(MIB)
-        raw_w, raw_r = _raw_rates(workdir, data, blob_mib * MIB)
         v = Vault.init(workdir / "vault", _PASSPHRASE)
         try:
-            store, read = _vault_rates(v, data, blob_mib * MIB)
+            # alternate baseline and vault runs, best of two each, so neither gets the warm disk
+            rates = [(_raw_rates(workdir, data, blob_mib * MIB), _vault_rates(v, data, blob_mib * MIB))
+                     for _ in range(2)]
+            raw_w, raw_r = (max(r[0][i] for r in rates) for i in (0, 1))
+            store, read = (max(r[1][i] for r in rates) for i in (0, 1))
             figures.update(blob_mib=blob_mib, raw_write_mib_s=raw_w, raw_read_mib_s=raw_r,
                            store_mib_s=store, read_mib_s=read,
                            store_vs_raw=store / raw_w, read_vs_raw=read / raw_r)

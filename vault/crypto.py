@@ -425,14 +425,15 @@ class ChunkedDecryptor:
         self._counter += 1
         return nonce
 
-    def _open_into(self, chunk: memoryview, out: memoryview) -> None:
+    def _open(self, chunk: memoryview) -> bytes:
         try:
-            self._aead.decrypt_into(self._nonce(), chunk, None, out)
+            return self._aead.decrypt(self._nonce(), chunk, None)
         except InvalidTag:
             self._fail(f"chunk {self._counter - 1} failed authentication")
+            raise  # unreachable: _fail raises
 
-    def next_chunk(self, max_chunks: int = 64) -> bytes | bytearray | None:
-        """The next run of up to `max_chunks` authenticated chunks, or None at the verified end.
+    def next_run(self, max_chunks: int = 64) -> list[bytes] | None:
+        """The next run of up to `max_chunks` authenticated plaintext chunks, or None at the end.
 
         A run is handed out only when every chunk in it authenticated and, if
         it holds the final chunk, nothing follows that chunk.
@@ -450,24 +451,25 @@ class ChunkedDecryptor:
         got = _readinto_exactly(self._reader, view)
         full = got // CT_CHUNK_SIZE
         final = got < want
-        rest = got - full * CT_CHUNK_SIZE
-        if final and rest < TAG_SIZE:
+        if final and got - full * CT_CHUNK_SIZE < TAG_SIZE:
             self._fail("ciphertext is truncated (final chunk missing)")
-        plain = bytearray(full * CHUNK_SIZE + (rest - TAG_SIZE if final else 0))
-        out = memoryview(plain)
-        for i in range(full):
-            self._open_into(view[i * CT_CHUNK_SIZE : (i + 1) * CT_CHUNK_SIZE],
-                            out[i * CHUNK_SIZE : (i + 1) * CHUNK_SIZE])
+        run = [self._open(view[i * CT_CHUNK_SIZE : (i + 1) * CT_CHUNK_SIZE]) for i in range(full)]
         if final:
-            self._open_into(view[full * CT_CHUNK_SIZE : got], out[full * CHUNK_SIZE :])
+            run.append(self._open(view[full * CT_CHUNK_SIZE : got]))
             if self._reader.read(1):
                 self._fail("data follows the final chunk")
             self._finished = True
-        return plain
+        return run
 
-    def __iter__(self) -> Iterator[bytes | bytearray]:
-        while (chunk := self.next_chunk()) is not None:
-            yield chunk
+    def next_chunk(self, max_chunks: int = 64) -> bytes | None:
+        """The next run joined into one bytes object (see `next_run`)."""
+        run = self.next_run(max_chunks)
+        return None if run is None else b"".join(run)
+
+    def __iter__(self) -> Iterator[bytes]:
+        """Authenticated chunks, handed out a verified run at a time."""
+        while (run := self.next_run()) is not None:
+            yield from run
 
 
 def chunked_encrypt(input_key: bytes, context: bytes, plaintext: bytes) -> bytes:
