@@ -184,3 +184,28 @@ def test_vault_survives_a_reopen_after_ingest(vault_path: Path, tmp_path: Path) 
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
         assert v.verify()["ok"]
         assert _read_back(v, blob, tmp_path).stat().st_size > 0
+
+
+def test_numpy_recordings_with_sidecars(lab, tmp_path: Path) -> None:
+    import json
+
+    v, pids = lab
+    rng = np.random.default_rng(7)
+    data = rng.normal(0, 20, size=(4, 256 * 10))  # 4 channels, 10 s at 256 Hz, in µV
+    np.save(tmp_path / "rec.npy", data)
+    side = {"sampling_rate": 256, "channel_names": ["Fz", "Cz", "Pz", "Oz"], "units": "uV",
+            "start_date": "2026-03-02", "start_time": "09:30:00"}
+    (tmp_path / "rec.json").write_text(json.dumps(side))
+    result = v.ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json", now=NOW)
+    back = _read_back(v, result["blob_id"], tmp_path)
+    with pyedflib.EdfReader(str(back)) as edf:  # independent reader of what the vault made
+        assert edf.getSignalLabels() == ["Fz", "Cz", "Pz", "Oz"]
+        assert edf.getSampleFrequency(0) == 256
+        resolution = (edf.getPhysicalMaximum(0) - edf.getPhysicalMinimum(0)) / 65535
+        np.testing.assert_allclose(edf.readSignal(2)[: data.shape[1]], data[2], atol=resolution)
+    side["channel_names"] = ["Fz", "Cz", "Pz"]  # mismatched sidecar: refused, nothing stored
+    (tmp_path / "rec.json").write_text(json.dumps(side))
+    before = len(v.blobs())
+    with pytest.raises(InvalidInput):
+        v.ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json", now=NOW)
+    assert len(v.blobs()) == before
