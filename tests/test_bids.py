@@ -14,6 +14,7 @@ Inputs are invented EDF+/BDF+ files written here by edfio and pyedflib, run thro
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import json
 import os
@@ -212,6 +213,14 @@ def _validator(kind: str) -> list[str]:
             reason = f"{cmd[0]} does not run ({type(exc).__name__})"
         else:
             text = re.sub(r"\x1b\[[0-9;]*m", "", version.stdout + version.stderr)
+            if kind == "deno":
+                # it prints the git commit of any repository it is installed inside (a .venv in a
+                # clone) instead of its version, so ask the installed package instead
+                from importlib.metadata import PackageNotFoundError
+                from importlib.metadata import version as installed
+
+                with contextlib.suppress(PackageNotFoundError):
+                    text += " " + installed("bids-validator-deno")
             want = "1.15.0" if kind == "npm" else "3.0.2"
             if version.returncode != 0 or want not in text:
                 reason = f"{cmd[0]} --version did not report {want}: {text.strip()[:80]!r}"
