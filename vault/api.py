@@ -423,6 +423,12 @@ class Vault:
 
         return check_export(self, document, now=moment(now))
 
+    def report(self, *, now: datetime | None = None) -> dict[str, Any]:
+        """A record of processing (GDPR Art. 30 style): definitions and counts only."""
+        from vault.report import record_of_processing
+
+        return record_of_processing(self, now=moment(now))
+
     # -- members ------------------------------------------------------------------------------------
 
     def add_member(self, name: str, role: str, passphrase: str, *,

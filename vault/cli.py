@@ -414,6 +414,22 @@ def export_check(
 
 
 @app.command()
+def report(
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    out: Annotated[Path | None, typer.Option("--out", help="Write Markdown here.")] = None,
+) -> None:
+    """A record of processing (GDPR Art. 30 style) from the vault's state; counts only."""
+    from vault.report import to_markdown
+
+    with _open(path, member) as v:
+        record = v.report()
+    text = to_markdown(record)
+    if out is not None:
+        out.write_text(text, encoding="utf-8")
+    _emit(as_json, record, text if out is None else f"wrote {out}")
+
+
+@app.command()
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "
                                             "holds an earlier demo).")] = Path("mindward-demo"),
