@@ -7,14 +7,18 @@ Public API: `Vault` (open/init an encrypted vault), `describe` and
 from vault.api import (
     Vault,
     describe,
+    format_budget,
     format_decision,
     parse_public_key,
     prove,
+    read_items,
     read_tree_head,
+    report_markdown,
     summarise_decision,
     verify_audit,
     verify_export,
     verify_proof,
+    verify_receipt_file,
 )
 from vault.demo import run_demo
 from vault.errors import (
@@ -45,14 +49,18 @@ __all__ = [
     "VaultError",
     "describe",
     "describe_policy",
+    "format_budget",
     "format_decision",
     "load_policy_dir",
     "parse_public_key",
     "prove",
+    "read_items",
     "read_tree_head",
+    "report_markdown",
     "run_demo",
     "summarise_decision",
     "verify_audit",
     "verify_export",
     "verify_proof",
+    "verify_receipt_file",
 ]

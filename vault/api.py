@@ -10,7 +10,7 @@ import shutil
 import sqlite3
 import time
 from collections.abc import Iterable, Iterator
-from datetime import UTC, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any
 
@@ -179,9 +179,12 @@ class Vault:
         return vault
 
     def _recover(self) -> None:
+        from vault.withdraw import finish_interrupted
+
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
+        finish_interrupted(self)  # an erasure killed between its commit and its clean-up
 
     def close(self, now: datetime | None = None) -> None:
         """Sign a tree head over any new entries, then release the vault."""
@@ -351,7 +354,9 @@ class Vault:
         return {"participant_id": pid, **_consent_details(version)}
 
     def consent_history(self, pid: str) -> list[dict[str, Any]]:
-        registry.require_participant(self._conn, pid)
+        """The consent versions, oldest first (kept after erasure: they name no one)."""
+        if self._conn.execute("SELECT 1 FROM participants WHERE pid = ?", (pid,)).fetchone() is None:
+            raise NotFound(f"no participant '{pid}'")
         return [json.loads(v.to_json()) | {"digest": v.digest}
                 for v in registry.consent_history(self._conn, pid)]
 
@@ -387,6 +392,33 @@ class Vault:
                                         "category": category}}], when)
         return chunks
 
+    def read_blobs(self, grant: Grant, blob_ids: list[str], *,
+                   now: datetime | None = None) -> Iterator[tuple[str, str, Iterator[bytes]]]:
+        """Many blobs through the one door: one live decision, one audit batch.
+
+        Yields (blob_id, participant id, plaintext chunks) in the order given.
+        """
+        when = moment(now)
+        rows: dict[str, tuple[str, str]] = {}
+        for start in range(0, len(blob_ids), 500):
+            chunk = blob_ids[start : start + 500]
+            marks = ",".join("?" * len(chunk))
+            rows.update((b, (p, k)) for b, p, k in self._conn.execute(
+                "SELECT blob_id, pid, kind FROM blobs WHERE blob_id IN (" + marks + ")",  # noqa: S608
+                chunk))
+        missing = [b for b in blob_ids if b not in rows]
+        if missing:
+            raise NotFound(f"no blob '{missing[0]}'")
+        self._engine.admit_many(grant, [rows[b] for b in blob_ids], now=when)
+        self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
+                            "subjects": sorted({rows[b][0] for b in blob_ids}), "decision": "permit",
+                            "details": {"grant": grant.grant_id, "blobs": len(blob_ids)}}], when)
+        keys: dict[str, bytes] = {}
+        for blob_id in blob_ids:
+            pid, category = rows[blob_id]
+            key = keys.get(pid) or keys.setdefault(pid, self._keys.participant_key(self._conn, pid))
+            yield blob_id, pid, self._store.plaintext(grant, key, pid, blob_id, category, now=when)
+
     # -- ingest -------------------------------------------------------------------------------------
 
     def ingest_eeg(self, pid: str, path: Path, *, sidecar: Path | None = None,
@@ -417,11 +449,67 @@ class Vault:
 
         return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=moment(now))
 
+    def export_matrix(self, purpose: str, category: str, out: Path, *, now: datetime | None = None,
+                      **options: Any) -> dict[str, Any]:
+        """A pseudonymised, differentially private preference release (matrix or aggregate)."""
+        from vault.export_matrix import export_matrix
+
+        return export_matrix(self, purpose=purpose, category=category, out=Path(out), now=moment(now),
+                             **options)
+
+    def export_utility(self, purpose: str, category: str, epsilons: list[float], out_png: Path, *,
+                       now: datetime | None = None, **options: Any) -> dict[str, Any]:
+        """Held-out RMSE of a recommender trained on noised data per epsilon; only RMSEs leave."""
+        from vault.export_matrix import export_utility
+
+        return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
+                              out_png=Path(out_png), now=moment(now), **options)
+
+    def budget(self, purpose: str | None = None, *, show_participants: bool | None = None
+               ) -> list[dict[str, Any]]:
+        """Privacy budget spent per purpose (per participant for stewards)."""
+        from vault.budget import budget_report
+
+        show = self.role == "steward" if show_participants is None else show_participants
+        return budget_report(self, purpose, show_participants=show)
+
     def check_export(self, document: dict[str, Any], *, now: datetime | None = None) -> dict[str, Any]:
         """Whether an export someone holds now contains withdrawn or expired participants."""
         from vault.exports import check_export
 
         return check_export(self, document, now=moment(now))
+
+    # -- withdrawal and erasure ---------------------------------------------------------------------
+
+    def withdraw_request(self, pid: str, *, received: date, scope: str = "full",
+                         now: datetime | None = None) -> dict[str, Any]:
+        """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
+        from vault.withdraw import request_withdrawal
+
+        return request_withdrawal(self, pid, received=received, scope=scope, now=moment(now))
+
+    def withdraw_pending(self, *, now: datetime | None = None) -> list[dict[str, Any]]:
+        from vault.withdraw import pending
+
+        self._require_steward()
+        return pending(self, now=moment(now))
+
+    def withdraw_process(self, target: str, *, now: datetime | None = None) -> dict[str, Any]:
+        """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
+        from vault.withdraw import process
+
+        return process(self, target, now=moment(now))
+
+    def withdraw_receipt(self, target: str) -> dict[str, Any]:
+        from vault.withdraw import receipt_of
+
+        return receipt_of(self, target)
+
+    def sweep(self, *, dry_run: bool = False, now: datetime | None = None) -> dict[str, Any]:
+        """Erase, with receipts, everyone whose consent expired or retention ended."""
+        from vault.withdraw import sweep
+
+        return sweep(self, now=moment(now), dry_run=dry_run)
 
     def report(self, *, now: datetime | None = None) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
@@ -633,6 +721,35 @@ def format_decision(summary: dict[str, Any]) -> str:
 
 def verify_export(out: Path, public_key: bytes) -> dict[str, Any]:
     """Check an export folder's manifest signature and file digests; no passphrase."""
-    from vault.export_eeg import verify_export_dir
+    from vault.export_matrix import verify_export_dir
 
     return verify_export_dir(Path(out), public_key)
+
+
+def verify_receipt_file(path: Path, public_key: bytes) -> tuple[bool, list[str]]:
+    """Check a deletion receipt offline with the vault's public key alone."""
+    from vault.receipt import verify_text
+
+    try:
+        text = Path(path).read_bytes()
+    except OSError as exc:
+        raise NotFound(f"cannot read {path}") from exc
+    return verify_text(text, public_key)
+
+
+def report_markdown(record: dict[str, Any]) -> str:
+    from vault.report import to_markdown
+
+    return to_markdown(record)
+
+
+def format_budget(rows: list[dict[str, Any]]) -> str:
+    from vault.budget import format_report
+
+    return format_report(rows)
+
+
+def read_items(path: Path) -> list[str]:
+    from vault.export_matrix import read_items as read
+
+    return read(Path(path))

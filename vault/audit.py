@@ -222,7 +222,10 @@ def verify_inclusion_bundle(bundle: Mapping[str, Any], public_key: bytes) -> boo
         return False
     if not head.verify(public_key):
         return False
-    if decode_entry(entry).get("seq") != index:
+    try:
+        if decode_entry(entry).get("seq") != index:
+            return False
+    except (ValueError, IntegrityError):
         return False
     return merkle.verify_inclusion(
         crypto.merkle_leaf_hash(entry), index, head.tree_size, proof, head.root_hash)

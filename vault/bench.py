@@ -31,6 +31,7 @@ _TARGETS = {
     "audit_single_vs_sqlite": (">=", 0.7), "audit_batch_per_s": (">=", 50_000.0),
     "audit_verify_vs_hashlib": ("<=", 5.0), "decisions_per_s": (">=", 100_000.0),
     "ingest_vs_read_aes": (">=", 0.5), "ingest_peak_mib": ("<", 200.0),
+    "withdraw_1gib_vs_1mib": ("<=", 2.0), "receipt_verify_ms": ("<", 50.0),
 }
 
 
@@ -280,9 +281,9 @@ def _decide_cohort(v: Vault, n: int) -> dict[str, float]:
 
 
 def run_all(*, quick: bool = False) -> dict[str, Any]:
-    blob_mib, mem_mib, singles, batch, verify_n, decide_n, ingest_s = (
-        (16, 64, 50, 20_000, 20_000, 10_000, 30) if quick
-        else (256, 1024, 300, 100_000, 1_000_000, 100_000, 3600))
+    blob_mib, mem_mib, singles, batch, verify_n, decide_n, ingest_s, withdraw_mib = (
+        (16, 64, 50, 20_000, 20_000, 10_000, 30, 32) if quick
+        else (256, 1024, 300, 100_000, 1_000_000, 100_000, 3600, 1024))
     workdir = Path(tempfile.mkdtemp(prefix="mindward-bench-"))
     figures: dict[str, Any] = {"quick": quick}
     try:
@@ -309,6 +310,9 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
         mem = _memory(workdir / "vault", mem_mib)
         figures.update(mem, store_1gib_peak_mib=mem["store_peak_growth_mib"])
         figures.update(_ingest(workdir, workdir / "vault", ingest_s))
+        from vault.withdraw_bench import bench_withdraw
+
+        figures.update(bench_withdraw(workdir, big_mib=withdraw_mib, repeat=3 if quick else 5))
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
     figures["targets"] = {name: {"rule": f"{op} {limit}", "value": figures[name],

@@ -377,6 +377,74 @@ def export_eeg(
         "as your ethics board and DPO allow."))
 
 
+@export_app.command("matrix")
+def export_matrix(
+    path: VaultOpt,
+    purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
+    category: Annotated[str, typer.Option("--category", help="scores-derived or ratings-explicit.")],
+    out: Annotated[Path, typer.Option("--out", help="New or empty folder for the release.")],
+    epsilon: Annotated[float | None, typer.Option(help="Pure DP budget (discrete Laplace).")] = None,
+    rho: Annotated[float | None, typer.Option(help="zCDP budget (discrete Gaussian).")] = None,
+    release: Annotated[str, typer.Option(help="matrix or aggregate.")] = "matrix",
+    unit: Annotated[str, typer.Option(help="participant (default) or rating (if the policy allows).")]
+    = "participant",
+    items: Annotated[Path | None, typer.Option(help="Public item catalogue, one id per line.")] = None,
+    max_items: Annotated[int | None, typer.Option(help="Contribution bound for aggregate releases.")]
+    = None,
+    recipient: RecipientOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Pseudonymised preferences with exact DP noise, budget spent, signed manifest (Parquet + CSV)."""
+    catalogue = vault.read_items(items) if items else None
+    with _open(path, member) as v:
+        result = v.export_matrix(purpose, category, out, epsilon=epsilon, rho=rho, release=release,
+                                 unit=unit, recipient=recipient, items=catalogue,
+                                 max_items_per_participant=max_items)
+    refused = ", ".join(f"{k}: {n}" for k, n in result["refused_by_reason"].items()) or "none"
+    _emit(as_json, result, lambda: (
+        f"released {result['release']} of {result['category']} for {result['cohort_size']} "
+        f"participants x {result['items']} items to {result['out']} (export {result['export_id']})\n"
+        f"  refused by reason: {refused}\n"
+        f"  guarantee: {result['guarantee'].get('mechanism')}, privacy unit "
+        f"{result['guarantee'].get('unit', result['guarantee'].get('privacy_unit'))}, "
+        f"epsilon {result['guarantee'].get('epsilon')}, rho {result['guarantee'].get('rho')}\n"
+        + "".join(f"  not protected: {n}\n" for n in result["guarantee"].get("not_protected", []))
+        +
+        "  DP protects only what its privacy unit and budget state (see the manifest's "
+        "'not_protected'); follow your data use agreement."))
+
+
+@export_app.command("utility")
+def export_utility(
+    path: VaultOpt,
+    purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
+    category: Annotated[str, typer.Option("--category", help="scores-derived or ratings-explicit.")],
+    plot: Annotated[Path, typer.Option("--plot", help="Where to write the PNG.")],
+    epsilons: Annotated[str, typer.Option(help="Comma-separated epsilons.")] = "0.1,0.3,1,3,10,30",
+    unit: Annotated[str, typer.Option(help="participant or rating.")] = "participant",
+    member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """What DP noise costs in recommender accuracy, per epsilon (only RMSE figures leave)."""
+    try:
+        values = [float(e) for e in epsilons.split(",") if e.strip()]
+    except ValueError as exc:
+        raise vault.UsageError("--epsilons takes numbers separated by commas") from exc
+    with _open(path, member) as v:
+        result = v.export_utility(purpose, category, values, plot, unit=unit)
+    _emit(as_json, result, lambda: result.get("table", json.dumps(result, indent=2, default=str))
+          + f"\nplot: {result.get('png', plot)}")
+
+
+@app.command()
+def budget(
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    purpose: Annotated[str | None, typer.Option(help="One purpose only.")] = None,
+) -> None:
+    """Privacy budget spent per purpose (stewards also see each participant)."""
+    with _open(path, member) as v:
+        rows = v.budget(purpose)
+    _emit(as_json, rows, lambda: vault.format_budget(rows))
+
+
 @export_app.command("verify")
 def export_verify(
     directory: Annotated[Path, typer.Argument(help="An export folder (holds manifest.json).")],
@@ -413,17 +481,127 @@ def export_check(
         raise typer.Exit(vault.PolicyRefusal.exit_code)
 
 
+withdraw_app = typer.Typer(no_args_is_help=True, help="Withdrawal requests, erasure and receipts.")
+receipt_app = typer.Typer(no_args_is_help=True, help="Check deletion receipts offline.")
+app.add_typer(withdraw_app, name="withdraw")
+app.add_typer(receipt_app, name="receipt")
+def _iso_date(text: str) -> Any:
+    import datetime as dt
+
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError as exc:
+        raise vault.UsageError("--received takes a date as YYYY-MM-DD") from exc
+
+
+@withdraw_app.command("request")
+def withdraw_request(
+    participant: ParticipantArg, path: VaultOpt,
+    received: Annotated[str, typer.Option("--received", help="When the request arrived (YYYY-MM-DD).")],
+    scope: Annotated[str, typer.Option("--scope", help="full, or purpose:P")] = "full",
+    member: MemberOpt = "steward", as_json: JsonOpt = False,
+) -> None:
+    """Record a withdrawal request and its deadline (one month by default, GDPR Art. 12(3))."""
+    day = _iso_date(received)
+    with _open(path, member) as v:
+        result = v.withdraw_request(participant, received=day, scope=scope)
+    _emit(as_json, result, lambda: (f"request {result['request_id']} ({result['scope']}) recorded; "
+                                    f"due by {result['deadline']}"))
+
+
+@withdraw_app.command("pending")
+def withdraw_pending(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+    """Open withdrawal requests, overdue first."""
+    with _open(path, member) as v:
+        rows = v.withdraw_pending()
+    _emit(as_json, rows, lambda: "\n".join(
+        f"{r['request_id']}  {r['participant_id']}  {r['scope']}  due {r['deadline']}  "
+        + ("OVERDUE" if r.get("overdue") else f"{r.get('days_left')} days left") for r in rows)
+        or "no open requests")
+
+
+@withdraw_app.command("process")
+def withdraw_process(
+    target: Annotated[str, typer.Argument(help="Participant id or request id (w-...).")],
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    receipt: Annotated[Path | None, typer.Option("--receipt", help="Write the signed receipt here.")] = None,
+) -> None:
+    """Carry out a withdrawal: cryptographic erase (full) or narrowing (purpose), with a receipt."""
+    with _open(path, member) as v:
+        result = v.withdraw_process(target)
+    if receipt is not None:
+        receipt.write_text(json.dumps(result["receipt"], indent=2, sort_keys=True) + "\n")
+    _emit(as_json, result, lambda: _withdrawal_text(result, receipt))
+
+
+def _withdrawal_text(result: dict[str, Any], receipt: Path | None) -> str:
+    lines = [f"{result['scope']} withdrawal of {result['participant_id']} processed at "
+             f"{result['processed_at']} ({'on time' if result['on_time'] else 'LATE'})",
+             f"  data key destroyed: {'yes' if result['data_key_destroyed'] else 'no'}; "
+             f"blobs deleted: {result['blobs_deleted']}; kept: {', '.join(result['kept']) or 'nothing'}",
+             f"  stage the data had reached: {result['stage']}"]
+    if result["notify"]:
+        lines.append("  Notify (GDPR Art. 19): " + ", ".join(result["recipients_to_notify"] or
+                                                            ["internal users only"]))
+        lines += [f"    export {n['export_id']} ({n['kind']}, {n['purpose']}) to {n['recipient']} "
+                  f"on {n['created_at']}" for n in result["notify"]]
+    if result.get("warning"):
+        lines.append(f"  warning: {result['warning']}")
+    if receipt is not None:
+        lines.append(f"  signed receipt written to {receipt}")
+    lines += [f"  {c}" for c in result["cautions"]]
+    return "\n".join(lines)
+
+
+@withdraw_app.command("receipt")
+def withdraw_receipt(
+    target: Annotated[str, typer.Argument(help="Participant id or request id (w-...).")],
+    path: VaultOpt, member: MemberOpt = "steward",
+    out: Annotated[Path | None, typer.Option("--out", help="Write the receipt here.")] = None,
+) -> None:
+    """The signed deletion receipt of a processed withdrawal (JSON)."""
+    with _open(path, member) as v:
+        doc = v.withdraw_receipt(target)
+    text = json.dumps(doc, indent=2, sort_keys=True) + "\n"
+    if out is not None:
+        out.write_text(text)
+    typer.echo(text if out is None else f"wrote {out}")
+
+
+@receipt_app.command("verify")
+def receipt_verify(
+    receipt_file: Annotated[Path, typer.Argument(help="A deletion receipt (JSON).")],
+    key: Annotated[str, typer.Option("--key", help="The vault's public key (hex).")],
+    as_json: JsonOpt = False,
+) -> None:
+    """Check a deletion receipt offline with the vault's public key alone. No passphrase."""
+    ok, reasons = vault.verify_receipt_file(receipt_file, vault.parse_public_key(key))
+    _emit(as_json, {"ok": ok, "problems": reasons},
+          "receipt ok" if ok else "receipt FAILED: " + "; ".join(reasons))
+    if not ok:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
+@app.command()
+def sweep(
+    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="Only list what would be erased.")] = False,
+) -> None:
+    """Erase, with receipts, data whose consent expired or retention ended (safe from cron)."""
+    with _open(path, member) as v:
+        result = v.sweep(dry_run=dry_run)
+    _emit(as_json, result, lambda: json.dumps(result, indent=2, sort_keys=True, default=str))
+
+
 @app.command()
 def report(
     path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
     out: Annotated[Path | None, typer.Option("--out", help="Write Markdown here.")] = None,
 ) -> None:
     """A record of processing (GDPR Art. 30 style) from the vault's state; counts only."""
-    from vault.report import to_markdown
-
     with _open(path, member) as v:
         record = v.report()
-    text = to_markdown(record)
+    text = vault.report_markdown(record)
     if out is not None:
         out.write_text(text, encoding="utf-8")
     _emit(as_json, record, text if out is None else f"wrote {out}")

@@ -15,7 +15,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from vault import exports, manifest
+from vault import exports
 from vault.bids import BidsWriter
 from vault.edf import RecordingMeta
 from vault.errors import IntegrityError, NotFound
@@ -69,17 +69,18 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                                      "manifest (manifest.json).")
     try:
         runs: dict[str, int] = {}
-        for blob_id, pid, meta in rows:
+        metas = {blob_id: meta for blob_id, _, meta in rows}
+        for blob_id, pid, chunks in v.read_blobs(grant, [r[0] for r in rows], now=now):
             runs[pid] = runs.get(pid, 0) + 1
-            header, blocks = _split_header(iter(v.read_blob(grant, blob_id, now=now)))
+            header, blocks = _split_header(iter(chunks))
             writer.add_recording(labels[pid], None, runs[pid], header, blocks,
-                                 RecordingMeta(**json.loads(meta)))
+                                 RecordingMeta(**json.loads(metas[blob_id])))
         files = writer.finish([{"participant_id": labels[pid]} for pid in sorted(labels)],
                               bidsignore=[MANIFEST_NAME])
         export_id = exports.new_export_id()
         signed = exports.sign_and_record(
             v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels, now=now,
-            body={"recordings": len(rows), "format": "EEG-BIDS (EDF/EDF+/BDF)",
+            body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
                   "privacy": "no differential-privacy noise: de-identified recordings, which can "
                              "still identify a person"})
@@ -89,28 +90,3 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
         raise
     return {"export_id": export_id, "out": str(out), "participants": len(labels),
             "recordings": len(rows), "manifest": str(out / MANIFEST_NAME)}
-
-
-def verify_export_dir(out: Path, public_key: bytes) -> dict[str, Any]:
-    """Manifest signature and every listed file's size and SHA-256; offline, key only."""
-    from vault.crypto import StreamingDigest
-
-    path = Path(out) / MANIFEST_NAME
-    try:
-        doc = manifest.load(path.read_bytes(), "the manifest")
-    except OSError as exc:
-        raise NotFound(f"no {MANIFEST_NAME} in {out}") from exc
-    problems = [] if manifest.verify(doc, public_key, manifest.MANIFEST) else ["bad signature"]
-    for entry in doc["body"].get("files", []):
-        target = Path(out) / entry["path"]
-        if not target.is_file():
-            problems.append(f"missing {entry['path']}")
-            continue
-        digest = StreamingDigest()
-        with open(target, "rb") as fh:
-            while block := fh.read(1 << 20):
-                digest.update(block)
-        if digest.hexdigest() != entry["sha256"] or target.stat().st_size != entry["size"]:
-            problems.append(f"altered {entry['path']}")
-    return {"ok": not problems, "problems": problems, "export_id": doc["body"].get("export_id"),
-            "files": len(doc["body"].get("files", []))}

@@ -52,7 +52,8 @@ def new_export_id() -> str:
 
 def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, members: Mapping[str, str],
                     body: Mapping[str, Any], now: dt.datetime,
-                    expires_days: int = DEFAULT_EXPORT_DAYS) -> dict[str, Any]:
+                    expires_days: int = DEFAULT_EXPORT_DAYS,
+                    list_pseudonyms: bool = True) -> dict[str, Any]:
     """Sign the manifest (with the audit tree head at release) and record the lineage.
 
     `members` maps internal participant id -> pseudonym in the export. One transaction
@@ -67,13 +68,18 @@ def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, member
                          "details": {"export": export_id, "grant": grant.grant_id,
                                      "recipient": recipient, "participants": len(members)}}, at)
         head = v._audit.sign_head(v._signing, at)
+        clash = set(body) & _STANDARD_FIELDS
+        if clash:
+            raise ValueError(f"manifest body may not set {sorted(clash)}")
         full = {
+            **body,
             "format": "mindward-export-manifest/1", "export_id": export_id, "kind": kind,
             "vault_id": v.vault_id, "purpose": grant.purpose, "recipient": recipient,
             "created_at": at, "expires_at": expires, "policy_version": grant.policy_version,
             "consent_digest": grant.consent_digest, "grant": grant.grant_id,
-            "cohort_size": len(members), "pseudonyms": sorted(members.values()),
-            "audit_tree_head": head.to_dict(), "cautions": list(CAUTIONS), **body,
+            "cohort_size": len(members),
+            **({"pseudonyms": sorted(members.values())} if list_pseudonyms else {}),
+            "audit_tree_head": head.to_dict(), "cautions": list(CAUTIONS),
         }
         signed = manifest.sign(v._signing, manifest.MANIFEST, full)
         raw = storage_json(signed)
@@ -85,6 +91,12 @@ def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, member
             "INSERT INTO export_members (export_id, pid, pseudonym) VALUES (?, ?, ?)",
             [(export_id, pid, alias) for pid, alias in members.items()])
     return signed
+
+
+_STANDARD_FIELDS = frozenset({
+    "format", "export_id", "kind", "vault_id", "purpose", "recipient", "created_at", "expires_at",
+    "policy_version", "consent_digest", "grant", "cohort_size", "pseudonyms", "audit_tree_head",
+    "cautions"})
 
 
 def storage_json(doc: Mapping[str, Any]) -> bytes:
@@ -111,8 +123,11 @@ def check_export(v: Vault, document: Mapping[str, Any], *, now: dt.datetime) -> 
     consents = registry.latest_consents(v._conn, members)
     erased = [pid for pid in members if pid not in consents]
     lapsed = []
+    # the narrowest answered purpose at or above the export's decides, as in decide.py
+    chain = v.policy.chain(purpose) if purpose in v.policy.purposes else (purpose,)
     for pid, consent in consents.items():
-        answer = None if consent is None else consent.purposes.get(purpose)
+        answer = None if consent is None else next(
+            (consent.purposes[p] for p in chain if p in consent.purposes), None)
         live = (consent is not None and not consent.is_expired(now) and answer is not None
                 and answer.permits)
         if not live:

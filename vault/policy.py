@@ -33,8 +33,9 @@ AuditSink = Callable[[list[dict[str, Any]], dt.datetime], None]
 class Grant:
     """Permission to decrypt named categories of named participants for one purpose."""
 
-    __slots__ = ("_engine", "actor", "categories", "consent_digest", "decided_at", "expires_at",
-                 "grant_id", "participants", "policy_version", "purpose", "request", "role")
+    __slots__ = ("_admitted", "_engine", "actor", "categories", "consent_digest", "counts",
+                 "decided_at", "expires_at", "grant_id", "participants", "policy_version", "purpose",
+                 "request", "role")
 
     def __init__(self, mint: object, *, engine: PolicyEngine, decision: CohortDecision,
                  grant_id: str) -> None:
@@ -53,6 +54,8 @@ class Grant:
         self.consent_digest = decision.consent_digest
         self.decided_at = decision.decided_at
         self.expires_at = decision.decided_at + GRANT_LIFETIME
+        self.counts = dict(decision.counts)  # refusals by reason, no ids
+        self._admitted: set[tuple[str, str, dt.datetime]] = set()
 
     def __reduce__(self) -> object:
         raise TypeError("grants are not serialisable")
@@ -111,6 +114,45 @@ class PolicyEngine:
             raise PolicyRefusal(f"read refused: {why}")
 
     def _why_not(self, grant: Grant, pid: str, category: str, now: dt.datetime) -> str | None:
+        static = self._static_refusal(grant, pid, category, now)
+        if static is not None:
+            return static
+        if (pid, category, now) in grant._admitted:
+            return None
+        return self._live_refusals(grant, (pid,), now).get(pid)
+
+    def _live_refusals(self, grant: Grant, pids: tuple[str, ...], now: dt.datetime) -> dict[str, str]:
+        """Re-decide `pids` against their consent now (budget and export rules were settled
+        when the grant was minted); returns pid -> first reason for those now refused."""
+        live = decide(self.policy, grant.request.model_copy(update={
+            "participants": pids, "cohort": False, "epsilon": None, "export": False}),
+            self._consents(pids), now=now)
+        refused = {}
+        for pid in pids:
+            verdict = live.decisions.get(pid)
+            if verdict is None or not verdict.permit:
+                refused[pid] = (verdict.reasons[0].value if verdict and verdict.reasons
+                                else "not-permitted-now")
+        return refused
+
+    def admit_many(self, grant: Grant, reads: list[tuple[str, str]], *, now: dt.datetime) -> None:
+        """Admit many (participant, category) reads with one live decision; refusals audited."""
+        for pid, category in reads:
+            why = self._static_refusal(grant, pid, category, now)
+            if why is not None:
+                self.admit(grant, pid, category, now=now)  # audits and raises
+        pids = tuple(sorted({pid for pid, _ in reads}))
+        refused = self._live_refusals(grant, pids, now)
+        if refused:
+            self._audit([{"actor": grant.actor, "action": "access.read", "decision": "refuse",
+                          "purpose": grant.purpose, "subjects": sorted(refused),
+                          "reasons": sorted(set(refused.values())),
+                          "details": {"grant": grant.grant_id}}], now)
+            raise PolicyRefusal(f"read refused for {len(refused)} participant(s): "
+                                + ", ".join(sorted(set(refused.values()))))
+        grant._admitted = {(pid, category, now) for pid, category in reads}
+
+    def _static_refusal(self, grant: Grant, pid: str, category: str, now: dt.datetime) -> str | None:
         if grant._engine is not self or grant.grant_id in self._revoked:
             return "grant-not-valid-here"
         if now >= grant.expires_at:
@@ -119,11 +161,6 @@ class PolicyEngine:
             return "participant-not-in-grant"
         if category not in grant.categories:
             return "category-not-in-grant"
-        live = decide(self.policy, grant.request.model_copy(
-            update={"participants": (pid,), "cohort": False}), self._consents((pid,)), now=now)
-        verdict = live.decisions.get(pid)
-        if verdict is None or not verdict.permit:
-            return verdict.reasons[0].value if verdict and verdict.reasons else "not-permitted-now"
         return None
 
     def revoke(self, grant: Grant) -> None:

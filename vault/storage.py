@@ -168,10 +168,16 @@ def set_meta(conn: sqlite3.Connection, key: str, value: str) -> None:
     )
 
 
-def checkpoint(conn: sqlite3.Connection) -> None:
-    """Fold the WAL into the main file and truncate it (used after erasure)."""
-    conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+def checkpoint(conn: sqlite3.Connection) -> tuple[int, int, int]:
+    """Fold the WAL into the main file and truncate it (used after erasure).
+
+    Returns SQLite's (busy, wal pages, pages checkpointed); busy = 1 means a reader
+    kept the WAL from being emptied.
+    """
+    row = conn.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()
+    return int(row[0]), int(row[1]), int(row[2])
 
 
 def incremental_vacuum(conn: sqlite3.Connection) -> None:
-    conn.execute("PRAGMA incremental_vacuum")
+    """Hand every free page back to the file system (executescript steps it to the end)."""
+    conn.executescript("PRAGMA incremental_vacuum;")

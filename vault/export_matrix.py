@@ -1,0 +1,594 @@
+"""`mindward export matrix`: a policy-checked, pseudonymised, differentially private
+release of preference scores or ratings, and `mindward export utility`.
+
+The flow of one export (every step audited):
+1. Candidates are the living participants holding batches of the category
+   (metadata only). Their ledgers give each one's remaining budget.
+2. The policy engine decides the cohort (consent, roles, expiry, minimum
+   cohort, budget, recipient, per-rating units); a refusal names counts per
+   reason, never who.
+3. Every granted batch is read through the one door (`Vault.read_blob`).
+4. The matrix (participants x items) is released with exact discrete Laplace
+   or Gaussian noise (`vault.privacy.release_matrix`), or as participant-level
+   DP statistics (`vault.privacy_aggregate.release_aggregate`).
+5. The budget is charged (its own transaction, before any file exists: a crash
+   can over-charge, never release uncharged), the files are written into a
+   staging folder, the manifest is signed and the lineage recorded
+   (`vault.exports.sign_and_record`), and the folder is renamed into place.
+
+Items are public dish ids. The item list is part of the release: with
+`items` (the public catalogue) it does not depend on anyone's data; without it
+the list is the union of the items the cohort rated, and an item only one
+person rated then reveals that somebody in the cohort rated it. The manifest
+says which was used.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import math
+import os
+import re
+import shutil
+from collections.abc import Mapping, Sequence
+from fractions import Fraction
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from vault import budget, crypto, exports, manifest
+from vault.errors import Conflict, InvalidInput, NotFound, PolicyRefusal, UsageError
+from vault.privacy import (
+    GAUSSIAN,
+    LAPLACE,
+    Cost,
+    Guarantee,
+    Mechanism,
+    PrivacyUnit,
+    choose_mechanism,
+    release_matrix,
+    zcdp_epsilon,
+)
+from vault.privacy_aggregate import AggregateRelease, release_aggregate
+
+if TYPE_CHECKING:
+    from vault.api import Vault
+    from vault.policy import Grant
+    from vault.recommend import UtilityReport
+
+MANIFEST_NAME = "manifest.json"
+PSEUDONYM_COLUMN = "_pseudonym"  # item ids start with a letter or digit: no clash possible
+ITEM_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}")  # as vault.scores accepts them
+FORMATS = ("parquet", "csv")
+RELEASES = ("matrix", "aggregate")
+MECHANISMS: Mapping[str, Mechanism] = {"laplace": LAPLACE, "gaussian": GAUSSIAN,
+                                       LAPLACE: LAPLACE, GAUSSIAN: GAUSSIAN}
+SCORE_KINDS = ("scores", "ratings")
+DEFAULT_REAL_GRID = 100  # real-valued scores are released on a grid of step 1/100
+EXPORT_CAUTIONS = (
+    "The exact cohort size and, for matrix releases, one row per included participant are "
+    "released: that someone is in the cohort is not protected.",
+    "Released values are not clipped after noise and can lie outside the declared range; "
+    "clipping them is free post-processing.",
+)
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _check_out(out: Path) -> Path:
+    out = Path(out)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
+    return out
+
+
+def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
+    """Living participants with score batches of `category`: pid -> [(blob id, rows)]."""
+    rows = v._conn.execute(
+        "SELECT s.pid, s.blob_id, s.rows FROM score_batches s JOIN participants p ON p.pid = s.pid "
+        "WHERE s.category = ? AND p.wrapped_key IS NOT NULL ORDER BY s.pid, s.blob_id",
+        (category,)).fetchall()
+    out: dict[str, list[tuple[str, int]]] = {}
+    for pid, blob_id, n in rows:
+        out.setdefault(pid, []).append((blob_id, int(n)))
+    return out
+
+
+def _check_items(items: Sequence[str]) -> list[str]:
+    if isinstance(items, str | bytes):
+        raise UsageError("the item catalogue is a list of item ids")
+    chosen = sorted(set(items))
+    if not chosen:
+        raise UsageError("the item catalogue is empty")
+    for item in chosen:
+        if not isinstance(item, str) or not ITEM_ID.fullmatch(item):
+            raise UsageError("item ids are 1-64 letters, digits or . _ : / - (first a letter or digit)")
+    return chosen
+
+
+def read_items(path: Path) -> list[str]:
+    """A public item catalogue file: one item id per line; blank lines and '#' comments skipped."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise NotFound(f"cannot read {path}") from exc
+    items = [line.strip() for line in text.splitlines()]
+    return _check_items([i for i in items if i and not i.startswith("#")])
+
+
+def _scale_of(v: Vault, category: str, grid_k: int | None) -> tuple[Fraction, Fraction, int]:
+    """The category's declared range and the release grid (1 for integers, 1/100 for reals)."""
+    spec = v.policy.categories.get(category)
+    if spec is None or spec.kind not in SCORE_KINDS or spec.value_range is None:
+        raise UsageError(f"category {category} holds no scores or ratings with a declared range")
+    if grid_k is not None and (isinstance(grid_k, bool) or not isinstance(grid_k, int) or grid_k < 1):
+        raise UsageError("grid_k must be a positive integer")
+    k = grid_k or (1 if spec.value_type == "integer" else DEFAULT_REAL_GRID)
+    low, high = (Fraction(str(x)) for x in spec.value_range)
+    return low, high, k
+
+
+def _float_above(value: Fraction) -> float:
+    f = float(value)
+    return math.nextafter(f, math.inf) if Fraction(f) < value else f
+
+
+def _audit_refusal(v: Vault, purpose: str, reason: str, now: dt.datetime) -> None:
+    v._audit_batch([{"actor": v.member, "action": "export.matrix", "purpose": purpose,
+                     "decision": "refuse", "subjects": [], "reasons": [reason]}], now)
+
+
+Cells = tuple[list[str], np.ndarray]  # one participant's (item ids, values)
+
+
+def decode_batch(raw: bytes) -> Cells:
+    """One stored batch (`vault.scores.canonical`: JSON {item: value}) as (item ids, values)."""
+    try:
+        doc = json.loads(raw)
+        if not isinstance(doc, dict):
+            raise ValueError
+        values = np.fromiter(doc.values(), np.float64, len(doc))
+    except (ValueError, TypeError):
+        raise InvalidInput("stored score batch is malformed") from None
+    if not np.isfinite(values).all():
+        raise InvalidInput("stored score batch is malformed")
+    return list(doc), values
+
+
+def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],
+                 now: dt.datetime) -> dict[str, Cells]:
+    """Every granted participant's ratings, read through the one door."""
+    cells: dict[str, Cells] = {}
+    wanted = [blob_id for pid in sorted(grant.participants) for blob_id, _ in batches.get(pid, ())]
+    raw: dict[str, list[bytes]] = {}
+    for _, pid, chunks in v.read_blobs(grant, wanted, now=now):  # one live decision, one audit batch
+        raw.setdefault(pid, []).append(b"".join(chunks))
+    for pid in sorted(grant.participants):
+        parts = [decode_batch(body) for body in raw.get(pid, ())]
+        if len(parts) == 1:
+            cells[pid] = parts[0]
+            continue
+        merged: dict[str, float] = {}
+        for keys, values in parts:
+            merged.update(zip(keys, values.tolist(), strict=True))
+        cells[pid] = (list(merged), np.fromiter(merged.values(), np.float64, len(merged)))
+    return cells
+
+
+def rated_items(cells: Mapping[str, Cells]) -> list[str]:
+    """The union of the items the cohort rated (data-dependent; see the module docstring)."""
+    return sorted(set().union(*(keys for keys, _ in cells.values())))
+
+
+def cohort_cells(cells: Mapping[str, Cells], order: Sequence[str],
+                 items: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The rated cells as (row, column, value) arrays: rows follow `order`, columns `items`.
+
+    Ratings of items outside `items` are left out.
+    """
+    keys: list[str] = []
+    counts = np.empty(len(order), np.int64)
+    for i, pid in enumerate(order):
+        keys.extend(cells[pid][0])
+        counts[i] = len(cells[pid][0])
+    index = {item: j for j, item in enumerate(items)}
+    cols = np.fromiter((index.get(k, -1) for k in keys), np.int64, len(keys))
+    values = (np.concatenate([cells[pid][1] for pid in order]) if order
+              else np.empty(0, np.float64))
+    rows = np.repeat(np.arange(len(order), dtype=np.int64), counts)
+    keep = cols >= 0
+    return rows[keep], cols[keep], values[keep]
+
+
+def dense(shape: tuple[int, int], rows: np.ndarray, cols: np.ndarray,
+          values: np.ndarray) -> np.ndarray:
+    """A (participants x items) matrix with NaN where nothing is given."""
+    out = np.full(shape, np.nan)
+    out[rows, cols] = values
+    return out
+
+
+def build_matrix(cells: Mapping[str, Cells], order: Sequence[str],
+                 items: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+    """(values with NaN for unrated, ratings kept per row) for rows `order`, columns `items`."""
+    rows, cols, values = cohort_cells(cells, order, items)
+    return (dense((len(order), len(items)), rows, cols, values),
+            np.bincount(rows, minlength=len(order)))
+
+
+def release_cells(rows: np.ndarray, cols: np.ndarray, values: np.ndarray,
+                  shape: tuple[int, int], *, unit: PrivacyUnit, low: Fraction, high: Fraction,
+                  grid_k: int, epsilon: Fraction | None, rho: Fraction | None
+                  ) -> tuple[np.ndarray, Guarantee]:
+    """The noisy matrix of `release_matrix` (NaN stays NaN under the rating unit).
+
+    The rating unit noises each rated cell on its own with sensitivity one
+    range span, whatever the matrix shape; so the rated values are released as
+    one 1 x n matrix (same mechanism, same guarantee) and scattered back, which
+    spares the dense copies. The participant unit needs the whole dense matrix.
+    """
+    if unit is PrivacyUnit.RATING:
+        if values.size == 0:
+            raise NotFound("the granted participants hold no ratings of these items")
+        noisy, g = release_matrix(values[None, :], low=low, high=high, grid_k=grid_k, unit=unit,
+                                  epsilon=epsilon, rho=rho, delta=budget.ZCDP_DELTA)
+        return dense(shape, rows, cols, noisy[0]), g
+    return release_matrix(dense(shape, rows, cols, values), low=low, high=high, grid_k=grid_k,
+                          unit=unit, epsilon=epsilon, rho=rho, delta=budget.ZCDP_DELTA)
+
+
+# --------------------------------------------------------------------------- files
+
+
+def _fsync(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _file_entry(root: Path, name: str) -> dict[str, Any]:
+    path = root / name
+    digest = crypto.StreamingDigest()
+    with open(path, "rb") as fh:
+        while block := fh.read(1 << 20):
+            digest.update(block)
+        os.fsync(fh.fileno())
+    return {"path": name, "size": path.stat().st_size, "sha256": digest.hexdigest()}
+
+
+def write_table(root: Path, stem: str, columns: Mapping[str, Any], formats: Sequence[str]
+                ) -> list[dict[str, Any]]:
+    """Write one table as Parquet and/or CSV (pyarrow); returns the manifest's file entries."""
+    import pyarrow as pa
+    import pyarrow.csv as pa_csv
+    import pyarrow.parquet as pq
+
+    table = pa.table(dict(columns))
+    entries = []
+    if "parquet" in formats:
+        pq.write_table(table, root / f"{stem}.parquet")
+        entries.append(_file_entry(root, f"{stem}.parquet"))
+    if "csv" in formats:
+        pa_csv.write_csv(table, root / f"{stem}.csv")
+        entries.append(_file_entry(root, f"{stem}.csv"))
+    return entries
+
+
+def _matrix_columns(labels: Sequence[str], items: Sequence[str], noisy: np.ndarray
+                    ) -> dict[str, Any]:
+    columns: dict[str, Any] = {PSEUDONYM_COLUMN: list(labels)}
+    by_column = np.ascontiguousarray(noisy.T)
+    for j, item in enumerate(items):
+        columns[item] = by_column[j]
+    return columns
+
+
+def _aggregate_tables(rel: AggregateRelease, items: Sequence[str]) -> dict[str, dict[str, Any]]:
+    upper = np.triu_indices(len(items))
+    names = np.array(items, dtype=object)
+    return {
+        "items": {"item": list(items), "weight": rel.weights, "weighted_sum": rel.sums,
+                  "mean": rel.means},
+        "item_pairs": {"item_a": list(names[upper[0]]), "item_b": list(names[upper[1]]),
+                       "co_weight": rel.co_weights[upper],
+                       "covariance_sum": rel.covariance_sums[upper],
+                       "covariance": rel.covariance[upper]},
+    }
+
+
+# --------------------------------------------------------------------------- the export
+
+
+def export_matrix(
+    v: Vault,
+    *,
+    purpose: str,
+    category: str,
+    out: Path,
+    now: dt.datetime,
+    epsilon: float | str | Fraction | None = None,
+    rho: float | str | Fraction | None = None,
+    release: str = "matrix",
+    unit: str = "participant",
+    mechanism: str | None = None,
+    recipient: str | None = None,
+    items: Sequence[str] | None = None,
+    grid_k: int | None = None,
+    max_items_per_participant: int | None = None,
+    formats: Sequence[str] = FORMATS,
+) -> dict[str, Any]:
+    """Release the granted cohort's `category` with DP noise into the new folder `out`.
+
+    `epsilon` (discrete Laplace, pure DP) or `rho` (discrete Gaussian, zCDP);
+    `mechanism` ("laplace"/"gaussian"), when given, must agree. `unit` is
+    "participant" (default) or "rating" (only where the policy allows it; matrix
+    release only). `items`: the public item catalogue (recommended; see the
+    module docstring). Returns a summary: counts only, no participant ids.
+    """
+    if release not in RELEASES:
+        raise UsageError("--release is 'matrix' or 'aggregate'")
+    try:
+        privacy_unit = PrivacyUnit(unit)
+    except ValueError:
+        raise UsageError("--unit is 'participant' or 'rating'") from None
+    if release == "aggregate" and privacy_unit is not PrivacyUnit.PARTICIPANT:
+        raise UsageError("the aggregate release protects whole participants: --unit participant")
+    if mechanism is not None and mechanism not in MECHANISMS:
+        raise UsageError("--mechanism is 'laplace' or 'gaussian'")
+    mech, amount = choose_mechanism(epsilon, rho, MECHANISMS[mechanism] if mechanism else None)
+    if not formats or any(f not in FORMATS for f in formats):
+        raise UsageError("formats are 'parquet' and/or 'csv'")
+    out = _check_out(out)
+    catalogue = _check_items(items) if items is not None else None
+    if purpose in v.policy.purposes and not budget.budgets(v.policy, purpose):
+        _audit_refusal(v, purpose, "no-privacy-budget", now)
+        raise PolicyRefusal(f"refused: purpose {purpose} sets no per-participant privacy budget "
+                            "(epsilon_per_participant); differentially private exports need one")
+
+    # 1-2. candidates, their remaining budgets, the decision
+    batches = _candidates(v, category)
+    unit_cost = Cost(epsilon=amount) if mech == LAPLACE else Cost(rho=amount)
+    n_rows = {pid: sum(n for _, n in b) for pid, b in batches.items()}
+    per_rating = privacy_unit is PrivacyUnit.RATING
+    scaled = {n: unit_cost.times(n) for n in set(n_rows.values())} if per_rating else {}
+    bound = {pid: scaled[n_rows[pid]] if per_rating else unit_cost for pid in batches}
+    request_eps = float(amount) if mech == LAPLACE else _float_above(
+        zcdp_epsilon(amount, budget.ZCDP_DELTA))
+    remaining = (budget.remaining_for_decide(v, purpose, bound, request_eps,
+                                             scale=n_rows if per_rating else None)
+                 if purpose in v.policy.purposes else {})
+    grant = v.authorize(purpose, [category], now=now, export=True, epsilon=request_eps,
+                        privacy_unit=privacy_unit.value, recipient=recipient,
+                        participants=tuple(batches), budget_remaining=remaining)
+    refused = dict(sorted(grant.counts.items()))
+    low, high, k = _scale_of(v, category, grid_k)
+
+    # 3. read through the one door
+    cells = _read_cohort(v, grant, batches, now)
+    item_list = catalogue if catalogue is not None else rated_items(cells)
+    if not item_list:
+        raise NotFound("the granted participants hold no ratings")
+    labels = exports.pseudonyms(v, purpose, cells)
+    order = sorted(cells, key=labels.__getitem__)  # row order reveals nothing internal
+    rows, cols, values = cohort_cells(cells, order, item_list)
+    cells.clear()
+    shape = (len(order), len(item_list))
+    kept = np.bincount(rows, minlength=len(order))
+
+    # 4. the release (in memory)
+    eps_arg = amount if mech == LAPLACE else None
+    rho_arg = amount if mech == GAUSSIAN else None
+    if release == "matrix":
+        noisy, guarantee = release_cells(rows, cols, values, shape, unit=privacy_unit, low=low,
+                                         high=high, grid_k=k, epsilon=eps_arg, rho=rho_arg)
+        tables = {"matrix": _matrix_columns([labels[p] for p in order], item_list, noisy)}
+        del noisy
+    else:
+        m = max_items_per_participant if max_items_per_participant is not None else len(item_list)
+        rel, guarantee = release_aggregate(dense(shape, rows, cols, values), low=low, high=high,
+                                           grid_k=k, max_items_per_participant=m, epsilon=eps_arg,
+                                           rho=rho_arg, item_ids=item_list, delta=budget.ZCDP_DELTA)
+        tables = _aggregate_tables(rel, item_list)
+    del rows, cols, values
+    by_count = {int(n): guarantee.cost_for(int(n)) for n in np.unique(kept)}
+    costs = {pid: by_count[int(n)] for pid, n in zip(order, kept, strict=True)}
+
+    # 5. charge, write, sign, record, move into place
+    export_id = exports.new_export_id()
+    budget.charge(v, purpose, costs, export_id=export_id, now=now)
+    staging = out.parent / f".{out.name}.export-{crypto.random_id(6)}"
+    staging.mkdir(mode=0o700, parents=True)
+    try:
+        files: list[dict[str, Any]] = []
+        for stem, columns in tables.items():
+            files += write_table(staging, stem, columns, formats)
+        tables.clear()
+        if release == "matrix":
+            members = labels
+        else:  # nothing per participant is released: names unlinkable to any other export
+            members = exports.pseudonyms(v, f"{purpose}#aggregate:{export_id}", order)
+        body = _manifest_body(release, category, guarantee, files, item_list, catalogue is not None,
+                              budget.budgets(v.policy, purpose), k, mech, formats)
+        signed = exports.sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
+                                         grant=grant, members=members, body=body, now=now,
+                                         list_pseudonyms=release == "matrix")
+        (staging / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
+        _fsync(staging / MANIFEST_NAME)
+        _fsync(staging)
+        if out.exists():
+            out.rmdir()
+        os.replace(staging, out)
+        _fsync(out.parent)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return {
+        "export_id": export_id, "out": str(out), "release": release, "category": category,
+        "purpose": purpose, "recipient": signed["body"]["recipient"],
+        "cohort_size": len(order), "refused_by_reason": refused, "items": len(item_list),
+        "item_source": "catalogue" if catalogue is not None else "data",
+        "guarantee": guarantee.as_dict(), "files": [f["path"] for f in files],
+        "manifest": str(out / MANIFEST_NAME),
+    }
+
+
+def _manifest_body(release: str, category: str, g: Guarantee, files: list[dict[str, Any]],
+                   items: Sequence[str], from_catalogue: bool, plan: Mapping[str, Any], k: int,
+                   mech: Mechanism, formats: Sequence[str]) -> dict[str, Any]:
+    per_rating = g.unit is PrivacyUnit.RATING
+    body: dict[str, Any] = {
+        "release": release, "category": category, "data_format": " and ".join(
+            {"parquet": "Apache Parquet", "csv": "CSV (UTF-8)"}[f] for f in formats),
+        "mechanism": g.mechanism, "privacy_unit": g.unit.value,
+        "epsilon": None if g.epsilon is None else str(g.epsilon),
+        "rho": None if g.rho is None else str(g.rho),
+        "zcdp_delta": str(budget.ZCDP_DELTA) if mech == GAUSSIAN else None,
+        "privacy": g.as_dict(),
+        "budget": {
+            "charged_purposes": list(plan),
+            "accounting": ("basic composition of pure epsilon" if mech == LAPLACE else
+                           f"zCDP: rho adds up; judged as (epsilon, delta) at delta "
+                           f"{budget.ZCDP_DELTA}"),
+            "cost_per_participant": (f"{'epsilon' if mech == LAPLACE else 'rho'} per rating "
+                                     "times that participant's number of released ratings "
+                                     "(admission was judged on all their stored ratings)"
+                                     if per_rating else "the stated epsilon or rho"),
+        },
+        "items": {"count": len(items), "ids": list(items),
+                  "source": "the public item catalogue given with the request" if from_catalogue
+                  else "the union of the items the cohort rated (data-dependent: an item rated "
+                       "by one participant reveals that someone in the cohort rated it)"},
+        "grid_k": k, "pseudonym_column": PSEUDONYM_COLUMN if release == "matrix" else None,
+        "files": files, "export_cautions": list(EXPORT_CAUTIONS),
+    }
+    if per_rating:
+        body["rating_unit_warning"] = (
+            "PER-RATING PRIVACY UNIT: only single ratings are protected. A participant's ratings as "
+            "a whole, their presence, and which items they rated are NOT protected.")
+    return body
+
+
+# --------------------------------------------------------------------------- checking an export
+
+
+def verify_export_dir(out: Path, public_key: bytes) -> dict[str, Any]:
+    """Offline check with the vault's public key alone: the manifest's signature, the
+    audit tree head it names, and every listed file's size and SHA-256; a file in the
+    folder that the manifest does not list, or a listed path leaving the folder, fails."""
+    from vault.audit import TreeHead
+    from vault.errors import IntegrityError
+
+    root = Path(out)
+    path = root / MANIFEST_NAME
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise NotFound(f"no {MANIFEST_NAME} in {out}") from exc
+    doc = manifest.load(raw, "the manifest")
+    body = doc["body"]
+    problems = [] if manifest.verify(doc, public_key, manifest.MANIFEST) else ["bad signature"]
+    try:
+        if not TreeHead.from_dict(body.get("audit_tree_head") or {}).verify(public_key):
+            problems.append("the audit tree head's signature does not verify")
+    except IntegrityError:
+        problems.append("the manifest names no valid audit tree head")
+    listed: set[str] = set()
+    entries = body.get("files")
+    if not isinstance(entries, list):
+        entries = []
+        problems.append("the manifest lists no files")
+    for entry in entries:
+        name = entry.get("path") if isinstance(entry, dict) else None
+        if not isinstance(name, str) or not name or name.startswith("/") or ".." in Path(name).parts:
+            problems.append("a listed file has no valid relative path")
+            continue
+        listed.add(name)
+        target = root / name
+        if not target.is_file():
+            problems.append(f"missing {name}")
+            continue
+        digest = crypto.StreamingDigest()
+        with open(target, "rb") as fh:
+            while block := fh.read(1 << 20):
+                digest.update(block)
+        if digest.hexdigest() != entry.get("sha256") or target.stat().st_size != entry.get("size"):
+            problems.append(f"altered {name}")
+    for extra in sorted(p.relative_to(root).as_posix() for p in root.rglob("*") if p.is_file()):
+        if extra != MANIFEST_NAME and extra not in listed:
+            problems.append(f"unlisted file {extra}")
+    return {"ok": not problems, "problems": problems, "export_id": body.get("export_id"),
+            "files": len(listed)}
+
+
+# --------------------------------------------------------------------------- utility
+
+
+def export_utility(
+    v: Vault,
+    *,
+    purpose: str,
+    category: str,
+    epsilons: Sequence[float],
+    out_png: Path,
+    now: dt.datetime,
+    unit: str = "participant",
+    rank: int = 3,
+    test_fraction: float = 0.2,
+    repeats: int = 1,
+    items: Sequence[str] | None = None,
+    grid_k: int | None = None,
+    seed: int | None = None,
+) -> dict[str, Any]:
+    """Held-out RMSE of a recommender trained on DP-noised data, per epsilon, inside the vault.
+
+    The noise is the real matrix release (`release_matrix`, the same unit and
+    grid as an export). Only RMSE figures leave: a table, a PNG plot and the
+    report's numbers; no budget is charged because no data is released, but the
+    figures are computed from raw ratings and are not themselves DP.
+    """
+    from vault.recommend import utility_curve
+    from vault.utility_plot import plot_utility
+
+    try:
+        privacy_unit = PrivacyUnit(unit)
+    except ValueError:
+        raise UsageError("--unit is 'participant' or 'rating'") from None
+    if Path(out_png).suffix.lower() != ".png":
+        raise UsageError("the utility plot is written as PNG: give a path ending in .png")
+    catalogue = _check_items(items) if items is not None else None
+    batches = _candidates(v, category)
+    grant = v.authorize(purpose, [category], now=now, privacy_unit=privacy_unit.value,
+                        participants=tuple(batches))
+    low, high, k = _scale_of(v, category, grid_k)
+    cells = _read_cohort(v, grant, batches, now)
+    item_list = catalogue if catalogue is not None else rated_items(cells)
+    if not item_list:
+        raise NotFound("the granted participants hold no ratings")
+    order = sorted(cells)
+    values, _ = build_matrix(cells, order, item_list)
+    cells.clear()
+    rank = max(1, min(rank, *values.shape))
+
+    def noise_fn(train: np.ndarray, eps: float) -> np.ndarray:
+        return release_matrix(train, low=low, high=high, grid_k=k, unit=privacy_unit, epsilon=eps)[0]
+
+    start = seed if seed is not None else int.from_bytes(crypto.random_bytes(16), "big")
+    report: UtilityReport = utility_curve(
+        values, epsilons, noise_fn, rng=np.random.default_rng(start),
+        value_range=(float(low), float(high)), rank=rank, test_fraction=test_fraction,
+        repeats=repeats)
+    del values
+    png = plot_utility(report, Path(out_png))
+    figures = report.as_dict()
+    v._audit_batch([{"actor": v.member, "action": "export.utility", "purpose": purpose,
+                     "decision": "done", "subjects": [],
+                     "details": {"grant": grant.grant_id, "category": category,
+                                 "privacy_unit": privacy_unit.value, "epsilons": figures["epsilons"],
+                                 "released": "held-out RMSE figures only"}}], now)
+    return {"purpose": purpose, "category": category, "privacy_unit": privacy_unit.value,
+            "report": figures, "table": report.table(), "png": str(png)}
