@@ -611,7 +611,8 @@ def report(
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "
                                             "holds an earlier demo).")] = Path("mindward-demo"),
-    participants: Annotated[int, typer.Option(min=24, max=40, help="Cohort size.")] = 30,
+    participants: Annotated[int, typer.Option(
+        min=30, max=40, help="Cohort size (recommender training needs 20 consenting).")] = 30,
     as_json: JsonOpt = False,
 ) -> None:
     """Run the whole job on an invented study (synthetic people only), narrated."""
@@ -626,8 +627,20 @@ def demo(
 
         summary = vault.run_demo(directory, n_participants=participants,
                                  say=console.print, progress=progress)
-    _emit(as_json, summary, lambda: "\n".join(
-        ["", "Summary"] + [f"  {k.replace('_', ' ')}: {v}" for k, v in summary.items()]))
+    if as_json:
+        _emit(True, summary, "")
+        return
+    from rich.table import Table
+
+    table = Table(title="Summary", show_header=False)
+    for key, value in summary.items():
+        if key != "paths":
+            table.add_row(key.replace("_", " "), str(value))
+    console.print(table)
+    for name, where in summary["paths"].items():
+        console.print(f"  {name}: {where}")
+    console.print("All people in this demo are invented. With real participants, follow your "
+                  "ethics board's, data-protection officer's and local law's rules.")
 
 
 @app.command()
