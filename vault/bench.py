@@ -32,6 +32,7 @@ _TARGETS = {
     "audit_verify_vs_hashlib": ("<=", 5.0), "decisions_per_s": (">=", 100_000.0),
     "ingest_vs_read_aes": (">=", 0.5), "ingest_peak_mib": ("<", 200.0),
     "withdraw_1gib_vs_1mib": ("<=", 2.0), "receipt_verify_ms": ("<", 50.0),
+    "export_matrix_vs_pandas": ("<=", 1.5), "sampler_vs_opendp": (">=", 10.0),
 }
 
 
@@ -313,6 +314,16 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
         from vault.withdraw_bench import bench_withdraw
 
         figures.update(bench_withdraw(workdir, big_mib=withdraw_mib, repeat=3 if quick else 5))
+        from vault.export_bench import bench_export
+        from vault.noise_bench import bench_samplers
+
+        export = bench_export(n_participants=1000 if quick else 10_000, n_items=200 if quick else 2000,
+                              phases=False, door_sample=0)
+        figures.update(export_s=export["export_s"], export_pandas_s=export["baseline_s"],
+                       export_matrix_vs_pandas=export["ratio"], export_unit=export["unit"])
+        samplers = bench_samplers()
+        figures.update(sampler_laplace_per_s=samplers["laplace_per_s"],
+                       sampler_vs_opendp=samplers["laplace_ratio"] or 0.0)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
     figures["targets"] = {name: {"rule": f"{op} {limit}", "value": figures[name],
@@ -338,6 +349,9 @@ def format_report(figures: dict[str, Any]) -> str:
     lines.append("  ingest of a {ingest_edf_mib:.0f} MiB EDF: {ingest_s:.2f} s (edfio read + raw AES-GCM "
                  "{edfio_read_aes_s:.2f} s), peak memory growth {ingest_peak_mib:.0f} MiB; "
                  "{decide_participants} decisions in {decide_s:.3f} s".format(**figures))
+    lines.append("  export of {export_unit}-unit matrix: {export_s:.2f} s vs pandas pivot + Parquet "
+                 "{export_pandas_s:.2f} s; discrete Laplace {sampler_laplace_per_s:.0f} samples/s"
+                 .format(**figures))
     if figures["quick"]:
         lines.append("  (quick sizes: the targets are stated for the full run)")
     return "\n".join(lines)
