@@ -38,8 +38,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from vault import budget, crypto, exports, manifest
-from vault.errors import Conflict, InvalidInput, NotFound, PolicyRefusal, UsageError
+from vault import budget, crypto, exports, manifest, scores
+from vault.errors import Conflict, NotFound, PolicyRefusal, UsageError
 from vault.privacy import (
     GAUSSIAN,
     LAPLACE,
@@ -145,17 +145,8 @@ Cells = tuple[list[str], np.ndarray]  # one participant's (item ids, values)
 
 
 def decode_batch(raw: bytes) -> Cells:
-    """One stored batch (`vault.scores.canonical`: JSON {item: value}) as (item ids, values)."""
-    try:
-        doc = json.loads(raw)
-        if not isinstance(doc, dict):
-            raise ValueError
-        values = np.fromiter(doc.values(), np.float64, len(doc))
-    except (ValueError, TypeError):
-        raise InvalidInput("stored score batch is malformed") from None
-    if not np.isfinite(values).all():
-        raise InvalidInput("stored score batch is malformed")
-    return list(doc), values
+    """One stored batch (`vault.scores.canonical`, format MWS1) as (item ids, values)."""
+    return scores.decode(raw)
 
 
 def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],

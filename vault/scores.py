@@ -11,14 +11,15 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 import math
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from vault.errors import InvalidInput, NotFound
+import numpy as np
+
+from vault.errors import IntegrityError, InvalidInput, NotFound
 from vault.policyset import Category
 
 COLUMNS = ("participant_id", "item_id", "value")
@@ -100,14 +101,36 @@ def by_participant(rows: Sequence[ScoreRow]) -> dict[str, list[ScoreRow]]:
     return groups
 
 
+MAGIC = b"MWS1"
+
+
 def canonical(rows: Sequence[ScoreRow]) -> bytes:
-    """The plaintext stored for one participant's batch: {item: value}, sorted, as JSON."""
-    return json.dumps({r.item: r.value for r in sorted(rows, key=lambda r: r.item)},
-                      sort_keys=True, separators=(",", ":")).encode()
+    """The plaintext stored for one participant's batch (format MWS1, docs/formats.md):
+
+    "MWS1" || u32 count (big-endian) || u32 length of the item block || item ids joined by
+    "\\n" (UTF-8, sorted) || count float64 values (little-endian), in the same order.
+    Compact and fast to decode for exports; one canonical encoding per set of rows.
+    """
+    ordered = sorted(rows, key=lambda r: r.item)
+    names = "\n".join(r.item for r in ordered).encode("utf-8")
+    values = np.array([r.value for r in ordered], dtype="<f8")
+    return (MAGIC + len(ordered).to_bytes(4, "big") + len(names).to_bytes(4, "big") + names
+            + values.tobytes())
 
 
-def decode(raw: bytes) -> Mapping[str, float]:
-    value = json.loads(raw)
-    if not isinstance(value, dict):
-        raise InvalidInput("stored score batch is malformed")
-    return {str(k): float(v) for k, v in value.items()}
+def decode(raw: bytes) -> tuple[list[str], np.ndarray]:
+    """(item ids, values) of a stored batch; IntegrityError when it is not an MWS1 batch."""
+    try:
+        if raw[:4] != MAGIC:
+            raise ValueError
+        count = int.from_bytes(raw[4:8], "big")
+        size = int.from_bytes(raw[8:12], "big")
+        names = raw[12 : 12 + size].decode("utf-8").split("\n") if count else []
+        values = np.frombuffer(raw, dtype="<f8", count=count, offset=12 + size)
+        if len(names) != count or len(raw) != 12 + size + 8 * count:
+            raise ValueError
+    except (ValueError, UnicodeDecodeError):
+        raise IntegrityError("a stored score batch is malformed") from None
+    if not np.isfinite(values).all():
+        raise IntegrityError("a stored score batch is malformed")
+    return names, values
