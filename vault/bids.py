@@ -31,6 +31,7 @@ from typing import Any
 from vault.crypto import StreamingDigest, random_id
 from vault.edf import RecordingMeta
 from vault.errors import Conflict, InvalidInput, StorageFull, UsageError
+from vault.fsutil import fsync_path
 
 __all__ = ["BIDS_VERSION", "README_CAUTIONS", "BidsWriter", "WrittenFile", "channel_type"]
 
@@ -144,12 +145,6 @@ def _tsv(header: Sequence[str], rows: Iterable[Sequence[str]]) -> bytes:
     return ("\n".join(lines) + "\n").encode("utf-8")
 
 
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 class BidsWriter:
@@ -232,7 +227,7 @@ class BidsWriter:
             if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
                 raise StorageFull("not enough disk space; the partial export file was removed") from None
             raise
-        _fsync_dir(final.parent)
+        fsync_path(final.parent)
         self._files[rel] = WrittenFile(rel, size, digest.hexdigest())
 
     def _write(self, rel: str, data: bytes) -> None:

@@ -40,6 +40,7 @@ import numpy as np
 
 from vault import budget, crypto, exports, manifest, scores
 from vault.errors import Conflict, NotFound, PolicyRefusal, UsageError
+from vault.fsutil import fsync_path
 from vault.privacy import (
     GAUSSIAN,
     LAPLACE,
@@ -234,12 +235,6 @@ def release_cells(rows: np.ndarray, cols: np.ndarray, values: np.ndarray,
 # --------------------------------------------------------------------------- files
 
 
-def _fsync(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def _file_entry(root: Path, name: str) -> dict[str, Any]:
@@ -409,12 +404,12 @@ def export_matrix(
                                          grant=grant, members=members, body=body, now=now,
                                          list_pseudonyms=release == "matrix")
         (staging / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
-        _fsync(staging / MANIFEST_NAME)
-        _fsync(staging)
+        fsync_path(staging / MANIFEST_NAME)
+        fsync_path(staging)
         if out.exists():
             out.rmdir()
         os.replace(staging, out)
-        _fsync(out.parent)
+        fsync_path(out.parent)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise

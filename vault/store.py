@@ -25,6 +25,7 @@ from typing import BinaryIO
 
 from vault import crypto
 from vault.errors import IntegrityError, NotFound, PolicyRefusal, StorageFull
+from vault.fsutil import fsync_path
 from vault.policy import Grant
 
 BLOB_DIR = "blobs"
@@ -48,12 +49,6 @@ def blob_context(vault_id: str, pid: str, blob_id: str) -> bytes:
     return b"\x00".join(parts)
 
 
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 class BlobStore:
@@ -97,7 +92,7 @@ class BlobStore:
                 os.fsync(out.fileno())
             final.parent.mkdir(mode=0o700, exist_ok=True)
             os.replace(tmp, final)
-            _fsync_dir(final.parent)
+            fsync_path(final.parent)
         except OSError as exc:
             tmp.unlink(missing_ok=True)
             if exc.errno in (errno.ENOSPC, errno.EDQUOT):
@@ -113,7 +108,7 @@ class BlobStore:
         path = self.path(blob_id)
         path.unlink(missing_ok=True)
         if path.parent.exists():
-            _fsync_dir(path.parent)
+            fsync_path(path.parent)
 
     def recover(self, known_ids: set[str]) -> int:
         """Remove temporary files and blobs with no committed row; returns how many."""

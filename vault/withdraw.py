@@ -68,6 +68,7 @@ from typing import TYPE_CHECKING, Any
 from vault import crypto, exports, receipt, registry, storage
 from vault.consent import ConsentStatus, ConsentVersion, revise_status
 from vault.errors import Conflict, InvalidInput, NotFound, UsageError
+from vault.fsutil import fsync_path
 
 if TYPE_CHECKING:
     from vault.api import Vault
@@ -536,12 +537,6 @@ def _incremental_vacuum(conn: Any) -> None:
     conn.executescript("PRAGMA incremental_vacuum;")
 
 
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def _trash(v: Vault) -> list[Path]:
@@ -559,7 +554,7 @@ def reclaim(v: Vault) -> int:
     for path in files:
         path.unlink(missing_ok=True)
     if files:
-        _fsync_dir(v._store.tmp_dir)
+        fsync_path(v._store.tmp_dir)
     return len(files)
 
 
@@ -582,7 +577,7 @@ def finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite
             continue
         dirs |= {source.parent, v._store.tmp_dir}
     for directory in sorted(dirs):
-        _fsync_dir(directory)
+        fsync_path(directory)
     _incremental_vacuum(v._conn)
     storage.checkpoint(v._conn)
     wal = v.path / (storage.DB_NAME + "-wal")
