@@ -26,6 +26,7 @@ says which was used.
 from __future__ import annotations
 
 import datetime as dt
+import itertools
 import json
 import math
 import os
@@ -187,7 +188,7 @@ def cohort_cells(cells: Mapping[str, Cells], order: Sequence[str],
         keys.extend(cells[pid][0])
         counts[i] = len(cells[pid][0])
     index = {item: j for j, item in enumerate(items)}
-    cols = np.fromiter((index.get(k, -1) for k in keys), np.int64, len(keys))
+    cols = np.fromiter(map(index.get, keys, itertools.repeat(-1)), np.int64, len(keys))
     values = (np.concatenate([cells[pid][1] for pid in order]) if order
               else np.empty(0, np.float64))
     rows = np.repeat(np.arange(len(order), dtype=np.int64), counts)
@@ -198,7 +199,7 @@ def cohort_cells(cells: Mapping[str, Cells], order: Sequence[str],
 def dense(shape: tuple[int, int], rows: np.ndarray, cols: np.ndarray,
           values: np.ndarray) -> np.ndarray:
     """A (participants x items) matrix with NaN where nothing is given."""
-    out = np.full(shape, np.nan)
+    out = np.full(shape, np.nan, order="F")  # column-major: each item's column is contiguous
     out[rows, cols] = values
     return out
 

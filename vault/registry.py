@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import sqlite3
 from collections.abc import Mapping, Sequence
+from functools import lru_cache
 
 from vault.consent import ConsentVersion, verify_history
 from vault.errors import Conflict, IntegrityError, NotFound
@@ -64,7 +65,13 @@ def latest_consents(conn: sqlite3.Connection, pids: Sequence[str] | None
                    "AND c.number = (SELECT MAX(number) FROM consents WHERE pid = p.pid) "
                    "WHERE p.wrapped_key IS NOT NULL AND p.pid IN (" + marks + ")")  # only '?' marks
             rows += conn.execute(sql, chunk).fetchall()
-    return {pid: None if body is None else ConsentVersion.from_json(body) for pid, body in rows}
+    return {pid: None if body is None else _parsed(body) for pid, body in rows}
+
+
+@lru_cache(maxsize=262_144)
+def _parsed(body: bytes) -> ConsentVersion:
+    """Stored versions are immutable, so the same bytes always parse to the same (frozen) model."""
+    return ConsentVersion.from_json(body)
 
 
 def pid_for_tag(conn: sqlite3.Connection, tag: str) -> str | None:
