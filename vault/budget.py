@@ -56,8 +56,10 @@ class _Memo:
 
     def __init__(self) -> None:
         self.parsed: dict[tuple[str, str, int], Ledger] = {}
-        self.fits: dict[tuple[Ledger, Cost, Budget], bool] = {}
-        self.left: dict[tuple[Ledger, Budget], Fraction] = {}
+        # keyed by object identity (hashing Fractions per lookup is the slow part); each entry
+        # keeps its objects alive, so an id is never reused while the memo lives
+        self.fits: dict[tuple[int, int, int], tuple[bool, object]] = {}
+        self.left: dict[tuple[int, int], tuple[Fraction, object]] = {}
 
     def ledger(self, epsilon: str, rho: str, releases: int) -> Ledger:
         key = (epsilon, rho, int(releases))
@@ -67,18 +69,18 @@ class _Memo:
         return found
 
     def within(self, ledger: Ledger, cost: Cost, budget: Budget) -> bool:
-        key = (ledger, cost, budget)
+        key = (id(ledger), id(cost), id(budget))
         found = self.fits.get(key)
         if found is None:
-            found = self.fits[key] = within(ledger.spend(cost), budget)
-        return found
+            found = self.fits[key] = (within(ledger.spend(cost), budget), (ledger, cost, budget))
+        return found[0]
 
     def remaining(self, ledger: Ledger, budget: Budget) -> Fraction:
-        key = (ledger, budget)
+        key = (id(ledger), id(budget))
         found = self.left.get(key)
         if found is None:
-            found = self.left[key] = remaining_epsilon(ledger, budget)
-        return found
+            found = self.left[key] = (remaining_epsilon(ledger, budget), (ledger, budget))
+        return found[0]
 
 
 def ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
@@ -122,6 +124,9 @@ def _float_below(value: Fraction) -> float:
     return math.nextafter(f, -math.inf) if Fraction(f) > value else f
 
 
+_ZERO = Fraction(0)  # one object for the lifetime of the process (it keys a memo by identity)
+
+
 def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], request_epsilon: float,
                          scale: Mapping[str, int] | None = None) -> dict[str, float]:
     """What `decide(budget_remaining=...)` needs, agreeing with the exact check.
@@ -140,15 +145,15 @@ def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], requ
     verdict = affordable(v, purpose, costs, memo, held)
     below_request = math.nextafter(request_epsilon, -math.inf)
     empty = Ledger()
-    floats: dict[tuple[Fraction, int], float] = {}
+    floats: dict[tuple[int, int], float] = {}  # by identity: `left` objects live in the memo
     out: dict[str, float] = {}
     for pid in costs:
         left = min((memo.remaining(held[name].get(pid, empty), b) for name, b in plan.items()),
-                   default=Fraction(0))
+                   default=_ZERO)
         units = (scale or {}).get(pid, 1) or 1
-        value = floats.get((left, units))
+        value = floats.get((id(left), units))
         if value is None:
-            value = floats[(left, units)] = _float_below(left / units)
+            value = floats[(id(left), units)] = _float_below(left / units)
         out[pid] = max(value, request_epsilon) if verdict[pid] else min(value, below_request)
     return out
 
@@ -169,7 +174,7 @@ def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
     with storage.transaction(v._conn):
         updates: list[tuple[str, str, str, str, int]] = []
         memo = _Memo()
-        after: dict[tuple[Ledger, Cost], tuple[str, str, int]] = {}
+        after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
         empty = Ledger()
         for name, budget in plan.items():
             held = ledgers(v, name, pids, memo)
@@ -178,11 +183,12 @@ def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
                 if not memo.within(old, cost, budget):
                     raise PolicyRefusal("the release would exceed a participant's privacy budget; "
                                         "nothing was charged")
-                new = after.get((old, cost))
-                if new is None:
+                known = after.get((id(old), id(cost)))
+                if known is None:
                     spent = old.spend(cost)
-                    new = after[(old, cost)] = (str(spent.epsilon), str(spent.rho), spent.releases)
-                updates.append((pid, name, *new))
+                    known = after[(id(old), id(cost))] = (
+                        (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
+                updates.append((pid, name, *known[0]))
         v._conn.executemany(
             "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
             "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
@@ -227,9 +233,9 @@ def budget_report(v: Vault, purpose: str | None = None, *,
             "purpose": name, "budget_epsilon": str(budget.epsilon), "delta": str(budget.delta),
             "participants": len(living), "participants_charged": len(held),
             "releases_max": max((led.releases for led in held.values()), default=0),
-            "spent_min": _s(min(spent.values(), default=Fraction(0)) if len(held) == len(living)
+            "spent_min": _s(min(spent.values(), default=_ZERO) if len(held) == len(living)
                             else Fraction(0)),
-            "spent_max": _s(max(spent.values(), default=Fraction(0))),
+            "spent_max": _s(max(spent.values(), default=_ZERO)),
             "spent_total": _s(sum(spent.values(), Fraction(0))),
             "remaining_min": _s(min(left.values(), default=budget.epsilon)),
             "participants_exhausted": sum(1 for x in left.values() if x == 0),
