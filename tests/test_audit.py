@@ -156,3 +156,51 @@ def test_batch_and_single_appends_build_the_rfc9162_tree(fresh_vault: Vault) -> 
     assert log._frontier().root() == merkle.root_from_leaf_hashes([r[2] for r in rows])
     head = fresh_vault.sign_head()
     assert head.tree_size == len(rows) and head.verify(fresh_vault.public_key)
+
+
+def test_consistency_proofs_against_an_earlier_head(vault_path: Path) -> None:
+    """RFC 9162 section 2.1.4: today's log extends a head an auditor kept, checked offline."""
+    from vault.audit import verify_consistency_bundle
+
+    public, _ = _vault_with_entries(vault_path, 3)
+    earlier = TreeHead.from_dict(vault.describe(vault_path)["latest_tree_head"])
+    assert vault.check_consistency(vault_path, earlier, public)["ok"]  # same size: trivially
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:
+        for _ in range(6):
+            v.new_participant()
+    result = vault.check_consistency(vault_path, earlier, public)
+    assert result["ok"] and result["bundle"]["proof"]
+    assert not vault.check_consistency(vault_path, earlier, bytes(32))["ok"]
+    bundle = result["bundle"]
+    forged_proof = dict(bundle, proof=[bytes(32).hex(), *bundle["proof"][1:]])
+    assert not verify_consistency_bundle(forged_proof, earlier, public)
+    wrong_size = dict(bundle, old_size=earlier.tree_size + 1)
+    assert not verify_consistency_bundle(wrong_size, earlier, public)
+    # rewrite history below the earlier head (re-signing as a key holder could): caught
+    conn = _raw(vault_path)
+    conn.execute("DROP TRIGGER tree_heads_no_delete")
+    raw = conn.execute("SELECT entry FROM audit_log WHERE seq = 1").fetchone()[0]
+    from vault.crypto import merkle_leaf_hash
+
+    forged = raw.replace(b"done", b"undo")
+    conn.execute("UPDATE audit_log SET entry = ?, leaf_hash = ? WHERE seq = 1",
+                 (forged, merkle_leaf_hash(forged)))
+    conn.execute("DELETE FROM tree_heads")
+    conn.execute("DELETE FROM meta WHERE key = 'audit_frontier'")  # rebuilt from the forged leaves
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:
+        v.sign_head()  # a fresh head over the rewritten log, validly signed
+    assert vault.verify_audit(vault_path, public_key=public).ok  # consistent on its own terms
+    assert not vault.check_consistency(vault_path, earlier, public)["ok"]
+
+
+def test_consistency_reports_truncation(vault_path: Path) -> None:
+    public, _ = _vault_with_entries(vault_path, 5)
+    earlier = TreeHead.from_dict(vault.describe(vault_path)["latest_tree_head"])
+    conn = _raw(vault_path)
+    conn.execute("DROP TRIGGER tree_heads_no_delete")
+    conn.execute("DELETE FROM audit_log WHERE seq >= 3")
+    conn.execute("DELETE FROM tree_heads WHERE tree_size > 3")
+    conn.close()
+    result = vault.check_consistency(vault_path, earlier, public)
+    assert not result["ok"] and "removed" in result["problem"]

@@ -6,6 +6,7 @@ Public API: `Vault` (open/init an encrypted vault), `describe` and
 
 from vault.api import (
     Vault,
+    check_consistency,
     describe,
     format_budget,
     format_decision,
@@ -47,6 +48,7 @@ __all__ = [
     "UsageError",
     "Vault",
     "VaultError",
+    "check_consistency",
     "describe",
     "describe_policy",
     "format_budget",

@@ -687,6 +687,27 @@ def prove(path: Path, seq: int) -> dict[str, Any]:
         conn.close()
 
 
+def check_consistency(path: Path, earlier: audit.TreeHead, public_key: bytes) -> dict[str, Any]:
+    """Does the vault's log, under its latest signed head, extend an earlier head you kept?
+
+    Builds an RFC 9162 consistency proof from the vault and checks it with the public key;
+    no passphrase.
+    """
+    conn = _readonly(path)
+    try:
+        try:
+            bundle = audit.AuditLog(conn, storage.get_meta(conn, "vault_id")).consistency_bundle(
+                earlier.tree_size)
+        except NotFound:
+            return {"ok": False, "problem": "the log is shorter than the earlier head: entries "
+                                            "were removed", "bundle": None}
+    finally:
+        conn.close()
+    ok = audit.verify_consistency_bundle(bundle, earlier, public_key)
+    return {"ok": ok, "problem": None if ok else "the log does not extend the earlier head",
+            "bundle": bundle}
+
+
 def verify_proof(bundle: dict[str, Any], public_key: bytes) -> bool:
     """Offline check of a proof from `prove`, with the vault's public key alone."""
     return audit.verify_inclusion_bundle(bundle, public_key)

@@ -207,8 +207,29 @@ class AuditLog:
         head = self.latest_head()
         if head is None or not 0 < old_size <= head.tree_size:
             raise NotFound(f"no signed tree head to prove size {old_size} against")
-        proof = merkle.consistency_proof(self._leaf_hashes(head.tree_size), old_size, head.tree_size)
+        proof = ([] if old_size == head.tree_size else
+                 merkle.consistency_proof(self._leaf_hashes(head.tree_size), old_size, head.tree_size))
         return {"old_size": old_size, "proof": [p.hex() for p in proof], "tree_head": head.to_dict()}
+
+
+def verify_consistency_bundle(bundle: Mapping[str, Any], earlier: TreeHead,
+                              public_key: bytes) -> bool:
+    """Offline: the log under the bundle's signed head extends the `earlier` signed head
+    (RFC 9162 section 2.1.4.2), so nothing before it was rewritten or removed."""
+    try:
+        head = TreeHead.from_dict(bundle["tree_head"])
+        proof = [bytes.fromhex(p) for p in bundle["proof"]]
+        old_size = int(bundle["old_size"])
+    except (KeyError, TypeError, ValueError, IntegrityError):
+        return False
+    if not (earlier.verify(public_key) and head.verify(public_key)):
+        return False
+    if earlier.vault_id != head.vault_id or old_size != earlier.tree_size:
+        return False
+    if old_size == head.tree_size:
+        return crypto.constant_time_equal(earlier.root_hash, head.root_hash) and not proof
+    return merkle.verify_consistency(old_size, head.tree_size, earlier.root_hash, head.root_hash,
+                                     proof)
 
 
 def verify_inclusion_bundle(bundle: Mapping[str, Any], public_key: bytes) -> bool:

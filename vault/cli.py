@@ -172,6 +172,22 @@ def audit_check_proof(
         raise typer.Exit(vault.IntegrityError.exit_code)
 
 
+@audit_app.command("consistency")
+def audit_consistency(
+    head: Annotated[Path, typer.Argument(help="An earlier signed tree head (from 'audit head').")],
+    path: VaultOpt,
+    key: Annotated[str, typer.Option("--key", help="The vault's public key (hex).")],
+    as_json: JsonOpt = False,
+) -> None:
+    """Prove (RFC 9162) that today's log extends an earlier head you kept. No passphrase."""
+    result = vault.check_consistency(path, vault.read_tree_head(_read_text(head)),
+                                     vault.parse_public_key(key))
+    _emit(as_json, result, "log extends the earlier head: ok" if result["ok"]
+          else f"consistency FAILED: {result['problem']}")
+    if not result["ok"]:
+        raise typer.Exit(vault.IntegrityError.exit_code)
+
+
 @audit_app.command("head")
 def audit_head(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Sign and print the current tree head; keep it to detect later rewriting."""

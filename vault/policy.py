@@ -13,7 +13,7 @@ copied; `tests/test_architecture.py` checks that no other module names `_MINT`.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from vault import crypto
@@ -192,9 +192,3 @@ def decision_entries(decision: CohortDecision, *, action: str,
             chunk = pids[start : start + AUDIT_CHUNK]
             entries.append({**base, "subjects": chunk, "outcome": outcome})
     return entries or [{**base, "subjects": []}]
-
-
-def requests_for(actor: str, role: str, purpose: str, categories: Iterable[str],
-                 **options: Any) -> Request:
-    return Request(actor=actor, role=role, purpose=purpose, categories=frozenset(categories),
-                   **options)

@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import BinaryIO
 
 from vault import crypto
-from vault.errors import IntegrityError, NotFound, PolicyRefusal, StorageFull
+from vault.errors import IntegrityError, PolicyRefusal, StorageFull
 from vault.fsutil import fsync_path
 from vault.policy import Grant
 
@@ -154,6 +154,3 @@ class BlobStore:
         if total != plain_size:
             raise IntegrityError(f"blob '{blob_id}' has the wrong length")
 
-    def require(self, blob_id: str) -> None:
-        if not self.path(blob_id).exists():
-            raise NotFound(f"no blob '{blob_id}'")
