@@ -595,6 +595,41 @@ def test_rfc4231_hmac_sha256() -> None:
         assert crypto.hmac_sha256(r.hex("Key"), msg) == r.hex("MD"), r.where(RFC4231_FILE)
 
 
+RFC3686_FILE = "ciphers/AES/CTR/aes-256-ctr.txt"
+
+
+def test_rfc3686_aes256_ctr_keystream() -> None:
+    # RFC 3686 section 6 (AES-256 cases) via cryptography_vectors: keystream = ct XOR pt
+    records = nist_file(RFC3686_FILE, "COUNT")
+    assert len(records) == 3
+    for r in records:
+        pt, ct = r.hex("PLAINTEXT"), r.hex("CIPHERTEXT")
+        stream = crypto.keystream(r.hex("KEY"), len(pt), r.hex("IV"))
+        assert stream == bytes(a ^ b for a, b in zip(pt, ct, strict=True)), r.where(RFC3686_FILE)
+
+
+def test_long_random_requests_are_fresh_keystreams(monkeypatch: pytest.MonkeyPatch) -> None:
+    # the generator's structure, with the operating system's bytes replaced by a counter:
+    # short requests come straight from it, long ones are AES-256-CTR under one fresh key
+    # per 64 MiB stretch, from counter block zero
+    drawn: list[bytes] = []
+
+    def fake_os(n: int) -> bytes:
+        drawn.append(len(drawn).to_bytes(4, "big") * (n // 4) + bytes(n % 4))
+        return drawn[-1]
+
+    monkeypatch.setattr(crypto.secrets, "token_bytes", fake_os)
+    assert crypto.random_bytes(4095) == drawn[-1]
+    n = crypto._KEY_OUTPUT + 5000
+    out = crypto.random_bytes(n)
+    first, second = drawn[-2], drawn[-1]
+    assert len(first) == len(second) == crypto.KEY_SIZE and first != second
+    assert len(out) == n
+    assert out[: crypto._KEY_OUTPUT][-64:] == crypto.keystream(first, crypto._KEY_OUTPUT)[-64:]
+    assert out[crypto._KEY_OUTPUT :] == crypto.keystream(second, 5000)
+    assert crypto.random_bytes(5000) != crypto.random_bytes(5000)  # a new key each request
+
+
 # =========================================================================== Argon2id
 
 ARGON2ID_FILE = "KDF/argon2id.txt"
@@ -634,7 +669,8 @@ def test_argon2id(record: NistRecord) -> None:
 
 
 def test_vectors_package_has_the_files_used() -> None:
-    for path in [*GCM_RSP, *KW_TXT, ED25519_SIGN_INPUT, RFC5869_FILE, RFC4231_FILE, ARGON2ID_FILE]:
+    for path in [*GCM_RSP, *KW_TXT, ED25519_SIGN_INPUT, RFC5869_FILE, RFC4231_FILE, RFC3686_FILE,
+                 ARGON2ID_FILE]:
         assert vectors_file_exists(path), path
 
 

@@ -550,3 +550,42 @@ def test_the_benchmark_runs_and_goes_through_the_door() -> None:
     assert figures["cohort"] == figures["granted"] < 40
     assert figures["ratio"] > 0
     assert figures["phases"]["read_through_door_s"] > 0 and "export matrix" in format_report(figures)
+
+
+# --------------------------------------------------------------------------- several batches
+
+
+def test_ratings_ingested_in_several_files_are_exported_as_one_row(lab, tmp_path: Path) -> None:
+    # the rating unit leaves unrated cells empty, so the filled cells show exactly what was read
+    v, groups, truth = lab
+    extra = {pid: [f"late-{j}" for j in range(i + 1)] for i, pid in enumerate(groups["all"][:3])}
+    csv = tmp_path / "late.csv"
+    csv.write_text("participant_id,item_id,value\n" + "".join(
+        f"{pid},{item},2\n" for pid, items in extra.items() for item in items))
+    v.ingest_scores(csv, "explicit", now=T0)
+    export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, unit="rating",
+                  out=tmp_path / "r", now=NOW)
+    frame = read_matrix(tmp_path / "r")[0].set_index(PSEUDONYM_COLUMN)
+    for pid, alias in pseudonyms(v, REC, groups["all"]).items():
+        filled = set(frame.columns[frame.loc[alias].notna().to_numpy()])
+        assert filled == {item for (p, item) in truth if p == pid} | set(extra.get(pid, []))
+
+
+def test_two_stored_values_for_one_item_stop_the_export(lab, tmp_path: Path) -> None:
+    # ingest refuses a second value for an item; a vault holding two anyway is damaged, and the
+    # export must neither pick one silently nor charge anybody's budget
+    from vault import IntegrityError, scores
+
+    v, groups, truth = lab
+    pid = groups["all"][0]
+    item = next(i for (p, i) in truth if p == pid)
+    body = scores.canonical([scores.ScoreRow(0, pid, item, 3.0)])
+    info = v._store.write(v._keys.participant_key(v._conn, pid), pid, "b-" + random_id(12),
+                          RATINGS, [body])
+    with v._conn:
+        v._insert_blob(info, "2026-05-01T09:00:00Z")
+        v._conn.execute("INSERT INTO score_batches (blob_id, pid, category, batch_tag, rows) "
+                        "VALUES (?, ?, ?, ?, 1)", (info.blob_id, pid, RATINGS, "forged"))
+    with pytest.raises(IntegrityError, match="two stored values"):
+        export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x", now=NOW)
+    assert not (tmp_path / "x").exists() and not spent(v, REC)

@@ -12,6 +12,11 @@ from hypothesis import strategies as st
 from tests.conftest import TEST_PASSPHRASE, assert_absent
 from vault import IntegrityError, Vault
 from vault.crypto import CHUNK_SIZE, CT_CHUNK_SIZE, HEADER_SIZE, SALT_SIZE, TAG_SIZE
+from vault.store import _WHOLE_READ
+
+# Blobs up to _WHOLE_READ bytes are read and authenticated in one piece, larger ones streamed:
+# the adversarial tests run on both paths. `extra` full chunks move a blob past the threshold.
+PATHS = {"whole-read": 0, "streamed": _WHOLE_READ // CHUNK_SIZE + 1}
 
 
 def _read(v: Vault, pid: str, blob_id: str) -> bytes:
@@ -34,11 +39,13 @@ def test_round_trip_and_size_accounting(fresh_vault: Vault) -> None:
     assert fresh_vault.verify()["ok"]
 
 
+@pytest.mark.parametrize("extra", PATHS.values(), ids=PATHS.keys())
 @pytest.mark.parametrize("where", ["salt", "commitment", "first-body", "first-tag",
                                    "middle-body", "final-body", "final-tag"])
-def test_every_position_class_flip_is_detected(fresh_vault: Vault, where: str) -> None:
-    pid, blob_id, _, path = _stored(fresh_vault, 2 * CHUNK_SIZE + 100)
-    final_start = HEADER_SIZE + 2 * CT_CHUNK_SIZE
+def test_every_position_class_flip_is_detected(fresh_vault: Vault, where: str, extra: int) -> None:
+    pid, blob_id, _, path = _stored(fresh_vault, (2 + extra) * CHUNK_SIZE + 100)
+    assert (path.stat().st_size > _WHOLE_READ) == (extra > 0)
+    final_start = HEADER_SIZE + (2 + extra) * CT_CHUNK_SIZE
     offset = {
         "salt": 3, "commitment": SALT_SIZE + 5, "first-body": HEADER_SIZE + 10,
         "first-tag": HEADER_SIZE + CT_CHUNK_SIZE - 1,
@@ -76,12 +83,15 @@ def _chunks(raw: bytes) -> tuple[bytes, list[bytes]]:
     return raw[:HEADER_SIZE], [body[i : i + CT_CHUNK_SIZE] for i in range(0, len(body), CT_CHUNK_SIZE)]
 
 
+@pytest.mark.parametrize("extra", PATHS.values(), ids=PATHS.keys())
 @pytest.mark.parametrize("attack", ["drop-first", "drop-final", "duplicate", "swap", "append",
                                     "truncate-mid-chunk", "truncate-to-header", "empty-file"])
-def test_chunk_level_attacks_are_detected(fresh_vault: Vault, attack: str) -> None:
-    pid, blob_id, data, path = _stored(fresh_vault, 3 * CHUNK_SIZE + 10)
+def test_chunk_level_attacks_are_detected(fresh_vault: Vault, attack: str, extra: int) -> None:
+    pid, blob_id, data, path = _stored(fresh_vault, (3 + extra) * CHUNK_SIZE + 10)
+    assert (path.stat().st_size > _WHOLE_READ) == (extra > 0)
+    assert _read(fresh_vault, pid, blob_id) == data
     header, chunks = _chunks(path.read_bytes())
-    assert len(chunks) == 4
+    assert len(chunks) == 4 + extra
     forged = {
         "drop-first": header + b"".join(chunks[1:]),
         "drop-final": header + b"".join(chunks[:-1]),

@@ -413,11 +413,11 @@ class Vault:
         self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
                             "subjects": sorted({rows[b][0] for b in blob_ids}), "decision": "permit",
                             "details": {"grant": grant.grant_id, "blobs": len(blob_ids)}}], when)
-        keys: dict[str, bytes] = {}
+        keys = self._keys.participant_keys(self._conn, (pid for pid, _ in rows.values()))
         for blob_id in blob_ids:
             pid, category = rows[blob_id]
-            key = keys.get(pid) or keys.setdefault(pid, self._keys.participant_key(self._conn, pid))
-            yield blob_id, pid, self._store.plaintext(grant, key, pid, blob_id, category, now=when)
+            yield blob_id, pid, self._store.plaintext(grant, keys[pid], pid, blob_id, category,
+                                                      now=when)
 
     # -- ingest -------------------------------------------------------------------------------------
 

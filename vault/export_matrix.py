@@ -26,13 +26,13 @@ says which was used.
 from __future__ import annotations
 
 import datetime as dt
-import itertools
 import json
 import math
 import os
 import re
 import shutil
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -40,7 +40,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from vault import budget, crypto, exports, manifest, scores
-from vault.errors import Conflict, NotFound, PolicyRefusal, UsageError
+from vault.errors import Conflict, IntegrityError, NotFound, PolicyRefusal, UsageError
 from vault.fsutil import fsync_path
 from vault.privacy import (
     GAUSSIAN,
@@ -143,57 +143,56 @@ def _audit_refusal(v: Vault, purpose: str, reason: str, now: dt.datetime) -> Non
                      "decision": "refuse", "subjects": [], "reasons": [reason]}], now)
 
 
-Cells = tuple[list[str], np.ndarray]  # one participant's (item ids, values)
+@dataclass(frozen=True)
+class CohortRatings:
+    """The granted cohort's ratings as flat arrays, read through the one door.
 
+    `pids`: every granted participant (sorted), with ratings or without;
+    rating r is `values[r]`, given by `pids[owner[r]]` to `items[codes[r]]`;
+    `items` is the union of the items the cohort rated (data-dependent, sorted).
+    """
 
-def decode_batch(raw: bytes) -> Cells:
-    """One stored batch (`vault.scores.canonical`, format MWS1) as (item ids, values)."""
-    return scores.decode(raw)
+    pids: list[str]
+    owner: np.ndarray
+    items: list[str]
+    codes: np.ndarray
+    values: np.ndarray
+
+    def cells(self, order: Sequence[str], items: Sequence[str]
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(row, column, value) arrays: rows follow `order` (a permutation of `pids`),
+        columns `items`; ratings of items outside `items` are left out."""
+        rank = {pid: i for i, pid in enumerate(order)}
+        row_of = np.fromiter(map(rank.__getitem__, self.pids), np.int64, len(self.pids))
+        index = {item: j for j, item in enumerate(items)}
+        col_of = np.fromiter((index.get(item, -1) for item in self.items), np.int64, len(self.items))
+        cols = col_of[self.codes]
+        keep = cols >= 0
+        return row_of[self.owner][keep], cols[keep], self.values[keep]
 
 
 def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],
-                 now: dt.datetime) -> dict[str, Cells]:
-    """Every granted participant's ratings, read through the one door."""
-    cells: dict[str, Cells] = {}
-    wanted = [blob_id for pid in sorted(grant.participants) for blob_id, _ in batches.get(pid, ())]
-    raw: dict[str, list[bytes]] = {}
+                 now: dt.datetime) -> CohortRatings:
+    """Every granted participant's ratings, read through the one door and decoded in bulk."""
+    pids = sorted(grant.participants)
+    wanted = [blob_id for pid in pids for blob_id, _ in batches.get(pid, ())]
+    owners: list[str] = []
+    bodies: list[bytes] = []
     for _, pid, chunks in v.read_blobs(grant, wanted, now=now):  # one live decision, one audit batch
-        raw.setdefault(pid, []).append(b"".join(chunks))
-    for pid in sorted(grant.participants):
-        parts = [decode_batch(body) for body in raw.get(pid, ())]
-        if len(parts) == 1:
-            cells[pid] = parts[0]
-            continue
-        merged: dict[str, float] = {}
-        for keys, values in parts:
-            merged.update(zip(keys, values.tolist(), strict=True))
-        cells[pid] = (list(merged), np.fromiter(merged.values(), np.float64, len(merged)))
-    return cells
-
-
-def rated_items(cells: Mapping[str, Cells]) -> list[str]:
-    """The union of the items the cohort rated (data-dependent; see the module docstring)."""
-    return sorted(set().union(*(keys for keys, _ in cells.values())))
-
-
-def cohort_cells(cells: Mapping[str, Cells], order: Sequence[str],
-                 items: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The rated cells as (row, column, value) arrays: rows follow `order`, columns `items`.
-
-    Ratings of items outside `items` are left out.
-    """
-    keys: list[str] = []
-    counts = np.empty(len(order), np.int64)
-    for i, pid in enumerate(order):
-        keys.extend(cells[pid][0])
-        counts[i] = len(cells[pid][0])
-    index = {item: j for j, item in enumerate(items)}
-    cols = np.fromiter(map(index.get, keys, itertools.repeat(-1)), np.int64, len(keys))
-    values = (np.concatenate([cells[pid][1] for pid in order]) if order
-              else np.empty(0, np.float64))
-    rows = np.repeat(np.arange(len(order), dtype=np.int64), counts)
-    keep = cols >= 0
-    return rows[keep], cols[keep], values[keep]
+        owners.append(pid)
+        bodies.append(b"".join(chunks))
+    decoded = scores.decode_many(bodies)
+    del bodies
+    position = {pid: i for i, pid in enumerate(pids)}
+    batch_owner = np.fromiter(map(position.__getitem__, owners), np.int64, len(owners))
+    owner = np.repeat(batch_owner, decoded.counts)
+    several = np.bincount(batch_owner, minlength=len(pids)) > 1
+    if several.any():  # ingest refuses a second value for an item: two mean a damaged vault
+        shared = several[owner]
+        keys = owner[shared] * max(len(decoded.items), 1) + decoded.codes[shared]
+        if np.unique(keys).size != keys.size:
+            raise IntegrityError("a participant holds two stored values for one item")
+    return CohortRatings(pids, owner, decoded.items, decoded.codes, decoded.values)
 
 
 def dense(shape: tuple[int, int], rows: np.ndarray, cols: np.ndarray,
@@ -202,14 +201,6 @@ def dense(shape: tuple[int, int], rows: np.ndarray, cols: np.ndarray,
     out = np.full(shape, np.nan, order="F")  # column-major: each item's column is contiguous
     out[rows, cols] = values
     return out
-
-
-def build_matrix(cells: Mapping[str, Cells], order: Sequence[str],
-                 items: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
-    """(values with NaN for unrated, ratings kept per row) for rows `order`, columns `items`."""
-    rows, cols, values = cohort_cells(cells, order, items)
-    return (dense((len(order), len(items)), rows, cols, values),
-            np.bincount(rows, minlength=len(order)))
 
 
 def release_cells(rows: np.ndarray, cols: np.ndarray, values: np.ndarray,
@@ -258,7 +249,10 @@ def write_table(root: Path, stem: str, columns: Mapping[str, Any], formats: Sequ
     table = pa.table(dict(columns))
     entries = []
     if "parquet" in formats:
-        pq.write_table(table, root / f"{stem}.parquet")
+        # dictionary pages for the text columns only: noisy numbers rarely repeat, so for them
+        # a dictionary costs time (a third of the write) and saves no space
+        text = [f.name for f in table.schema if pa.types.is_string(f.type)]
+        pq.write_table(table, root / f"{stem}.parquet", use_dictionary=text)
         entries.append(_file_entry(root, f"{stem}.parquet"))
     if "csv" in formats:
         pa_csv.write_csv(table, root / f"{stem}.csv")
@@ -356,14 +350,14 @@ def export_matrix(
     low, high, k = _scale_of(v, category, grid_k)
 
     # 3. read through the one door
-    cells = _read_cohort(v, grant, batches, now)
-    item_list = catalogue if catalogue is not None else rated_items(cells)
+    cohort = _read_cohort(v, grant, batches, now)
+    item_list = catalogue if catalogue is not None else cohort.items
     if not item_list:
         raise NotFound("the granted participants hold no ratings")
-    labels = exports.pseudonyms(v, purpose, cells)
-    order = sorted(cells, key=labels.__getitem__)  # row order reveals nothing internal
-    rows, cols, values = cohort_cells(cells, order, item_list)
-    cells.clear()
+    labels = exports.pseudonyms(v, purpose, cohort.pids)
+    order = sorted(cohort.pids, key=labels.__getitem__)  # row order reveals nothing internal
+    rows, cols, values = cohort.cells(order, item_list)
+    del cohort
     shape = (len(order), len(item_list))
     kept = np.bincount(rows, minlength=len(order))
 
@@ -552,13 +546,12 @@ def export_utility(
     grant = v.authorize(purpose, [category], now=now, privacy_unit=privacy_unit.value,
                         participants=tuple(batches))
     low, high, k = _scale_of(v, category, grid_k)
-    cells = _read_cohort(v, grant, batches, now)
-    item_list = catalogue if catalogue is not None else rated_items(cells)
+    cohort = _read_cohort(v, grant, batches, now)
+    item_list = catalogue if catalogue is not None else cohort.items
     if not item_list:
         raise NotFound("the granted participants hold no ratings")
-    order = sorted(cells)
-    values, _ = build_matrix(cells, order, item_list)
-    cells.clear()
+    values = dense((len(cohort.pids), len(item_list)), *cohort.cells(cohort.pids, item_list))
+    del cohort
     rank = max(1, min(rank, *values.shape))
 
     def noise_fn(train: np.ndarray, eps: float) -> np.ndarray:

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 from vault import crypto
@@ -95,10 +96,29 @@ class KeyRing:
         ).fetchone()
         if row is None:
             raise NotFound(f"no participant '{pid}'")
-        if row[0] is None:
+        return self._unwrap_participant_key(pid, row[0])
+
+    def participant_keys(self, conn: sqlite3.Connection, pids: Iterable[str]) -> dict[str, bytes]:
+        """The data keys of many participants (one query per 500). Callers: the blob store only."""
+        wanted = sorted(set(pids))
+        rows: dict[str, bytes | None] = {}
+        for start in range(0, len(wanted), 500):
+            chunk = wanted[start : start + 500]
+            marks = ",".join("?" * len(chunk))
+            rows.update(conn.execute("SELECT pid, wrapped_key FROM participants "  # noqa: S608
+                                     "WHERE pid IN (" + marks + ")", chunk).fetchall())  # only '?'
+        out = {}
+        for pid in wanted:
+            if pid not in rows:
+                raise NotFound(f"no participant '{pid}'")
+            out[pid] = self._unwrap_participant_key(pid, rows[pid])
+        return out
+
+    def _unwrap_participant_key(self, pid: str, wrapped: bytes | None) -> bytes:
+        if wrapped is None:
             raise NotFound(f"participant '{pid}' was erased; their data cannot be read")
         try:
-            return crypto.unwrap_key(self._participant_kek(pid), row[0])
+            return crypto.unwrap_key(self._participant_kek(pid), wrapped)
         except IntegrityError as exc:
             raise IntegrityError(
                 f"the data key of participant '{pid}' failed its integrity check"

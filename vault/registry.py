@@ -74,6 +74,11 @@ def _parsed(body: bytes) -> ConsentVersion:
     return ConsentVersion.from_json(body)
 
 
+def forget_parsed_consents() -> None:
+    """Drop the parse cache, so the next reads cost what they cost a new process (benchmarks)."""
+    _parsed.cache_clear()
+
+
 def pid_for_tag(conn: sqlite3.Connection, tag: str) -> str | None:
     row = conn.execute("SELECT pid FROM participants WHERE lab_code_tag = ?", (tag,)).fetchone()
     return None if row is None else str(row[0])

@@ -118,19 +118,77 @@ def canonical(rows: Sequence[ScoreRow]) -> bytes:
             + values.tobytes())
 
 
+def _layout(raw: bytes) -> tuple[int, int]:
+    """(count, item block size) of an MWS1 batch whose lengths add up; ValueError otherwise."""
+    if raw[:4] != MAGIC or len(raw) < 12:
+        raise ValueError
+    count = int.from_bytes(raw[4:8], "big")
+    size = int.from_bytes(raw[8:12], "big")
+    if len(raw) != 12 + size + 8 * count or (count == 0 and size):
+        raise ValueError
+    return count, size
+
+
 def decode(raw: bytes) -> tuple[list[str], np.ndarray]:
-    """(item ids, values) of a stored batch; IntegrityError when it is not an MWS1 batch."""
+    """(item ids, values) of one stored batch; IntegrityError when it is not an MWS1 batch."""
+    many = decode_many([raw])
+    return [many.items[c] for c in many.codes.tolist()], many.values
+
+
+@dataclass(frozen=True)
+class Decoded:
+    """Many batches as flat arrays: rating r belongs to batch `np.repeat(range, counts)[r]`,
+    rates item `items[codes[r]]` with `values[r]`. `items` is sorted and holds each id once."""
+
+    items: list[str]
+    codes: np.ndarray
+    values: np.ndarray
+    counts: np.ndarray
+
+
+def decode_many(raws: Sequence[bytes]) -> Decoded:
+    """Decode stored MWS1 batches in bulk (Apache Arrow splits and hashes the item ids).
+
+    Every batch is checked as `decode` checks one: lengths, item count, UTF-8,
+    item id syntax, finite values; any failure raises IntegrityError.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    counts = np.zeros(len(raws), np.int64)
+    blocks: list[bytes] = []
+    value_parts: list[memoryview] = []
     try:
-        if raw[:4] != MAGIC:
-            raise ValueError
-        count = int.from_bytes(raw[4:8], "big")
-        size = int.from_bytes(raw[8:12], "big")
-        names = raw[12 : 12 + size].decode("utf-8").split("\n") if count else []
-        values = np.frombuffer(raw, dtype="<f8", count=count, offset=12 + size)
-        if len(names) != count or len(raw) != 12 + size + 8 * count:
-            raise ValueError
-    except (ValueError, UnicodeDecodeError):
+        for i, raw in enumerate(raws):
+            count, size = _layout(raw)
+            counts[i] = count
+            if count:
+                view = memoryview(raw)
+                blocks.append(raw[12 : 12 + size])
+                value_parts.append(view[12 + size :])
+    except ValueError:
         raise IntegrityError("a stored score batch is malformed") from None
+    split = pc.split_pattern(pa.array(blocks, pa.large_binary()), pattern=b"\n")
+    if not np.array_equal(pc.list_value_length(split).to_numpy(zero_copy_only=False),
+                          counts[counts > 0]):
+        raise IntegrityError("a stored score batch is malformed")
+    encoded = split.flatten().dictionary_encode()
+    try:
+        names = [b.decode("utf-8") for b in encoded.dictionary.to_pylist()]
+    except UnicodeDecodeError:
+        raise IntegrityError("a stored score batch is malformed") from None
+    if not all(_ITEM.fullmatch(name) for name in names):
+        raise IntegrityError("a stored score batch is malformed")
+    order = sorted(range(len(names)), key=names.__getitem__)
+    rank = np.empty(len(names), np.int64)
+    rank[order] = np.arange(len(names))
+    codes = rank[encoded.indices.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)]
+    starts = np.cumsum(counts[counts > 0])[:-1]  # a batch lists its items sorted, each once
+    rising = np.diff(codes) > 0
+    rising[starts - 1] = True
+    if not rising.all():
+        raise IntegrityError("a stored score batch is malformed")
+    values = np.frombuffer(b"".join(value_parts), dtype="<f8").astype(np.float64, copy=False)
     if not np.isfinite(values).all():
         raise IntegrityError("a stored score batch is malformed")
-    return names, values
+    return Decoded([names[j] for j in order], codes, values, counts)

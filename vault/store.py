@@ -21,7 +21,6 @@ import os
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import BinaryIO
 
 from vault import crypto
 from vault.errors import IntegrityError, PolicyRefusal, StorageFull
@@ -32,6 +31,7 @@ BLOB_DIR = "blobs"
 TMP_DIR = "tmp"
 _SUFFIX = ".mwb"
 _WRITE_BUFFER = 1 << 20
+_WHOLE_READ = 1 << 20  # blobs up to this size are read and authenticated in one piece
 
 
 @dataclass(frozen=True)
@@ -56,6 +56,7 @@ class BlobStore:
         self.root = root
         self.vault_id = vault_id
         self.blob_dir = root / BLOB_DIR
+        self._blob_dir_str = str(self.blob_dir)
         self.tmp_dir = root / TMP_DIR
 
     def create_dirs(self) -> None:
@@ -124,9 +125,11 @@ class BlobStore:
 
     # -- reading (the one door's back room: callers must hold a grant) --------------------------
 
-    def _open(self, blob_id: str) -> BinaryIO:
+    def _open(self, blob_id: str) -> int:
+        # a plain string path and a raw descriptor: per-read costs show when an export reads 10^4 blobs
+        path = os.path.join(self._blob_dir_str, blob_id[:2], blob_id + _SUFFIX)
         try:
-            return open(self.path(blob_id), "rb")
+            return os.open(path, os.O_RDONLY)
         except FileNotFoundError as exc:
             raise IntegrityError(f"blob '{blob_id}' is missing from the vault") from exc
 
@@ -143,8 +146,22 @@ class BlobStore:
         return self._decrypt(key, pid, blob_id)
 
     def _decrypt(self, key: bytes, pid: str, blob_id: str) -> Iterator[bytes]:
-        with self._open(blob_id) as fh:
-            yield from crypto.ChunkedDecryptor(key, blob_context(self.vault_id, pid, blob_id), fh)
+        context = blob_context(self.vault_id, pid, blob_id)
+        fd = self._open(blob_id)
+        try:
+            size = os.fstat(fd).st_size
+            if size <= _WHOLE_READ:  # a score batch: one read, one check
+                parts = []
+                while block := os.read(fd, size + 1):  # to the end, even if the file grew
+                    parts.append(block)
+                yield crypto.chunked_decrypt(key, context, b"".join(parts))
+                return
+            with os.fdopen(fd, "rb", buffering=0) as fh:  # unbuffered: large readinto()s
+                fd = -1  # closed by the file object from here on
+                yield from crypto.ChunkedDecryptor(key, context, fh)
+        finally:
+            if fd >= 0:
+                os.close(fd)
 
     def authenticate(self, key: bytes, pid: str, blob_id: str, plain_size: int) -> None:
         """Check every chunk's tag and the length; no plaintext leaves this function."""
