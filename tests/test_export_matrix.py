@@ -589,3 +589,26 @@ def test_two_stored_values_for_one_item_stop_the_export(lab, tmp_path: Path) -> 
     with pytest.raises(IntegrityError, match="two stored values"):
         export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x", now=NOW)
     assert not (tmp_path / "x").exists() and not spent(v, REC)
+
+
+@settings(max_examples=60, deadline=None)
+@given(n_rows=st.integers(1, 40), n_items=st.integers(1, 12), data=st.data())
+def test_rating_unit_tables_put_each_value_in_its_cell_and_leave_the_rest_null(
+        n_rows: int, n_items: int, data: st.DataObject) -> None:
+    # reference: a plain dict of cells; reader: pyarrow's Parquet reader (independent of the writer's
+    # bitmap arithmetic), and null, not NaN, is what an unrated cell must be
+    from vault.export_matrix import _sparse_columns, write_table
+
+    cells = data.draw(st.dictionaries(st.tuples(st.integers(0, n_rows - 1), st.integers(0, n_items - 1)),
+                                      st.integers(-50, 50).map(float), max_size=n_rows * n_items))
+    rows = np.array([r for r, _ in cells], dtype=np.int64)
+    cols = np.array([c for _, c in cells], dtype=np.int64)
+    labels = [f"p{i:03d}" for i in range(n_rows)]
+    items = [f"dish-{j:02d}" for j in range(n_items)]
+    columns = _sparse_columns(labels, items, rows, cols, np.array(list(cells.values())))
+    with tempfile.TemporaryDirectory() as tmp:
+        write_table(Path(tmp), "matrix", columns, ("parquet",))
+        table = pq.read_table(Path(tmp) / "matrix.parquet")
+    assert table.column(PSEUDONYM_COLUMN).to_pylist() == labels
+    for j, item in enumerate(items):
+        assert table.column(item).to_pylist() == [cells.get((i, j)) for i in range(n_rows)]

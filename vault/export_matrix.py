@@ -207,19 +207,21 @@ def release_cells(rows: np.ndarray, cols: np.ndarray, values: np.ndarray,
                   shape: tuple[int, int], *, unit: PrivacyUnit, low: Fraction, high: Fraction,
                   grid_k: int, epsilon: Fraction | None, rho: Fraction | None
                   ) -> tuple[np.ndarray, Guarantee]:
-    """The noisy matrix of `release_matrix` (NaN stays NaN under the rating unit).
+    """The noise of `release_matrix` for the rated cells (`rows`, `cols`, `values`).
 
-    The rating unit noises each rated cell on its own with sensitivity one
-    range span, whatever the matrix shape; so the rated values are released as
-    one 1 x n matrix (same mechanism, same guarantee) and scattered back, which
-    spares the dense copies. The participant unit needs the whole dense matrix.
+    Rating unit: one noisy value per rated cell, in the cells' order; unrated
+    cells stay empty. Each rated cell is noised on its own with sensitivity one
+    range span, whatever the matrix shape, so the values are released as one
+    1 x n matrix (same mechanism, same guarantee) without a dense copy.
+    Participant unit: the whole dense (participants x items) matrix, every
+    cell noised (which cells were rated is part of what is protected).
     """
     if unit is PrivacyUnit.RATING:
         if values.size == 0:
             raise NotFound("the granted participants hold no ratings of these items")
         noisy, g = release_matrix(values[None, :], low=low, high=high, grid_k=grid_k, unit=unit,
                                   epsilon=epsilon, rho=rho, delta=budget.ZCDP_DELTA)
-        return dense(shape, rows, cols, noisy[0]), g
+        return noisy[0], g
     return release_matrix(dense(shape, rows, cols, values), low=low, high=high, grid_k=grid_k,
                           unit=unit, epsilon=epsilon, rho=rho, delta=budget.ZCDP_DELTA)
 
@@ -262,10 +264,34 @@ def write_table(root: Path, stem: str, columns: Mapping[str, Any], formats: Sequ
 
 def _matrix_columns(labels: Sequence[str], items: Sequence[str], noisy: np.ndarray
                     ) -> dict[str, Any]:
+    """The released table from a dense noisy matrix (participant unit: no empty cell)."""
     columns: dict[str, Any] = {PSEUDONYM_COLUMN: list(labels)}
     by_column = np.ascontiguousarray(noisy.T)
     for j, item in enumerate(items):
         columns[item] = by_column[j]
+    return columns
+
+
+def _sparse_columns(labels: Sequence[str], items: Sequence[str], rows: np.ndarray,
+                    cols: np.ndarray, noisy: np.ndarray) -> dict[str, Any]:
+    """The released table from noisy rated cells: an unrated cell is null (Parquet) or
+    empty (CSV), never a number. Arrow columns are built over a validity bitmap, so
+    neither a NaN fill nor a scan for NaN is needed."""
+    import pyarrow as pa
+
+    n = len(labels)
+    data = np.zeros((len(items), n))  # item-major: each item's column is contiguous
+    data[cols, rows] = noisy
+    rated = np.zeros((len(items), n), dtype=bool)
+    rated[cols, rows] = True
+    bits = np.packbits(rated, axis=1, bitorder="little")  # Arrow's validity layout
+    del rated
+    filled = np.bincount(cols, minlength=len(items))
+    columns: dict[str, Any] = {PSEUDONYM_COLUMN: list(labels)}
+    for j, item in enumerate(items):
+        columns[item] = pa.Array.from_buffers(pa.float64(), n, [pa.py_buffer(bits[j]),
+                                                                pa.py_buffer(data[j])],
+                                              null_count=n - int(filled[j]))
     return columns
 
 
@@ -367,7 +393,9 @@ def export_matrix(
     if release == "matrix":
         noisy, guarantee = release_cells(rows, cols, values, shape, unit=privacy_unit, low=low,
                                          high=high, grid_k=k, epsilon=eps_arg, rho=rho_arg)
-        tables = {"matrix": _matrix_columns([labels[p] for p in order], item_list, noisy)}
+        names = [labels[p] for p in order]
+        tables = {"matrix": _sparse_columns(names, item_list, rows, cols, noisy) if per_rating
+                  else _matrix_columns(names, item_list, noisy)}
         del noisy
     else:
         m = max_items_per_participant if max_items_per_participant is not None else len(item_list)
