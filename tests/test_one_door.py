@@ -92,6 +92,53 @@ def test_withdrawal_takes_effect_at_the_door_even_for_an_earlier_grant(cohort) -
     assert b"".join(v.read_blob(grant, blobs[other], now=later)).startswith(b"EEG-OF-")
 
 
+def _withdrawn_form(code: str) -> bytes:
+    text = form("consent-all-granted.toml", code).decode()
+    old = 'granted = ["eeg-raw", "scores-derived", "ratings-explicit", "demographics"]'
+    return text.replace(old, 'granted = []\nrefused = ["eeg-raw", "scores-derived", '
+                        '"ratings-explicit", "demographics"]', 1).replace("explicit = true", "", 1).encode()
+
+
+def _counting_loads(v: Vault) -> list[int]:
+    calls: list[int] = []
+    load = v._engine._consents
+    v._engine._consents = lambda pids: calls.append(1) or load(pids)
+    return calls
+
+
+def test_a_read_at_the_grants_instant_re_decides_after_any_change(cohort) -> None:
+    # the one shortcut (nothing written since the grant, same instant) must not hide a withdrawal
+    # recorded at that very instant
+    v, groups, blobs = cohort
+    pid, other = groups["all"][:2]
+    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    loads = _counting_loads(v)
+    assert b"".join(v.read_blob(grant, blobs[other], now=NOW)).startswith(b"EEG-OF-")
+    assert loads == []  # unchanged database, same instant: the minting decision stands
+    v.read_blob(grant, blobs[other], now=NOW + dt.timedelta(seconds=1))
+    assert loads == [1]  # another instant: decided again
+    v.amend_consent(pid, _withdrawn_form("all0"), now=NOW)
+    with pytest.raises(PolicyRefusal, match="consent-withdrawn"):
+        v.read_blob(grant, blobs[pid], now=NOW)
+
+
+def test_a_write_by_another_connection_also_forces_a_new_decision(cohort) -> None:
+    # another process commits anything between the grant and a read at the same instant: the
+    # engine cannot know what changed, so it loads consent and decides again
+    import sqlite3
+
+    v, groups, blobs = cohort
+    pid = groups["all"][0]
+    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    loads = _counting_loads(v)
+    other = sqlite3.connect(v.path / "vault.db")
+    with other:
+        other.execute("CREATE TABLE scratch (x)")
+    other.close()
+    assert b"".join(v.read_blob(grant, blobs[pid], now=NOW)).startswith(b"EEG-OF-")
+    assert loads == [1]
+
+
 def test_no_grant_no_data(cohort) -> None:
     v, groups, blobs = cohort
     pid = groups["all"][0]

@@ -94,7 +94,13 @@ class Vault:
     def _set_policy(self, policy: PolicySet) -> None:
         self.policy = policy
         self._engine = PolicyEngine(
-            policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch)
+            policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
+            self._database_state)
+
+    def _database_state(self) -> tuple[int, int]:
+        """Changes when anything is written to the database: SQLite's data_version moves on
+        commits by other connections, the connection's change count on its own writes."""
+        return self._conn.execute("PRAGMA data_version").fetchone()[0], self._conn.total_changes
 
     def _audit_batch(self, entries: list[dict[str, Any]], now: datetime) -> None:
         with storage.transaction(self._conn):

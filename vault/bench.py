@@ -314,11 +314,12 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
         from vault.withdraw_bench import bench_withdraw
 
         figures.update(bench_withdraw(workdir, big_mib=withdraw_mib, repeat=3 if quick else 5))
-        from vault.export_bench import bench_export
+        from vault.export_bench import bench_export_fresh
         from vault.noise_bench import bench_samplers
 
-        export = bench_export(n_participants=1000 if quick else 10_000, n_items=200 if quick else 2000,
-                              phases=False, door_sample=0)
+        export = bench_export_fresh(n_participants=1000 if quick else 10_000,
+                                    n_items=200 if quick else 2000, phases=False, door_sample=0,
+                                    repeats=2 if quick else 5)
         figures.update(export_s=export["export_s"], export_pandas_s=export["baseline_s"],
                        export_matrix_vs_pandas=export["ratio"], export_unit=export["unit"])
         samplers = bench_samplers()

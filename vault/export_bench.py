@@ -146,7 +146,9 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
     out["candidates_s"] = t
     n_rows = {pid: sum(n for _, n in b) for pid, b in batches.items()}
     per_rating = unit == "rating"
-    costs = {p: Cost(epsilon=epsilon).times(n_rows[p] if per_rating else 1) for p in batches}
+    one = Cost(epsilon=epsilon)  # shared cost objects, as the export builds them (memo keys)
+    scaled = {n: one.times(n) for n in set(n_rows.values())} if per_rating else {}
+    costs = {p: scaled[n_rows[p]] if per_rating else one for p in batches}
     t, remaining = _timed(lambda: budget.remaining_for_decide(
         v, purpose, costs, epsilon, scale=n_rows if per_rating else None))
     out["ledger_s"] = t
@@ -167,8 +169,7 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
                                                  low=Fraction(0), high=Fraction(3), grid_k=1,
                                                  epsilon=Fraction(str(epsilon)), rho=None))
     out["noise_s"] = t
-    one = Cost(epsilon=epsilon)  # one object, as the export shares costs (the ledger memo keys by it)
-    spent = dict.fromkeys(order, one)
+    spent = {p: costs[p] for p in order}
     t, _ = _timed(lambda: budget.charge(v, purpose, spent, export_id="x-bench", now=now))
     out["charge_s"] = t
     target = Path(tempfile.mkdtemp(prefix="mindward-export-phase-"))
@@ -214,7 +215,7 @@ def _door_parts(v: Vault, now: dt.datetime, n: int) -> dict[str, float]:
 
 def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density: float = 0.1,
                  unit: str = "rating", epsilon: float | None = None, phases: bool = True,
-                 door_sample: int = 500, seed: int = 0, repeats: int = 3) -> dict[str, Any]:
+                 door_sample: int = 500, seed: int = 0, repeats: int = 5) -> dict[str, Any]:
     """Time `export_matrix` (consent filter, pseudonyms, noise, Parquet write) on a synthetic
     vault against pandas' pivot + Parquet write of the same ratings, measured in the same run.
 
@@ -229,8 +230,8 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
     from vault.export_matrix import export_matrix
     from vault.policyset import load_default_policy
 
-    if epsilon is None:  # four releases must fit a budget of 3 (rating unit: up to ~260 ratings)
-        epsilon = 0.5 if unit == "participant" else 0.002
+    if epsilon is None:  # every release must fit a budget of 3, or later runs export fewer people:
+        epsilon = 0.25 if unit == "participant" else 0.001  # 12 releases; 6 of up to 500 ratings
     workdir = Path(tempfile.mkdtemp(prefix="mindward-export-bench-"))
     figures: dict[str, Any] = {"participants": n_participants, "items": n_items,
                                "density": density, "unit": unit, "epsilon": epsilon}
@@ -248,14 +249,17 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
                            granted=data["granted"])
             request = {"purpose": "recommender-training", "category": CATEGORY, "epsilon": epsilon,
                        "unit": unit, "now": NOW, "formats": ("parquet",)}
-            bases, exports = [], []
+            bases, exports, cohorts = [], [], set()
             for i in range(repeats):  # interleaved; the fastest of each (a shared machine's noise)
                 bases.append(_baseline(data, workdir))
                 registry.forget_parsed_consents()  # every export parses consents as a new process
                 t, summary = _timed(lambda i=i: export_matrix(v, out=workdir / f"export-{i}",
                                                                **request))
                 exports.append(t)
+                cohorts.add(summary["cohort_size"])
                 shutil.rmtree(workdir / f"export-{i}")
+            if len(cohorts) != 1:
+                raise RuntimeError("the runs exported different cohorts (budget spent?)")
             base, t_export = min(bases), min(exports)
             figures.update(baseline_s=base, export_s=t_export, ratio=t_export / base,
                            baseline_runs_s=bases, export_runs_s=exports,
@@ -296,3 +300,17 @@ def format_report(figures: dict[str, Any]) -> str:
     for name, value in figures.get("door", {}).items():
         lines.append(f"    {name:<26} {value:8.3f}")
     return "\n".join(lines)
+
+
+def bench_export_fresh(**options: Any) -> dict[str, Any]:
+    """`bench_export(**options)` in a new interpreter: both sides start from a process no earlier
+    benchmark has shaped (its heap, its caches), as a CLI export does."""
+    import json
+    import subprocess
+    import sys
+
+    code = ("import json, sys; from vault.export_bench import bench_export; "
+            "print(json.dumps(bench_export(**json.loads(sys.argv[1]))))")
+    out = subprocess.run([sys.executable, "-c", code, json.dumps(options)], check=True,
+                         capture_output=True, text=True)
+    return dict(json.loads(out.stdout.strip().splitlines()[-1]))

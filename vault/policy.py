@@ -4,7 +4,11 @@ A grant names actor, role, purpose, categories, the participants it covers, its
 expiry, and the policy and consent versions it was decided on. The store's
 read path takes a grant and asks it to `admit` each read; admission re-decides
 that participant against their consent as it is *now*, so a withdrawal takes
-effect at once, even for a grant minted before it.
+effect at once, even for a grant minted before it. The one shortcut: a read at
+the very instant the grant was decided, while the vault's database shows no
+change at all since then (by anyone: `StateToken`), is admitted on that
+decision, because deciding again on the same inputs could only agree (the live
+check asks strictly less than the minting decision did).
 
 Grants cannot be built outside this module (they need `_MINT`), pickled, or
 copied; `tests/test_architecture.py` checks that no other module names `_MINT`.
@@ -28,14 +32,17 @@ AUDIT_CHUNK = 1000  # subjects per audit entry: one batch of entries per decisio
 
 ConsentLoader = Callable[[Sequence[str] | None], Mapping[str, ConsentVersion | None]]
 AuditSink = Callable[[list[dict[str, Any]], dt.datetime], None]
+# A value that changes whenever anything is written to the vault's database, by this process
+# or any other (the vault passes SQLite's data_version and its connection's change count).
+StateToken = Callable[[], object]
 
 
 class Grant:
     """Permission to decrypt named categories of named participants for one purpose."""
 
-    __slots__ = ("_admitted", "_engine", "actor", "categories", "consent_digest", "counts",
-                 "decided_at", "expires_at", "grant_id", "participants", "policy_version", "purpose",
-                 "request", "role")
+    __slots__ = ("_admitted", "_engine", "_state", "actor", "categories", "consent_digest",
+                 "counts", "decided_at", "expires_at", "grant_id", "participants", "policy_version",
+                 "purpose", "request", "role")
 
     def __init__(self, mint: object, *, engine: PolicyEngine, decision: CohortDecision,
                  grant_id: str) -> None:
@@ -56,6 +63,7 @@ class Grant:
         self.expires_at = decision.decided_at + GRANT_LIFETIME
         self.counts = dict(decision.counts)  # refusals by reason, no ids
         self._admitted: set[tuple[str, str, dt.datetime]] = set()
+        self._state: object = None  # the database's state token once the grant was recorded
 
     def __reduce__(self) -> object:
         raise TypeError("grants are not serialisable")
@@ -80,10 +88,12 @@ class Grant:
 class PolicyEngine:
     """Decides requests against live consent, audits every outcome, mints grants."""
 
-    def __init__(self, policy: PolicySet, consents: ConsentLoader, audit: AuditSink) -> None:
+    def __init__(self, policy: PolicySet, consents: ConsentLoader, audit: AuditSink,
+                 state: StateToken | None = None) -> None:
         self.policy = policy
         self._consents = consents
         self._audit = audit
+        self._state = state
         self._revoked: set[str] = set()
 
     def decide(self, request: Request, *, now: dt.datetime,
@@ -103,7 +113,10 @@ class PolicyEngine:
         self._audit(decision_entries(decision, action="access.grant", grant_id=grant_id), now)
         if not decision.permit:
             raise PolicyRefusal(decision.refusal_message())
-        return Grant(_MINT, engine=self, decision=decision, grant_id=grant_id)
+        grant = Grant(_MINT, engine=self, decision=decision, grant_id=grant_id)
+        if self._state is not None:
+            grant._state = self._state()
+        return grant
 
     def admit(self, grant: Grant, pid: str, category: str, *, now: dt.datetime) -> None:
         why = self._why_not(grant, pid, category, now)
@@ -121,9 +134,20 @@ class PolicyEngine:
             return None
         return self._live_refusals(grant, (pid,), now).get(pid)
 
+    def _unchanged_since_decision(self, grant: Grant, now: dt.datetime) -> bool:
+        """The same instant and not one write to the database since the grant was recorded:
+        a live decision would see the minting decision's inputs again."""
+        return (self._state is not None and grant._state is not None and now == grant.decided_at
+                and self._state() == grant._state)
+
     def _live_refusals(self, grant: Grant, pids: tuple[str, ...], now: dt.datetime) -> dict[str, str]:
         """Re-decide `pids` against their consent now (budget and export rules were settled
-        when the grant was minted); returns pid -> first reason for those now refused."""
+        when the grant was minted); returns pid -> first reason for those now refused.
+
+        Every pid here is in the grant, so each was permitted by the minting decision, which
+        asked all the live check asks and more: with unchanged inputs nobody can be refused."""
+        if self._unchanged_since_decision(grant, now):
+            return {}
         live = decide(self.policy, grant.request.model_copy(update={
             "participants": pids, "cohort": False, "epsilon": None, "export": False}),
             self._consents(pids), now=now)
