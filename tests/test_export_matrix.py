@@ -362,6 +362,14 @@ def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path
     labels = pseudonyms(v, REC, groups["all"])
     for pid, alias in labels.items():  # exactly the rated cells carry values
         assert int(frame.loc[alias].notna().sum()) == rated[pid]
+    # an unrated cell is an empty CSV field (read as missing everywhere), never the text "nan"
+    # (Python's csv module as an independent reader)
+    import csv as pycsv
+
+    with open(tmp_path / "r" / "matrix.csv", newline="") as fh:
+        cells = [c for row in list(pycsv.reader(fh))[1:] for c in row[1:]]
+    assert not any(c.lower() == "nan" for c in cells)
+    assert sum(c == "" for c in cells) == len(cells) - sum(rated.values())
     assert result["guarantee"]["privacy_unit"] == "rating"
     with pytest.raises(PolicyRefusal, match="privacy-unit-not-allowed"):
         export_matrix(v, purpose=MENU, category=RATINGS, epsilon=0.01, unit="rating",
