@@ -405,13 +405,8 @@ class Vault:
         Yields (blob_id, participant id, plaintext chunks) in the order given.
         """
         when = moment(now)
-        rows: dict[str, tuple[str, str]] = {}
-        for start in range(0, len(blob_ids), 500):
-            chunk = blob_ids[start : start + 500]
-            marks = ",".join("?" * len(chunk))
-            rows.update((b, (p, k)) for b, p, k in self._conn.execute(
-                "SELECT blob_id, pid, kind FROM blobs WHERE blob_id IN (" + marks + ")",  # noqa: S608
-                chunk))
+        rows: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
+            self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
         missing = [b for b in blob_ids if b not in rows]
         if missing:
             raise NotFound(f"no blob '{missing[0]}'")

@@ -34,7 +34,6 @@ if TYPE_CHECKING:
     from vault.policyset import PolicySet
 
 ZCDP_DELTA = Fraction(1, 10**6)
-_CHUNK = 500  # SQL parameters per query
 _AUDIT_CHUNK = 1000  # subjects per audit entry
 
 
@@ -90,13 +89,8 @@ def ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
     sql = "SELECT pid, epsilon, rho, releases FROM budget_ledger WHERE purpose = ?"
     if pids is None:
         return {pid: parse(e, r, n) for pid, e, r, n in v._conn.execute(sql, (purpose,))}
-    out: dict[str, Ledger] = {}
-    for start in range(0, len(pids), _CHUNK):
-        chunk = list(pids[start : start + _CHUNK])
-        marks = ",".join("?" * len(chunk))
-        rows = v._conn.execute(sql + " AND pid IN (" + marks + ")", (purpose, *chunk))  # only '?'
-        out.update({pid: parse(e, r, n) for pid, e, r, n in rows})
-    return out
+    rows = storage.rows_in(v._conn, sql + " AND pid", pids, (purpose,))
+    return {pid: parse(e, r, n) for pid, e, r, n in rows}
 
 
 def chain_ledgers(v: Vault, purpose: str, pids: Sequence[str],
@@ -193,9 +187,9 @@ def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
             "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
             "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
             "rho = excluded.rho, releases = excluded.releases", updates)
-        entries = []
-        for start in range(0, max(len(pids), 1), _AUDIT_CHUNK):
-            chunk = sorted(pids)[start : start + _AUDIT_CHUNK]
+        entries, ordered = [], sorted(pids)
+        for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
+            chunk = ordered[start : start + _AUDIT_CHUNK]
             distinct = {(c.epsilon, c.rho) for c in (costs[p] for p in chunk)}
             entries.append({"actor": v.member, "action": "budget.charge", "purpose": purpose,
                             "subjects": chunk, "decision": "done",

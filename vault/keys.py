@@ -18,7 +18,7 @@ import sqlite3
 from collections.abc import Iterable
 from dataclasses import dataclass
 
-from vault import crypto
+from vault import crypto, storage
 from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFound
 
 
@@ -101,12 +101,8 @@ class KeyRing:
     def participant_keys(self, conn: sqlite3.Connection, pids: Iterable[str]) -> dict[str, bytes]:
         """The data keys of many participants (one query per 500). Callers: the blob store only."""
         wanted = sorted(set(pids))
-        rows: dict[str, bytes | None] = {}
-        for start in range(0, len(wanted), 500):
-            chunk = wanted[start : start + 500]
-            marks = ",".join("?" * len(chunk))
-            rows.update(conn.execute("SELECT pid, wrapped_key FROM participants "  # noqa: S608
-                                     "WHERE pid IN (" + marks + ")", chunk).fetchall())  # only '?'
+        rows: dict[str, bytes | None] = dict(storage.rows_in(
+            conn, "SELECT pid, wrapped_key FROM participants WHERE pid", wanted))
         out = {}
         for pid in wanted:
             if pid not in rows:

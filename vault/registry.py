@@ -10,6 +10,7 @@ import sqlite3
 from collections.abc import Mapping, Sequence
 from functools import lru_cache
 
+from vault import storage
 from vault.consent import ConsentVersion, verify_history
 from vault.errors import Conflict, IntegrityError, NotFound
 from vault.policyset import PolicySet, parse_policy_json
@@ -57,14 +58,10 @@ def latest_consents(conn: sqlite3.Connection, pids: Sequence[str] | None
             "AND c.number = (SELECT MAX(number) FROM consents WHERE pid = p.pid) "
             "WHERE p.wrapped_key IS NOT NULL").fetchall()
     else:
-        rows = []
-        for start in range(0, len(pids), 500):
-            chunk = list(pids[start : start + 500])
-            marks = ",".join("?" * len(chunk))
-            sql = ("SELECT p.pid, c.body FROM participants p LEFT JOIN consents c ON c.pid = p.pid "  # noqa: S608
-                   "AND c.number = (SELECT MAX(number) FROM consents WHERE pid = p.pid) "
-                   "WHERE p.wrapped_key IS NOT NULL AND p.pid IN (" + marks + ")")  # only '?' marks
-            rows += conn.execute(sql, chunk).fetchall()
+        rows = list(storage.rows_in(
+            conn, "SELECT p.pid, c.body FROM participants p LEFT JOIN consents c ON c.pid = p.pid "
+                  "AND c.number = (SELECT MAX(number) FROM consents WHERE pid = p.pid) "
+                  "WHERE p.wrapped_key IS NOT NULL AND p.pid", pids))
     return {pid: None if body is None else _parsed(body) for pid, body in rows}
 
 

@@ -10,9 +10,10 @@ free pages back to the file system).
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 import sqlite_utils
 
@@ -20,6 +21,7 @@ from vault.errors import Conflict, IntegrityError, StorageFull
 
 SCHEMA_VERSION = 1
 DB_NAME = "vault.db"
+IN_CHUNK = 500  # bound values per IN (...) query, well under SQLite's 999/32766 limits
 
 _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     "meta": ({"key": str, "value": str}, "key"),
@@ -181,3 +183,17 @@ def checkpoint(conn: sqlite3.Connection) -> tuple[int, int, int]:
 def incremental_vacuum(conn: sqlite3.Connection) -> None:
     """Hand every free page back to the file system (executescript steps it to the end)."""
     conn.executescript("PRAGMA incremental_vacuum;")
+
+
+def rows_in(conn: sqlite3.Connection, sql: str, values: Iterable[Any],
+            params: Sequence[Any] = ()) -> Iterator[Any]:
+    """Rows of `sql` + " IN (?, ...)" over `values`, one query per IN_CHUNK distinct values.
+
+    `sql` ends with the column compared; `params` bind its own '?' marks. Only '?' marks are
+    added to the text, never a value. Each matching row comes once, even for repeated values.
+    """
+    distinct = list(dict.fromkeys(values))
+    for start in range(0, len(distinct), IN_CHUNK):
+        chunk = distinct[start : start + IN_CHUNK]
+        marks = ",".join("?" * len(chunk))
+        yield from conn.execute(sql + " IN (" + marks + ")", (*params, *chunk))
