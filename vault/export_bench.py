@@ -174,11 +174,10 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
     out["charge_s"] = t
     target = Path(tempfile.mkdtemp(prefix="mindward-export-phase-"))
     try:
-        from vault.export_matrix import _matrix_columns, _sparse_columns
+        from vault.export_matrix import matrix_table
 
         names = [labels[p] for p in order]
-        t, columns = _timed(lambda: _sparse_columns(names, items, rows, cols, noisy) if unit == "rating"
-                            else _matrix_columns(names, items, noisy))
+        t, columns = _timed(lambda: matrix_table(names, items, rows, cols, noisy, PrivacyUnit(unit)))
         out["table_s"] = t
         t, _ = _timed(lambda: write_table(target, "matrix", columns, ("parquet",)))
         out["parquet_write_s"] = t

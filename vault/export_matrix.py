@@ -272,6 +272,14 @@ def _matrix_columns(labels: Sequence[str], items: Sequence[str], noisy: np.ndarr
     return columns
 
 
+def matrix_table(labels: Sequence[str], items: Sequence[str], rows: np.ndarray, cols: np.ndarray,
+                 noisy: np.ndarray, unit: PrivacyUnit) -> dict[str, Any]:
+    """The released matrix's columns from `release_cells`' output for `unit`."""
+    if unit is PrivacyUnit.RATING:
+        return _sparse_columns(labels, items, rows, cols, noisy)
+    return _matrix_columns(labels, items, noisy)
+
+
 def _sparse_columns(labels: Sequence[str], items: Sequence[str], rows: np.ndarray,
                     cols: np.ndarray, noisy: np.ndarray) -> dict[str, Any]:
     """The released table from noisy rated cells: an unrated cell is null (Parquet) or
@@ -393,9 +401,8 @@ def export_matrix(
     if release == "matrix":
         noisy, guarantee = release_cells(rows, cols, values, shape, unit=privacy_unit, low=low,
                                          high=high, grid_k=k, epsilon=eps_arg, rho=rho_arg)
-        names = [labels[p] for p in order]
-        tables = {"matrix": _sparse_columns(names, item_list, rows, cols, noisy) if per_rating
-                  else _matrix_columns(names, item_list, noisy)}
+        tables = {"matrix": matrix_table([labels[p] for p in order], item_list, rows, cols, noisy,
+                                         privacy_unit)}
         del noisy
     else:
         m = max_items_per_participant if max_items_per_participant is not None else len(item_list)

@@ -99,7 +99,8 @@ class KeyRing:
         return self._unwrap_participant_key(pid, row[0])
 
     def participant_keys(self, conn: sqlite3.Connection, pids: Iterable[str]) -> dict[str, bytes]:
-        """The data keys of many participants (one query per 500). Callers: the blob store only."""
+        """The data keys of many participants, unwrapped in one pass. Caller: `Vault.read_blobs`,
+        after the policy engine admitted the reads."""
         wanted = sorted(set(pids))
         rows: dict[str, bytes | None] = dict(storage.rows_in(
             conn, "SELECT pid, wrapped_key FROM participants WHERE pid", wanted))

@@ -21,7 +21,7 @@ from vault.errors import Conflict, IntegrityError, StorageFull
 
 SCHEMA_VERSION = 1
 DB_NAME = "vault.db"
-IN_CHUNK = 500  # bound values per IN (...) query, well under SQLite's 999/32766 limits
+IN_CHUNK = 500  # bound values per IN (...) query, under SQLite's old default limit of 999
 
 _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     "meta": ({"key": str, "value": str}, "key"),
