@@ -12,7 +12,7 @@ import time
 from collections.abc import Iterable, Iterator
 from datetime import UTC, date, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 from vault import audit, crypto, registry, storage
 from vault.consent import parse_consent_form, record_consent, split_identity
@@ -35,10 +35,24 @@ _MEMBER_NAME = re.compile(r"[A-Za-z0-9._-]{1,40}")
 _LOCK_WAIT_S = 10.0
 
 
-def moment(now: datetime | None = None) -> datetime:
+class Clock(Protocol):
+    def now(self) -> datetime: ...
+
+
+class SystemClock:
+    """The real clock: what every vault reads unless a test injects another at open."""
+
+    def now(self) -> datetime:
+        return datetime.now(UTC)
+
+
+SYSTEM_CLOCK = SystemClock()
+
+
+def moment(now: datetime | None = None, clock: Any = SYSTEM_CLOCK) -> datetime:
     """`now`, or the clock: this module is the only reader of the clock."""
-    value = now or datetime.now(UTC)
-    if value.tzinfo is None:
+    value = now if now is not None else clock.now()
+    if not isinstance(value, datetime) or value.tzinfo is None:
         raise UsageError("timestamps must carry a time zone")
     return value.astimezone(UTC)
 
@@ -76,8 +90,9 @@ class Vault:
     """An unlocked vault. Open with `Vault.open`, create with `Vault.init`; close when done."""
 
     def __init__(self, path: Path, conn: sqlite3.Connection, keys: KeyRing, member: str,
-                 role: str, lock_fd: int) -> None:
+                 role: str, lock_fd: int, clock: Clock | None = None) -> None:
         self.path = path
+        self._clock: Clock = clock or SYSTEM_CLOCK
         self._conn = conn
         self._keys = keys
         self.member = member
@@ -90,6 +105,20 @@ class Vault:
         self._audit = audit.AuditLog(conn, self.vault_id)
         self._closed = False
         self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
+
+    def _moment(self, now: datetime | None = None) -> datetime:
+        return moment(now, self._clock)
+
+    def _stamp(self, now: datetime | None = None) -> str:
+        return utc_now(self._moment(now))
+
+    def _engine_clock_changed(self) -> None:
+        """Tests that swap the injected clock after open call this (tests/clock.py)."""
+
+    def now(self) -> datetime:
+        """The vault's clock (the system's, or the one a test injected at open): decisions,
+        deadlines and audit entries all read it; no caller chooses the time of an action."""
+        return moment(None, self._clock)
 
     def _set_policy(self, policy: PolicySet) -> None:
         self.policy = policy
@@ -104,13 +133,14 @@ class Vault:
 
     def _audit_batch(self, entries: list[dict[str, Any]], now: datetime) -> None:
         with storage.transaction(self._conn):
-            self._audit.append_many(entries, utc_now(now))
+            self._audit.append_many(entries, self._stamp(now))
 
     # -- lifecycle ------------------------------------------------------------------------------
 
     @classmethod
     def init(cls, path: Path, passphrase: str, *, member: str = "steward",
-             policy_dir: Path | None = None, now: datetime | None = None) -> Vault:
+             policy_dir: Path | None = None, now: datetime | None = None,
+             clock: Clock | None = None) -> Vault:
         """Create a new vault at `path` (atomically: all of it or nothing).
 
         The policy set (the shipped default, or `policy_dir`) is validated and pinned
@@ -121,7 +151,7 @@ class Vault:
         path = Path(path)
         if path.exists() and any(path.iterdir()):
             raise Conflict(f"{path} exists and is not empty; refusing to create a vault there")
-        at = utc_now(now)
+        at = utc_now(moment(now, clock or SYSTEM_CLOCK))
         staging = path.parent / f".{path.name}.creating-{crypto.random_id(6)}"
         staging.mkdir(mode=0o700, parents=True)
         try:
@@ -132,7 +162,7 @@ class Vault:
         except BaseException:
             shutil.rmtree(staging, ignore_errors=True)
             raise
-        return cls.open(path, passphrase, member=member, now=now)
+        return cls.open(path, passphrase, member=member, now=now, clock=clock)
 
     @staticmethod
     def _create(root: Path, passphrase: str, member: str, at: str, policy: PolicySet) -> None:
@@ -165,7 +195,7 @@ class Vault:
 
     @classmethod
     def open(cls, path: Path, passphrase: str, *, member: str = "steward",
-             now: datetime | None = None) -> Vault:
+             now: datetime | None = None, clock: Clock | None = None) -> Vault:
         """Unlock a vault for `member`; cleans up after any interrupted write."""
         path = Path(path)
         _require_vault(path)
@@ -175,7 +205,7 @@ class Vault:
             conn = storage.connect(path)
             vault_id = _check_schema(conn)
             keys, role = KeyRing.unlock(conn, vault_id, member, passphrase)
-            vault = cls(path, conn, keys, member, role, lock_fd)
+            vault = cls(path, conn, keys, member, role, lock_fd, clock)
         except BaseException:
             if conn is not None:
                 conn.close()
@@ -200,7 +230,7 @@ class Vault:
             head = self._audit.latest_head()
             if head is None or head.tree_size < self._audit.size:
                 with storage.transaction(self._conn):
-                    self._audit.sign_head(self._signing, utc_now(now))
+                    self._audit.sign_head(self._signing, self._stamp(now))
         finally:
             self._closed = True
             self._conn.close()
@@ -229,7 +259,7 @@ class Vault:
     def rekey(self, new_passphrase: str, *, now: datetime | None = None) -> dict[str, Any]:
         """New master key and new passphrase for this member; re-wraps keys, never data."""
         _check_passphrase(new_passphrase)
-        at = utc_now(now)
+        at = self._stamp(now)
         wrapped_signing = bytes.fromhex(storage.get_meta(self._conn, "wrapped_signing_key"))
         with storage.transaction(self._conn):
             others = self._conn.execute(
@@ -255,7 +285,7 @@ class Vault:
     def new_participant(self, *, now: datetime | None = None) -> str:
         """Create a participant with a fresh data key; returns their random id."""
         self._require_steward()
-        at = utc_now(now)
+        at = self._stamp(now)
         pid = crypto.random_id(16)
         key = self._keys.new_participant_key(pid)
         with storage.transaction(self._conn):
@@ -270,7 +300,7 @@ class Vault:
                  now: datetime | None = None, details: dict[str, Any] | None = None) -> BlobInfo:
         """Encrypt and store a blob for `pid`: file first, then row and audit entry at once."""
         self._require_steward()
-        at = utc_now(now)
+        at = self._stamp(now)
         key = self._keys.participant_key(self._conn, pid)
         blob_id = "b-" + crypto.random_id(12)
         info = self._store.write(key, pid, blob_id, kind, chunks)
@@ -295,7 +325,7 @@ class Vault:
         """Pin a new policy set (validated first); consent already given is not changed."""
         self._require_steward()
         policy = load_policy_dir(Path(policy_dir))
-        at = utc_now(now)
+        at = self._stamp(now)
         previous = self.policy.version
         with storage.transaction(self._conn):
             new = registry.store_policy(self._conn, policy, at)
@@ -312,7 +342,7 @@ class Vault:
         participant's own key; the consent terms become version 1 under a random id.
         """
         self._require_steward()
-        when = moment(now)
+        when = self._moment(now)
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
         tag = self._keys.lab_code_tag(identity.code)
         existing = registry.pid_for_tag(self._conn, tag)
@@ -344,7 +374,7 @@ class Vault:
     def amend_consent(self, pid: str, form: bytes, *, now: datetime | None = None) -> dict[str, Any]:
         """Add a consent version from a new filled form (a partial withdrawal is one)."""
         self._require_steward()
-        when = moment(now)
+        when = self._moment(now)
         registry.require_participant(self._conn, pid)
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
         if registry.pid_for_tag(self._conn, self._keys.lab_code_tag(identity.code)) != pid:
@@ -375,13 +405,13 @@ class Vault:
     def access_check(self, purpose: str, categories: Iterable[str], *,
                      now: datetime | None = None, **options: Any) -> CohortDecision:
         """Who a request would include and why others are not; reads no data (audited)."""
-        return self._engine.decide(self.request(purpose, categories, **options), now=moment(now))
+        return self._engine.decide(self.request(purpose, categories, **options), now=self._moment(now))
 
     def authorize(self, purpose: str, categories: Iterable[str], *, now: datetime | None = None,
                   budget_remaining: dict[str, float] | None = None, **options: Any) -> Grant:
         """A grant from the policy engine, or PolicyRefusal (both audited)."""
         return self._engine.authorize(self.request(purpose, categories, **options),
-                                      now=moment(now), budget_remaining=budget_remaining)
+                                      now=self._moment(now), budget_remaining=budget_remaining)
 
     def read_blob(self, grant: Grant, blob_id: str, *, now: datetime | None = None) -> Iterator[bytes]:
         """Plaintext of one blob through the one door (grant checked live, read audited)."""
@@ -389,7 +419,7 @@ class Vault:
         if row is None:
             raise NotFound(f"no blob '{blob_id}'")
         pid, category = row
-        when = moment(now)
+        when = self._moment(now)
         key = self._keys.participant_key(self._conn, pid)
         chunks = self._store.plaintext(grant, key, pid, blob_id, category, now=when)
         self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
@@ -404,7 +434,7 @@ class Vault:
 
         Yields (blob_id, participant id, plaintext chunks) in the order given.
         """
-        when = moment(now)
+        when = self._moment(now)
         rows: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
             self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
         missing = [b for b in blob_ids if b not in rows]
@@ -432,14 +462,14 @@ class Vault:
         self._require_steward()
         return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
-                          keep_header_identity=keep_header_identity, now=moment(now))
+                          keep_header_identity=keep_header_identity, now=self._moment(now))
 
     def ingest_scores(self, path: Path, kind: str, *, now: datetime | None = None) -> dict[str, Any]:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""
         from vault.ingest import ingest_scores
 
         self._require_steward()
-        return ingest_scores(self, Path(path), kind, now=moment(now))
+        return ingest_scores(self, Path(path), kind, now=self._moment(now))
 
     # -- exports ------------------------------------------------------------------------------------
 
@@ -448,14 +478,14 @@ class Vault:
         """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
         from vault.export_eeg import export_eeg
 
-        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=moment(now))
+        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=self._moment(now))
 
     def export_matrix(self, purpose: str, category: str, out: Path, *, now: datetime | None = None,
                       **options: Any) -> dict[str, Any]:
         """A pseudonymised, differentially private preference release (matrix or aggregate)."""
         from vault.export_matrix import export_matrix
 
-        return export_matrix(self, purpose=purpose, category=category, out=Path(out), now=moment(now),
+        return export_matrix(self, purpose=purpose, category=category, out=Path(out), now=self._moment(now),
                              **options)
 
     def export_utility(self, purpose: str, category: str, epsilons: list[float], out_png: Path, *,
@@ -464,7 +494,7 @@ class Vault:
         from vault.export_matrix import export_utility
 
         return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
-                              out_png=Path(out_png), now=moment(now), **options)
+                              out_png=Path(out_png), now=self._moment(now), **options)
 
     def budget(self, purpose: str | None = None, *, show_participants: bool | None = None
                ) -> list[dict[str, Any]]:
@@ -478,7 +508,7 @@ class Vault:
         """Whether an export someone holds now contains withdrawn or expired participants."""
         from vault.exports import check_export
 
-        return check_export(self, document, now=moment(now))
+        return check_export(self, document, now=self._moment(now))
 
     # -- withdrawal and erasure ---------------------------------------------------------------------
 
@@ -487,19 +517,19 @@ class Vault:
         """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
         from vault.withdraw import request_withdrawal
 
-        return request_withdrawal(self, pid, received=received, scope=scope, now=moment(now))
+        return request_withdrawal(self, pid, received=received, scope=scope, now=self._moment(now))
 
     def withdraw_pending(self, *, now: datetime | None = None) -> list[dict[str, Any]]:
         from vault.withdraw import pending
 
         self._require_steward()
-        return pending(self, now=moment(now))
+        return pending(self, now=self._moment(now))
 
     def withdraw_process(self, target: str, *, now: datetime | None = None) -> dict[str, Any]:
         """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
         from vault.withdraw import process
 
-        return process(self, target, now=moment(now))
+        return process(self, target, now=self._moment(now))
 
     def withdraw_receipt(self, target: str) -> dict[str, Any]:
         from vault.withdraw import receipt_of
@@ -510,13 +540,13 @@ class Vault:
         """Erase, with receipts, everyone whose consent expired or retention ended."""
         from vault.withdraw import sweep
 
-        return sweep(self, now=moment(now), dry_run=dry_run)
+        return sweep(self, now=self._moment(now), dry_run=dry_run)
 
     def report(self, *, now: datetime | None = None) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
         from vault.report import record_of_processing
 
-        return record_of_processing(self, now=moment(now))
+        return record_of_processing(self, now=self._moment(now))
 
     # -- members ------------------------------------------------------------------------------------
 
@@ -530,7 +560,7 @@ class Vault:
         if not _MEMBER_NAME.fullmatch(name):
             raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
         _check_passphrase(passphrase)
-        at = utc_now(now)
+        at = self._stamp(now)
         with storage.transaction(self._conn):
             self._keys.add_slot(self._conn, name, role, passphrase, at)
             self._audit.append({"actor": self.member, "action": "member.add", "decision": "done",
@@ -539,7 +569,7 @@ class Vault:
 
     def remove_member(self, name: str, *, now: datetime | None = None) -> dict[str, str]:
         self._require_steward()
-        at = utc_now(now)
+        at = self._stamp(now)
         with storage.transaction(self._conn):
             registry.remove_member(self._conn, name)
             self._audit.append({"actor": self.member, "action": "member.remove", "decision": "done",
@@ -586,7 +616,7 @@ class Vault:
 
     def sign_head(self, *, now: datetime | None = None) -> audit.TreeHead:
         with storage.transaction(self._conn):
-            return self._audit.sign_head(self._signing, utc_now(now))
+            return self._audit.sign_head(self._signing, self._stamp(now))
 
 
 
