@@ -11,6 +11,7 @@ import numpy as np
 import pyedflib
 import pytest
 
+from tests.clock import at
 from tests.conftest import ROOT, assert_absent
 from tests.test_bids import _issues, _validator
 from vault import IntegrityError, PolicyRefusal, Vault, verify_export
@@ -30,11 +31,11 @@ def _form(name: str, code: str) -> bytes:
 def lab(fresh_vault: Vault) -> tuple[Vault, list[str], str]:
     granted = []
     for i in range(5):
-        pid = fresh_vault.enrol(_form("consent-all-granted.toml", f"g{i}"), now=NOW)["participant_id"]
-        fresh_vault.ingest_eeg(pid, SOURCE, now=NOW)
+        pid = at(fresh_vault, NOW).enrol(_form("consent-all-granted.toml", f"g{i}"))["participant_id"]
+        at(fresh_vault, NOW).ingest_eeg(pid, SOURCE)
         granted.append(pid)
-    refuser = fresh_vault.enrol(_form("consent-no-external.toml", "r"), now=NOW)["participant_id"]
-    fresh_vault.ingest_eeg(refuser, SOURCE, now=NOW)
+    refuser = at(fresh_vault, NOW).enrol(_form("consent-no-external.toml", "r"))["participant_id"]
+    at(fresh_vault, NOW).ingest_eeg(refuser, SOURCE)
     return fresh_vault, granted, refuser
 
 
@@ -44,7 +45,7 @@ def test_export_is_valid_bids_and_reads_back(lab, tmp_path: Path, kind: str) -> 
     v, _, _ = lab
     cmd = _validator(kind)
     out = tmp_path / "bids"
-    result = v.export_eeg("primary-analysis", out, now=NOW)
+    result = at(v, NOW).export_eeg("primary-analysis", out)
     assert result["participants"] == 6  # primary analysis: the no-external form grants it too
     errors, _, _ = _issues(kind, cmd, out)  # the BIDS standard's own validator
     assert errors == []
@@ -60,10 +61,10 @@ def test_export_is_valid_bids_and_reads_back(lab, tmp_path: Path, kind: str) -> 
 def test_refused_participants_are_absent_and_labels_are_per_purpose(lab, tmp_path: Path) -> None:
     v, granted, refuser = lab
     with pytest.raises(PolicyRefusal, match=r"cohort-too-small|recipient"):
-        v.export_eeg("external-sharing", tmp_path / "x", recipient="Partner Lab", now=NOW)
-    a = v.export_eeg("primary-analysis", tmp_path / "a", now=NOW)
-    b = v.export_eeg("primary-analysis", tmp_path / "b", now=NOW)
-    c = v.export_eeg("method-development", tmp_path / "c", now=NOW)
+        at(v, NOW).export_eeg("external-sharing", tmp_path / "x", recipient="Partner Lab")
+    a = at(v, NOW).export_eeg("primary-analysis", tmp_path / "a")
+    b = at(v, NOW).export_eeg("primary-analysis", tmp_path / "b")
+    c = at(v, NOW).export_eeg("method-development", tmp_path / "c")
     subjects = {k: set(mne_bids.get_entity_vals(tmp_path / k, "subject")) for k in "abc"}
     assert subjects["a"] == subjects["b"]  # stable within a purpose
     assert not subjects["a"] & subjects["c"]  # unlinkable across purposes
@@ -77,7 +78,7 @@ def test_refused_participants_are_absent_and_labels_are_per_purpose(lab, tmp_pat
 def test_manifest_signature_and_file_digests(lab, tmp_path: Path) -> None:
     v, _, _ = lab
     out = tmp_path / "bids"
-    v.export_eeg("primary-analysis", out, now=NOW)
+    at(v, NOW).export_eeg("primary-analysis", out)
     key = v.public_key
     assert verify_export(out, key)["ok"]
     assert not verify_export(out, bytes(32))["ok"]
@@ -103,18 +104,18 @@ def test_manifest_signature_and_file_digests(lab, tmp_path: Path) -> None:
 def test_export_check_flags_withdrawn_participants(lab, tmp_path: Path) -> None:
     v, granted, _ = lab
     out = tmp_path / "bids"
-    v.export_eeg("primary-analysis", out, now=NOW)
+    at(v, NOW).export_eeg("primary-analysis", out)
     doc = json.loads((out / "manifest.json").read_text())
-    assert v.check_export(doc, now=NOW)["must_replace"] is False
+    assert at(v, NOW).check_export(doc)["must_replace"] is False
     text = _form("consent-all-granted.toml", "g0").decode()
     old = 'granted = ["eeg-raw", "scores-derived", "ratings-explicit", "demographics"]'
     withdrawn = text.replace(old, 'granted = []\nrefused = ["eeg-raw", "scores-derived", '
                              '"ratings-explicit", "demographics"]', 1).replace("explicit = true", "", 1)
-    v.amend_consent(granted[0], withdrawn.encode(), now=NOW)
-    status = v.check_export(doc, now=NOW)
+    at(v, NOW).amend_consent(granted[0], withdrawn.encode())
+    status = at(v, NOW).check_export(doc)
     assert status["must_replace"] and status["consent_no_longer_covers"] == 1
-    assert v.check_export(doc, now=NOW + dt.timedelta(days=400))["export_expired"]
+    assert at(v, NOW + dt.timedelta(days=400)).check_export(doc)["export_expired"]
     forged = json.loads(json.dumps(doc))
     forged["body"]["export_id"] = "x-0000"
     with pytest.raises(IntegrityError):
-        v.check_export(forged, now=NOW)
+        at(v, NOW).check_export(forged)

@@ -27,6 +27,7 @@ from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
+from tests.clock import ManualClock, at
 from tests.conftest import ROOT, TEST_PASSPHRASE
 from vault import Conflict, PolicyRefusal, UsageError, Vault, verify_export
 from vault import budget as ledger
@@ -84,11 +85,11 @@ def make_lab(root: Path, policy: Path, counts: dict[str, int], *, n_items: int =
              ) -> tuple[Vault, dict[str, list[str]], dict[tuple[str, str], float]]:
     """A vault with participants of each kind, each holding ratings; the withdrawn ones amend
     their consent (docs/examples/amend-withdraw-recommender.toml) after the ratings are in."""
-    v = Vault.init(root / "vault", TEST_PASSPHRASE, policy_dir=policy, now=T0)
+    v = Vault.init(root / "vault", TEST_PASSPHRASE, policy_dir=policy, clock=ManualClock(T0))
     groups: dict[str, list[str]] = {kind: [] for kind in FORMS}
     for kind, n in counts.items():
         for i in range(n):
-            groups[kind].append(v.enrol(_form(FORMS[kind], f"{kind}{i}"), now=T0)["participant_id"])
+            groups[kind].append(at(v, T0).enrol(_form(FORMS[kind], f"{kind}{i}"))["participant_id"])
     rng = np.random.default_rng(seed)
     truth: dict[tuple[str, str], float] = {}
     lines = ["participant_id,item_id,value"]
@@ -101,12 +102,12 @@ def make_lab(root: Path, policy: Path, counts: dict[str, int], *, n_items: int =
     if len(lines) > 1:
         csv = root / "scores.csv"
         csv.write_text("\n".join(lines) + "\n")
-        v.ingest_scores(csv, category, now=T0)
+        at(v, T0).ingest_scores(csv, category)
         csv.unlink()
     amended = (EXAMPLES / "amend-withdraw-recommender.toml").read_text()
     for i, pid in enumerate(groups["withdrawn"]):
         form = amended.replace('code = "TL-', f'code = "withdrawn{i}-', 1).encode()
-        v.amend_consent(pid, form, now=T0 + dt.timedelta(days=1))
+        at(v, T0 + dt.timedelta(days=1)).amend_consent(pid, form)
     return v, groups, truth
 
 
@@ -158,14 +159,14 @@ def test_only_permitted_participants_are_ever_exported(all_: int, norec: int, ex
             others = [p for kind in ("norec", "expired", "withdrawn") for p in groups[kind]]
             if all_ < 3:  # below the minimum cohort: nothing leaves, nothing is charged
                 with pytest.raises(PolicyRefusal, match="cohort-too-small") as err:
-                    export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, release=release,
-                                  unit=unit, out=out, now=NOW)
+                    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, release=release,
+                                  unit=unit, out=out)
                 assert not any(p in str(err.value) for ps in groups.values() for p in ps)
                 assert not out.exists() and not spent(v, REC)
                 assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
                 return
-            result = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, release=release,
-                                   unit=unit, out=out, now=NOW)
+            result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, release=release,
+                                   unit=unit, out=out)
             assert result["cohort_size"] == all_
             assert result["refused_by_reason"] == {REASON[k]: counts[k] for k in REASON if counts[k]}
             assert lineage(v, result["export_id"]) == set(groups["all"])
@@ -196,19 +197,19 @@ def test_only_permitted_participants_are_ever_exported(all_: int, norec: int, ex
 
 def test_withdrawal_after_an_export_excludes_from_the_next_and_is_flagged(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    first = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a", now=NOW)
+    first = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
     leaver = groups["all"][0]
     amended = (EXAMPLES / "amend-withdraw-recommender.toml").read_text()
-    v.amend_consent(leaver, amended.replace('code = "TL-', 'code = "all0-', 1).encode(),
-                    now=NOW + dt.timedelta(hours=1))
+    at(v, NOW + dt.timedelta(hours=1)).amend_consent(
+        leaver, amended.replace('code = "TL-', 'code = "all0-', 1).encode())
     later = NOW + dt.timedelta(hours=2)
-    second = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b", now=later)
+    second = export_matrix(at(v, later), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     assert leaver in lineage(v, first["export_id"]) and leaver not in lineage(v, second["export_id"])
     assert second["refused_by_reason"]["consent-withdrawn"] == 2
     alias = pseudonyms(v, REC, [leaver])[leaver]
     assert alias not in read_matrix(tmp_path / "b")[0][PSEUDONYM_COLUMN].tolist()
     doc = json.loads((tmp_path / "a" / MANIFEST_NAME).read_text())
-    assert check_export(v, doc, now=later)["must_replace"]  # the earlier export must be replaced
+    assert check_export(at(v, later), doc)["must_replace"]  # the earlier export must be replaced
 
 
 # --------------------------------------------------------------------------- pseudonyms and files
@@ -216,8 +217,8 @@ def test_withdrawal_after_an_export_excludes_from_the_next_and_is_flagged(lab, t
 
 def test_pseudonyms_are_keyed_per_purpose_never_a_plain_hash(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    a = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a", now=NOW)
-    b = export_matrix(v, purpose=MENU, category=RATINGS, epsilon=0.2, out=tmp_path / "b", now=NOW)
+    a = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
+    b = export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     rows_a = set(read_matrix(tmp_path / "a")[0][PSEUDONYM_COLUMN])
     rows_b = set(read_matrix(tmp_path / "b")[0][PSEUDONYM_COLUMN])
     assert len(rows_a) == len(rows_b) == 5 and not rows_a & rows_b  # unlinkable across purposes
@@ -234,7 +235,7 @@ def test_parquet_and_csv_hold_the_same_values(tmp_path: Path, policy_dir: Path, 
     v, _, _ = make_lab(tmp_path, policy_dir, {"all": 4}, category=category, n_items=8)
     with v:
         name = RATINGS if category == "explicit" else "scores-derived"
-        export_matrix(v, purpose=REC, category=name, epsilon=1.0, out=tmp_path / "out", now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=name, epsilon=1.0, out=tmp_path / "out")
         parquet, csv = read_matrix(tmp_path / "out")
     assert list(parquet.columns) == list(csv.columns)
     assert parquet.columns[0] == PSEUDONYM_COLUMN and list(parquet.columns[1:]) == sorted(
@@ -250,8 +251,8 @@ def test_noise_in_the_file_has_the_scale_the_range_and_unit_imply(tmp_path: Path
     n_items = 40
     v, groups, truth = make_lab(tmp_path, policy_dir, {"all": 10}, n_items=n_items, density=0.5)
     with v:
-        result = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "out",
-                               now=NOW, items=[f"dish-{j:02d}" for j in range(n_items)])
+        result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5,
+                               out=tmp_path / "out", items=[f"dish-{j:02d}" for j in range(n_items)])
         labels = pseudonyms(v, REC, groups["all"])
     frame = read_matrix(tmp_path / "out")[0].set_index(PSEUDONYM_COLUMN)
     noise = []
@@ -279,7 +280,7 @@ def test_noise_in_the_file_has_the_scale_the_range_and_unit_imply(tmp_path: Path
 def test_the_same_request_twice_spends_twice_exactly(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
     for i in range(3):  # 0.1 three times is exactly 3/10 (a float sum would be 0.30000000000000004)
-        export_matrix(v, purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / f"o{i}", now=NOW)
+        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / f"o{i}")
     for purpose in (MENU, REC):  # the child's spending counts against the parent's budget too
         assert spent(v, purpose) == {pid: ("3/10", "0", 3) for pid in groups["all"]}
     report = {r["purpose"]: r for r in ledger.budget_report(v)}
@@ -291,7 +292,8 @@ def test_the_same_request_twice_spends_twice_exactly(lab, tmp_path: Path) -> Non
 
 @pytest.fixture(scope="module")
 def ledger_vault(tmp_path_factory: pytest.TempPathFactory):
-    with Vault.init(tmp_path_factory.mktemp("ledger") / "vault", TEST_PASSPHRASE, now=NOW) as v:
+    with Vault.init(tmp_path_factory.mktemp("ledger") / "vault", TEST_PASSPHRASE,
+                    clock=ManualClock(NOW)) as v:
         yield v
 
 
@@ -310,7 +312,7 @@ def test_the_decision_floats_agree_with_the_exact_ledger(ledger_vault: Vault, sp
     pid = random_id(16)
     already = Fraction(spent_hundredths, 100)
     if already:
-        ledger.charge(v, REC, {pid: Cost(epsilon=already)}, export_id="x-seed", now=NOW)
+        ledger.charge(at(v, NOW), REC, {pid: Cost(epsilon=already)}, export_id="x-seed")
     for scale in (1, n_ratings):  # participant unit, and the rating unit with n ratings
         cost = Cost(epsilon=Fraction(eps) * scale)
         exact_fits = already + Fraction(eps) * scale <= 3  # recommender training: 3 per participant
@@ -320,39 +322,39 @@ def test_the_decision_floats_agree_with_the_exact_ledger(ledger_vault: Vault, sp
 
 def test_gaussian_releases_spend_rho_and_state_the_delta(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    result = export_matrix(v, purpose=REC, category=RATINGS, rho=0.01, mechanism="gaussian",
-                           out=tmp_path / "g", now=NOW)
+    result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, rho=0.01, mechanism="gaussian",
+                           out=tmp_path / "g")
     body = json.loads((tmp_path / "g" / MANIFEST_NAME).read_text())["body"]
     assert body["mechanism"] == "discrete-gaussian" and body["rho"] == "1/100"
     assert body["zcdp_delta"] == "1/1000000" == result["guarantee"]["approx_dp"]["delta"]
     assert spent(v, REC) == {pid: ("0", "1/100", 1) for pid in groups["all"]}
     with pytest.raises(UsageError):
-        export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.1, mechanism="gaussian",
-                      out=tmp_path / "x", now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, mechanism="gaussian",
+                      out=tmp_path / "x")
 
 
 def test_spent_budgets_exclude_or_refuse_as_the_policy_says(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
     tired, fresh = groups["all"][:2], groups["all"][2:]
-    ledger.charge(v, REC, {p: Cost(epsilon=Fraction(29, 10)) for p in tired}, export_id="x-t", now=NOW)
+    ledger.charge(at(v, NOW), REC, {p: Cost(epsilon=Fraction(29, 10)) for p in tired}, export_id="x-t")
     # parent purpose excludes: 0.1 more is exactly 3 (included), 0.2 is not
-    a = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.1, out=tmp_path / "a", now=NOW)
+    a = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, out=tmp_path / "a")
     assert a["cohort_size"] == 5 and spent(v, REC)[tired[0]] == ("3", "0", 2)
-    b = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b", now=NOW)
+    b = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     assert b["cohort_size"] == 3 and b["refused_by_reason"]["budget-exhausted"] == 2
     assert lineage(v, b["export_id"]) == set(fresh) and spent(v, REC)[tired[0]] == ("3", "0", 2)
     # the child refuses the whole release, also when only the parent's budget is spent
     before = spent(v, REC), spent(v, MENU)
     with pytest.raises(PolicyRefusal, match="budget-exhausted") as err:
-        export_matrix(v, purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / "c", now=NOW)
+        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / "c")
     assert not any(p in str(err.value) for p in groups["all"])
     assert (spent(v, REC), spent(v, MENU)) == before and not (tmp_path / "c").exists()
 
 
 def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path: Path) -> None:
     v, groups, truth = lab
-    result = export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.05, unit="rating",
-                           out=tmp_path / "r", now=NOW)
+    result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.05, unit="rating",
+                           out=tmp_path / "r")
     body = json.loads((tmp_path / "r" / MANIFEST_NAME).read_text())["body"]
     assert body["privacy_unit"] == "rating" and "NOT protected" in body["rating_unit_warning"]
     assert any("missingness" in line for line in body["privacy"]["not_protected"])
@@ -372,8 +374,8 @@ def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path
     assert sum(c == "" for c in cells) == len(cells) - sum(rated.values())
     assert result["guarantee"]["privacy_unit"] == "rating"
     with pytest.raises(PolicyRefusal, match="privacy-unit-not-allowed"):
-        export_matrix(v, purpose=MENU, category=RATINGS, epsilon=0.01, unit="rating",
-                      out=tmp_path / "m", now=NOW)
+        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.01, unit="rating",
+                      out=tmp_path / "m")
 
 
 # --------------------------------------------------------------------------- refusals
@@ -383,7 +385,7 @@ def test_below_the_minimum_cohort_nothing_is_exported(tmp_path: Path) -> None:
     v, groups, _ = make_lab(tmp_path, ROOT / "policies", {"all": 6, "norec": 2})  # default: 20
     with v:
         with pytest.raises(PolicyRefusal) as err:
-            export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o", now=NOW)
+            export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
         assert "cohort-too-small" in str(err.value) and "[6 eligible]" in str(err.value)
         assert "consent-refused: 2" in str(err.value)
         assert not any(p in str(err.value) for ps in groups.values() for p in ps)
@@ -397,16 +399,16 @@ def test_request_wide_refusals(lab, tmp_path: Path) -> None:
     v, _, _ = lab
     out = tmp_path / "o"
     with pytest.raises(PolicyRefusal, match="release-epsilon-exceeds-cap"):
-        export_matrix(v, purpose=REC, category=RATINGS, epsilon=1.5, out=out, now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=1.5, out=out)
     with pytest.raises(PolicyRefusal, match="no per-participant privacy budget"):
-        export_matrix(v, purpose="primary-analysis", category=RATINGS, epsilon=0.5, out=out, now=NOW)
+        export_matrix(at(v, NOW), purpose="primary-analysis", category=RATINGS, epsilon=0.5, out=out)
     with pytest.raises(PolicyRefusal, match="recipient-not-allowed"):
-        export_matrix(v, purpose="external-sharing", category=RATINGS, epsilon=0.5, out=out, now=NOW,
+        export_matrix(at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5, out=out,
                       recipient="Someone Else Ltd")
     with pytest.raises(PolicyRefusal, match="purpose-not-allowed-category"):
-        export_matrix(v, purpose=REC, category="eeg-raw", epsilon=0.5, out=out, now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category="eeg-raw", epsilon=0.5, out=out)
     with pytest.raises(UsageError):
-        export_matrix(v, purpose=REC, category=RATINGS, out=out, now=NOW)  # no epsilon, no rho
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, out=out)  # no epsilon, no rho
     catalogue = tmp_path / "items.txt"
     catalogue.write_text("# dishes\ndish-01\n\ndish-02\nnot an id\n")
     with pytest.raises(UsageError, match="item ids"):
@@ -416,7 +418,7 @@ def test_request_wide_refusals(lab, tmp_path: Path) -> None:
     out.mkdir()
     (out / "something").write_text("x")
     with pytest.raises(Conflict):
-        export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=out, now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=out)
     assert not spent(v, REC) and v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
 
 
@@ -430,7 +432,7 @@ def test_a_failed_write_leaves_no_files_and_no_lineage(lab, tmp_path: Path,
 
     monkeypatch.setattr(em, "write_table", broken)
     with pytest.raises(OSError):
-        export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o", now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["vault"]  # no staging folder left
     assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
     # the budget was charged before any file existed: a failure over-charges, never under-charges
@@ -442,8 +444,8 @@ def test_a_failed_write_leaves_no_files_and_no_lineage(lab, tmp_path: Path,
 
 def test_manifest_states_the_release_and_is_signed(lab, tmp_path: Path) -> None:
     v, _, _ = lab
-    result = export_matrix(v, purpose="external-sharing", category=RATINGS, epsilon=0.5,
-                           recipient="Westbrook Institute of Food Design", out=tmp_path / "o", now=NOW)
+    result = export_matrix(at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5,
+                           recipient="Westbrook Institute of Food Design", out=tmp_path / "o")
     doc = json.loads((tmp_path / "o" / MANIFEST_NAME).read_text())
     body = doc["body"]
     assert body["recipient"] == "Westbrook Institute of Food Design" == result["recipient"]
@@ -467,7 +469,7 @@ def test_manifest_states_the_release_and_is_signed(lab, tmp_path: Path) -> None:
 def test_tampering_with_any_file_or_field_is_detected(lab, tmp_path: Path) -> None:
     v, _, _ = lab
     src = tmp_path / "src"
-    export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=src, now=NOW)
+    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=src)
     clean = verify_export_dir(src, v.public_key)
     assert (clean["ok"], clean["problems"], clean["files"]) == (True, [], 2)
     assert verify_export(src, v.public_key)["ok"]  # the package's export verifier agrees
@@ -501,7 +503,7 @@ def test_tampering_with_any_file_or_field_is_detected(lab, tmp_path: Path) -> No
         assert tampered(f"field-{field}", edit(field, value)) == ["bad signature"]
     problems = tampered("path", edit("files", [{"path": "../vault/vault.db", "size": 1, "sha256": "0"}]))
     assert "bad signature" in problems and "a listed file has no valid relative path" in problems
-    with Vault.init(tmp_path / "other", TEST_PASSPHRASE, now=NOW) as other:
+    with Vault.init(tmp_path / "other", TEST_PASSPHRASE, clock=ManualClock(NOW)) as other:
         assert verify_export_dir(src, other.public_key)["problems"] == [
             "bad signature", "the audit tree head's signature does not verify"]
 
@@ -515,14 +517,14 @@ def test_utility_releases_rmse_figures_only(tmp_path: Path, policy_dir: Path) ->
     v, groups, _ = make_lab(tmp_path, policy_dir, {"all": 12, "norec": 2}, n_items=15, density=0.8)
     with v:
         before = v._audit.size
-        result = export_utility(v, purpose=REC, category=RATINGS, epsilons=[0.5, 4.0],
-                                out_png=tmp_path / "u.png", now=NOW, seed=7)
+        result = export_utility(at(v, NOW), purpose=REC, category=RATINGS, epsilons=[0.5, 4.0],
+                                out_png=tmp_path / "u.png", seed=7)
         assert not spent(v, REC)  # nothing released but the figures: no budget, no lineage
         assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
         assert any(e["action"] == "export.utility" for e in v.audit_entries(before))
         with pytest.raises(UsageError):
-            export_utility(v, purpose=REC, category=RATINGS, epsilons=[1.0],
-                           out_png=tmp_path / "u.jpg", now=NOW)
+            export_utility(at(v, NOW), purpose=REC, category=RATINGS, epsilons=[1.0],
+                           out_png=tmp_path / "u.jpg")
     report = result["report"]
     assert set(report) == {"metric", "epsilons", "noisy_rmse", "noisy_rmse_std", "no_noise_rmse",
                            "random_baseline_rmse", "rank", "test_fraction", "repeats",
@@ -536,8 +538,8 @@ def test_utility_releases_rmse_figures_only(tmp_path: Path, policy_dir: Path) ->
 
 def test_budget_report_per_participant_rows_are_for_stewards_only(lab, tmp_path: Path) -> None:
     v, _, _ = lab
-    export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o", now=NOW)
-    v.add_member("omar", "analyst", "analyst passphrase long enough", now=NOW)
+    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
+    at(v, NOW).add_member("omar", "analyst", "analyst passphrase long enough")
     path = v.path
     v.close()
     with Vault.open(path, "analyst passphrase long enough", member="omar") as analyst:
@@ -570,9 +572,9 @@ def test_ratings_ingested_in_several_files_are_exported_as_one_row(lab, tmp_path
     csv = tmp_path / "late.csv"
     csv.write_text("participant_id,item_id,value\n" + "".join(
         f"{pid},{item},2\n" for pid, items in extra.items() for item in items))
-    v.ingest_scores(csv, "explicit", now=T0)
-    export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, unit="rating",
-                  out=tmp_path / "r", now=NOW)
+    at(v, T0).ingest_scores(csv, "explicit")
+    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, unit="rating",
+                  out=tmp_path / "r")
     frame = read_matrix(tmp_path / "r")[0].set_index(PSEUDONYM_COLUMN)
     for pid, alias in pseudonyms(v, REC, groups["all"]).items():
         filled = set(frame.columns[frame.loc[alias].notna().to_numpy()])
@@ -595,7 +597,7 @@ def test_two_stored_values_for_one_item_stop_the_export(lab, tmp_path: Path) -> 
         v._conn.execute("INSERT INTO score_batches (blob_id, pid, category, batch_tag, rows) "
                         "VALUES (?, ?, ?, ?, 1)", (info.blob_id, pid, RATINGS, "forged"))
     with pytest.raises(IntegrityError, match="two stored values"):
-        export_matrix(v, purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x", now=NOW)
+        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x")
     assert not (tmp_path / "x").exists() and not spent(v, REC)
 
 

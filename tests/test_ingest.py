@@ -11,6 +11,7 @@ import numpy as np
 import pyedflib
 import pytest
 
+from tests.clock import at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
 from vault import InvalidInput, PolicyRefusal, Vault
 
@@ -25,15 +26,15 @@ def _form(name: str, code: str) -> bytes:
 
 @pytest.fixture
 def lab(fresh_vault: Vault) -> tuple[Vault, dict[str, str]]:
-    pids = {name: fresh_vault.enrol(_form(f"consent-{name}.toml", name), now=NOW)["participant_id"]
+    pids = {name: at(fresh_vault, NOW).enrol(_form(f"consent-{name}.toml", name))["participant_id"]
             for name in ("all-granted", "no-recommender", "expired")}
     return fresh_vault, pids
 
 
 def _read_back(v: Vault, blob_id: str, tmp_path: Path) -> Path:
-    grant = v.authorize("method-development", ["eeg-raw"], now=NOW, cohort=False)
+    grant = at(v, NOW)._authorize_release("method-development", ["eeg-raw"], cohort=False)
     out = tmp_path / f"{blob_id}.edf"
-    out.write_bytes(b"".join(v.read_blob(grant, blob_id, now=NOW)))
+    out.write_bytes(b"".join(at(v, NOW).read_blob(grant, blob_id)))
     return out
 
 
@@ -47,7 +48,7 @@ def _snapshot(root: Path) -> dict[str, str]:
 def test_signals_survive_ingest_exactly(lab, tmp_path: Path, name: str) -> None:
     v, pids = lab
     source = PYEDFLIB_DATA / name
-    result = v.ingest_eeg(pids["all-granted"], source, now=NOW)
+    result = at(v, NOW).ingest_eeg(pids["all-granted"], source)
     back = _read_back(v, result["blob_id"], tmp_path)
     # pyedflib, an independent reader: digital samples identical, header identity gone
     with pyedflib.EdfReader(str(source)) as a, pyedflib.EdfReader(str(back)) as b:
@@ -70,17 +71,17 @@ def test_header_identity_never_reaches_vault_bytes(lab, tmp_path: Path) -> None:
     # patient 'abcxyz99 M 30-JUN-1969 Hans_Muller', technician 'Mr._Spotty', admin code 'Dr._X'
     needles = [b"abcxyz99", b"30-JUN-1969", b"Hans_Muller", b"Mr._Spotty", b"Dr._X"]
     assert all(n in raw[8:168] for n in needles), "the source must carry them for the test to mean anything"
-    v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf", now=NOW)
-    v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf", now=NOW,
+    at(v, NOW).ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf")
+    at(v, NOW).ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf",
                  keep_header_identity=True)  # kept, but only as ciphertext
     assert_absent(v.path, *needles)
 
 
 def test_the_same_participant_gets_the_same_date_shift(lab, tmp_path: Path) -> None:
     v, pids = lab
-    a = v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf", now=NOW)
-    b = v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_subsecond.edf", now=NOW)
-    c = v.ingest_eeg(pids["no-recommender"], PYEDFLIB_DATA / "test_generator.edf", now=NOW)
+    a = at(v, NOW).ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_generator.edf")
+    b = at(v, NOW).ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_subsecond.edf")
+    c = at(v, NOW).ingest_eeg(pids["no-recommender"], PYEDFLIB_DATA / "test_generator.edf")
     shifts = []
     for result, src in ((a, "test_generator.edf"), (b, "test_subsecond.edf"), (c, "test_generator.edf")):
         with pyedflib.EdfReader(str(PYEDFLIB_DATA / src)) as orig, \
@@ -94,7 +95,7 @@ def test_ingest_without_consent_for_storage_is_refused_and_audited(lab) -> None:
     v, pids = lab
     before = len(v.blobs())
     with pytest.raises(PolicyRefusal, match="no current consent"):
-        v.ingest_eeg(pids["expired"], PYEDFLIB_DATA / "test_generator.edf", now=NOW)
+        at(v, NOW).ingest_eeg(pids["expired"], PYEDFLIB_DATA / "test_generator.edf")
     assert len(v.blobs()) == before
     last = v.audit_entries()[-1]
     assert last["decision"] == "refuse" and last["subjects"] == [pids["expired"]]
@@ -110,7 +111,7 @@ def test_bad_recordings_store_nothing(lab, tmp_path: Path, damage: str) -> None:
     path.write_bytes(bad)
     before = _snapshot(v.path)
     with pytest.raises(InvalidInput):
-        v.ingest_eeg(pids["all-granted"], path, now=NOW)
+        at(v, NOW).ingest_eeg(pids["all-granted"], path)
     assert _snapshot(v.path) == before
     assert not list((v.path / "tmp").iterdir())
 
@@ -125,15 +126,15 @@ def test_scores_ingest_is_one_transaction_and_idempotent(lab, tmp_path: Path) ->
     v, pids = lab
     a, b = pids["all-granted"], pids["no-recommender"]
     path = _csv(tmp_path, [(a, "dish-01", "3"), (a, "dish-02", "0"), (b, "dish-01", "2")])
-    first = v.ingest_scores(path, "explicit", now=NOW)
+    first = at(v, NOW).ingest_scores(path, "explicit")
     assert first["batches_stored"] == 2 and first["rows"] == 3
     blobs = len(v.blobs())
-    again = v.ingest_scores(path, "explicit", now=NOW)
+    again = at(v, NOW).ingest_scores(path, "explicit")
     assert again["batches_stored"] == 0 and again["batches_already_stored"] == 2
     assert len(v.blobs()) == blobs
     conflicting = _csv(tmp_path, [(a, "dish-01", "1")], "conflict.csv")
     with pytest.raises(InvalidInput, match=r"row 2: .*already has"):
-        v.ingest_scores(conflicting, "explicit", now=NOW)
+        at(v, NOW).ingest_scores(conflicting, "explicit")
     assert_absent(v.path, b"dish-01", b"dish-02")
 
 
@@ -153,7 +154,7 @@ def test_bad_score_files_store_nothing(lab, tmp_path: Path, rows, kind: str, mes
     path = _csv(tmp_path, [(p.format(pid=pid), i, x) for p, i, x in rows])
     before = _snapshot(v.path)
     with pytest.raises(InvalidInput, match=message) as err:
-        v.ingest_scores(path, kind, now=NOW)
+        at(v, NOW).ingest_scores(path, kind)
     assert "dish-01" not in str(err.value)
     assert _snapshot(v.path) == before
 
@@ -163,7 +164,7 @@ def test_scores_of_a_participant_without_consent_refuse_the_whole_file(lab, tmp_
     path = _csv(tmp_path, [(pids["all-granted"], "dish-01", "0.5"), (pids["expired"], "dish-01", "0.5")])
     before = len(v.blobs())
     with pytest.raises(PolicyRefusal, match="1 participant"):
-        v.ingest_scores(path, "derived", now=NOW)
+        at(v, NOW).ingest_scores(path, "derived")
     assert len(v.blobs()) == before
 
 
@@ -173,14 +174,14 @@ def test_bad_header_row_and_extra_columns(lab, tmp_path: Path) -> None:
         path = tmp_path / "bad.csv"
         path.write_text(text)
         with pytest.raises(InvalidInput, match="row 1"):
-            v.ingest_scores(path, "explicit", now=NOW)
+            at(v, NOW).ingest_scores(path, "explicit")
     assert io  # keep the import list honest for readers
 
 
 def test_vault_survives_a_reopen_after_ingest(vault_path: Path, tmp_path: Path) -> None:
     with Vault.init(vault_path, TEST_PASSPHRASE) as v:
-        pid = v.enrol(_form("consent-all-granted.toml", "r"), now=NOW)["participant_id"]
-        blob = v.ingest_eeg(pid, PYEDFLIB_DATA / "test_generator.edf", now=NOW)["blob_id"]
+        pid = at(v, NOW).enrol(_form("consent-all-granted.toml", "r"))["participant_id"]
+        blob = at(v, NOW).ingest_eeg(pid, PYEDFLIB_DATA / "test_generator.edf")["blob_id"]
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
         assert v.verify()["ok"]
         assert _read_back(v, blob, tmp_path).stat().st_size > 0
@@ -196,7 +197,7 @@ def test_numpy_recordings_with_sidecars(lab, tmp_path: Path) -> None:
     side = {"sampling_rate": 256, "channel_names": ["Fz", "Cz", "Pz", "Oz"], "units": "uV",
             "start_date": "2026-03-02", "start_time": "09:30:00"}
     (tmp_path / "rec.json").write_text(json.dumps(side))
-    result = v.ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json", now=NOW)
+    result = at(v, NOW).ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json")
     back = _read_back(v, result["blob_id"], tmp_path)
     with pyedflib.EdfReader(str(back)) as edf:  # independent reader of what the vault made
         assert edf.getSignalLabels() == ["Fz", "Cz", "Pz", "Oz"]
@@ -207,5 +208,5 @@ def test_numpy_recordings_with_sidecars(lab, tmp_path: Path) -> None:
     (tmp_path / "rec.json").write_text(json.dumps(side))
     before = len(v.blobs())
     with pytest.raises(InvalidInput):
-        v.ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json", now=NOW)
+        at(v, NOW).ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json")
     assert len(v.blobs()) == before

@@ -10,9 +10,10 @@ from pathlib import Path
 
 import pytest
 
+from tests.clock import at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
-from vault import AuthenticationFailed, Conflict, InvalidInput, PolicyRefusal, Vault
-from vault.policy import Grant
+from vault import AuthenticationFailed, Conflict, InvalidInput, PolicyRefusal, Vault, read_audit_log
+from vault.policy import Admission, Grant
 
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
@@ -30,7 +31,7 @@ def _enrol_cohort(v: Vault, n_all: int, n_no_rec: int = 0, n_expired: int = 0) -
             ("expired", "consent-expired.toml", n_expired)]
     for group, name, n in plan:
         for i in range(n):
-            groups[group].append(v.enrol(form(name, f"{group}{i}"), now=NOW)["participant_id"])
+            groups[group].append(at(v, NOW).enrol(form(name, f"{group}{i}"))["participant_id"])
     return groups
 
 
@@ -42,33 +43,33 @@ def _snapshot(root: Path) -> dict[str, str]:
 @pytest.fixture
 def cohort(fresh_vault: Vault) -> tuple[Vault, dict[str, list[str]], dict[str, str]]:
     groups = _enrol_cohort(fresh_vault, 6, 2, 1)
-    blobs = {pid: fresh_vault.put_blob(pid, "eeg-raw", [f"EEG-OF-{pid}".encode() * 100], now=NOW).blob_id
+    blobs = {pid: at(fresh_vault, NOW).put_blob(pid, "eeg-raw", [f"EEG-OF-{pid}".encode() * 100]).blob_id
              for pids in groups.values() for pid in pids}
     return fresh_vault, groups, blobs
 
 
 def test_granted_reads_return_the_data_and_are_audited(cohort) -> None:
     v, groups, blobs = cohort
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    grant = at(v, NOW).authorize("primary-analysis", ["eeg-raw"])
     assert grant.participants == set(groups["all"] + groups["no-rec"])
     pid = groups["all"][0]
-    assert b"".join(v.read_blob(grant, blobs[pid], now=NOW)) == f"EEG-OF-{pid}".encode() * 100
+    assert b"".join(at(v, NOW).read_blob(grant, blobs[pid])) == f"EEG-OF-{pid}".encode() * 100
     actions = [(e["action"], e.get("decision")) for e in v.audit_entries()]
     assert ("access.grant", "permit") in actions and ("access.read", "permit") in actions
 
 
 def test_reads_outside_the_grant_are_refused_and_audited(cohort) -> None:
     v, groups, blobs = cohort
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    grant = at(v, NOW).authorize("primary-analysis", ["eeg-raw"])
     expired = groups["expired"][0]
     with pytest.raises(PolicyRefusal, match="participant-not-in-grant"):
-        v.read_blob(grant, blobs[expired], now=NOW)
+        at(v, NOW).read_blob(grant, blobs[expired])
     identity = v.blobs(groups["all"][0])
     identity_blob = next(b["blob_id"] for b in identity if b["kind"] == "identity-contact")
     with pytest.raises(PolicyRefusal, match="category-not-in-grant"):
-        v.read_blob(grant, identity_blob, now=NOW)
+        at(v, NOW).read_blob(grant, identity_blob)
     with pytest.raises(PolicyRefusal, match="grant-expired"):
-        v.read_blob(grant, blobs[groups["all"][0]], now=NOW + dt.timedelta(hours=1))
+        at(v, NOW + dt.timedelta(hours=1)).read_blob(grant, blobs[groups["all"][0]])
     refusals = [e for e in v.audit_entries() if e["action"] == "access.read" and e["decision"] == "refuse"]
     assert {tuple(e["reasons"]) for e in refusals} == {
         ("participant-not-in-grant",), ("category-not-in-grant",), ("grant-expired",)}
@@ -77,7 +78,7 @@ def test_reads_outside_the_grant_are_refused_and_audited(cohort) -> None:
 def test_withdrawal_takes_effect_at_the_door_even_for_an_earlier_grant(cohort) -> None:
     v, groups, blobs = cohort
     pid = groups["all"][0]
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    grant = at(v, NOW).authorize("primary-analysis", ["eeg-raw"])
     assert pid in grant.participants
     later = NOW + dt.timedelta(minutes=5)
     text = form("consent-all-granted.toml", "all0").decode()
@@ -85,11 +86,11 @@ def test_withdrawal_takes_effect_at_the_door_even_for_an_earlier_grant(cohort) -
     assert text.index(old) > text.index("[purposes.primary-analysis]")  # first: primary analysis
     withdrawn = text.replace(old, 'granted = []\nrefused = ["eeg-raw", "scores-derived", '
                              '"ratings-explicit", "demographics"]', 1).replace("explicit = true", "", 1)
-    v.amend_consent(pid, withdrawn.encode(), now=later)
+    at(v, later).amend_consent(pid, withdrawn.encode())
     with pytest.raises(PolicyRefusal, match="consent-withdrawn"):
-        v.read_blob(grant, blobs[pid], now=later)
+        at(v, later).read_blob(grant, blobs[pid])
     other = groups["all"][1]
-    assert b"".join(v.read_blob(grant, blobs[other], now=later)).startswith(b"EEG-OF-")
+    assert b"".join(at(v, later).read_blob(grant, blobs[other])).startswith(b"EEG-OF-")
 
 
 def _withdrawn_form(code: str) -> bytes:
@@ -106,37 +107,17 @@ def _counting_loads(v: Vault) -> list[int]:
     return calls
 
 
-def test_a_read_at_the_grants_instant_re_decides_after_any_change(cohort) -> None:
-    # the one shortcut (nothing written since the grant, same instant) must not hide a withdrawal
-    # recorded at that very instant
+def test_every_read_decides_again_even_at_the_grants_own_instant(cohort) -> None:
+    # there is no shortcut: a withdrawal recorded at the very instant of the grant bites
     v, groups, blobs = cohort
     pid, other = groups["all"][:2]
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+    grant = at(v, NOW).authorize("primary-analysis", ["eeg-raw"])
     loads = _counting_loads(v)
-    assert b"".join(v.read_blob(grant, blobs[other], now=NOW)).startswith(b"EEG-OF-")
-    assert loads == []  # unchanged database, same instant: the minting decision stands
-    v.read_blob(grant, blobs[other], now=NOW + dt.timedelta(seconds=1))
-    assert loads == [1]  # another instant: decided again
-    v.amend_consent(pid, _withdrawn_form("all0"), now=NOW)
+    assert b"".join(at(v, NOW).read_blob(grant, blobs[other])).startswith(b"EEG-OF-")
+    assert loads == [1]  # the read loaded consent and decided, at the grant's own instant
+    at(v, NOW).amend_consent(pid, _withdrawn_form("all0"))
     with pytest.raises(PolicyRefusal, match="consent-withdrawn"):
-        v.read_blob(grant, blobs[pid], now=NOW)
-
-
-def test_a_write_by_another_connection_also_forces_a_new_decision(cohort) -> None:
-    # another process commits anything between the grant and a read at the same instant: the
-    # engine cannot know what changed, so it loads consent and decides again
-    import sqlite3
-
-    v, groups, blobs = cohort
-    pid = groups["all"][0]
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
-    loads = _counting_loads(v)
-    other = sqlite3.connect(v.path / "vault.db")
-    with other:
-        other.execute("CREATE TABLE scratch (x)")
-    other.close()
-    assert b"".join(v.read_blob(grant, blobs[pid], now=NOW)).startswith(b"EEG-OF-")
-    assert loads == [1]
+        at(v, NOW).read_blob(grant, blobs[pid])
 
 
 def test_no_grant_no_data(cohort) -> None:
@@ -145,12 +126,14 @@ def test_no_grant_no_data(cohort) -> None:
     key = v._keys.participant_key(v._conn, pid)
     for fake in (None, object(), "grant", {"purpose": "primary-analysis"}):
         with pytest.raises(PolicyRefusal):
-            v.read_blob(fake, blobs[pid], now=NOW)  # type: ignore[arg-type]
+            at(v, NOW).read_blob(fake, blobs[pid])  # type: ignore[arg-type]
         with pytest.raises(PolicyRefusal):
-            v._store.plaintext(fake, key, pid, blobs[pid], "eeg-raw", now=NOW)  # type: ignore[arg-type]
+            v._store.plaintext(fake, key, pid, blobs[pid], "eeg-raw")  # type: ignore[arg-type]
     with pytest.raises(PolicyRefusal, match="only by the policy engine"):
-        Grant(object(), engine=v._engine, decision=None, grant_id="g-forged")  # type: ignore[arg-type]
-    grant = v.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+        Grant(object(), engine=v._engine, grant_id="g-forged")
+    with pytest.raises(PolicyRefusal, match="only by the policy engine"):
+        Admission(object(), None, frozenset({(pid, "eeg-raw")}))  # type: ignore[arg-type]
+    grant = at(v, NOW).authorize("primary-analysis", ["eeg-raw"])
     for clone in (pickle.dumps, copy.copy, copy.deepcopy):
         with pytest.raises(TypeError):
             clone(grant)
@@ -160,15 +143,15 @@ def test_a_grant_from_another_vault_is_not_valid_here(cohort, tmp_path: Path) ->
     v, groups, blobs = cohort
     with Vault.init(tmp_path / "other", TEST_PASSPHRASE) as other:
         _enrol_cohort(other, 6)
-        foreign = other.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+        foreign = at(other, NOW).authorize("primary-analysis", ["eeg-raw"])
         with pytest.raises(PolicyRefusal):
-            v.read_blob(foreign, blobs[groups["all"][0]], now=NOW)
+            at(v, NOW).read_blob(foreign, blobs[groups["all"][0]])
 
 
 def test_refusals_are_counted_not_named_and_cohort_minimum_holds(cohort) -> None:
     v, groups, _ = cohort
     with pytest.raises(PolicyRefusal) as err:
-        v.authorize("recommender-training", ["scores-derived"], now=NOW)  # minimum cohort 20
+        at(v, NOW).authorize("recommender-training", ["scores-derived"])  # minimum cohort 20
     message = str(err.value)
     assert "cohort-too-small" in message and "consent-refused: 2" in message
     assert not any(pid in message for pids in groups.values() for pid in pids)
@@ -179,40 +162,37 @@ def test_refusals_are_counted_not_named_and_cohort_minimum_holds(cohort) -> None
 
 def test_auditor_and_analyst_roles(cohort, vault_path: Path) -> None:
     v, groups, blobs = cohort
-    v.add_member("ines", "auditor", "auditor passphrase long enough", now=NOW)
-    v.add_member("omar", "analyst", "analyst passphrase long enough", now=NOW)
+    at(v, NOW).add_member("ines", "auditor", "auditor passphrase long enough")
+    at(v, NOW).add_member("omar", "analyst", "analyst passphrase long enough")
     v.close()
-    with Vault.open(vault_path, "auditor passphrase long enough", member="ines") as auditor:
-        with pytest.raises(PolicyRefusal, match="role-not-allowed"):
-            auditor.authorize("primary-analysis", ["eeg-raw"], now=NOW)
-        with pytest.raises(PolicyRefusal, match="stewards only"):
-            auditor.enrol(form("consent-all-granted.toml", "x"), now=NOW)
+    with pytest.raises(PolicyRefusal, match="holds no key to participant data"):
+        Vault.open(vault_path, "auditor passphrase long enough", member="ines")
     with Vault.open(vault_path, "analyst passphrase long enough", member="omar") as analyst:
-        grant = analyst.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+        grant = at(analyst, NOW).authorize("primary-analysis", ["eeg-raw"])
         pid = groups["all"][1]
-        assert b"".join(analyst.read_blob(grant, blobs[pid], now=NOW)).startswith(b"EEG-OF-")
+        assert b"".join(at(analyst, NOW).read_blob(grant, blobs[pid])).startswith(b"EEG-OF-")
     with Vault.open(vault_path, TEST_PASSPHRASE) as steward:
-        steward.remove_member("omar", now=NOW)
+        at(steward, NOW).remove_member("omar")
         with pytest.raises(Conflict, match="last steward"):
-            steward.remove_member("steward", now=NOW)
+            at(steward, NOW).remove_member("steward")
     with pytest.raises(AuthenticationFailed):
         Vault.open(vault_path, "analyst passphrase long enough", member="omar")
-    Vault.open(vault_path, "auditor passphrase long enough", member="ines").close()
+    assert read_audit_log(vault_path, "auditor passphrase long enough", member="ines")
 
 
 def test_identity_goes_only_into_ciphertext(vault_path: Path) -> None:
     with Vault.init(vault_path, TEST_PASSPHRASE) as v:
-        v.enrol((EXAMPLES / "consent-all-granted.toml").read_bytes(), now=NOW)
+        at(v, NOW).enrol((EXAMPLES / "consent-all-granted.toml").read_bytes())
         assert_absent(vault_path, b"Maren Ashcombe", b"maren.ashcombe", b"900001", b"TL-001")
     assert_absent(vault_path, b"Maren Ashcombe", b"maren.ashcombe", b"900001", b"TL-001")
 
 
 def test_duplicate_and_mismatched_forms(fresh_vault: Vault) -> None:
-    first = fresh_vault.enrol(form("consent-all-granted.toml", "dup"), now=NOW)["participant_id"]
+    first = at(fresh_vault, NOW).enrol(form("consent-all-granted.toml", "dup"))["participant_id"]
     with pytest.raises(Conflict):
-        fresh_vault.enrol(form("consent-all-granted.toml", "dup"), now=NOW)
+        at(fresh_vault, NOW).enrol(form("consent-all-granted.toml", "dup"))
     with pytest.raises(InvalidInput, match=r"participant\.code"):
-        fresh_vault.amend_consent(first, form("consent-no-external.toml", "someone-else"), now=NOW)
+        at(fresh_vault, NOW).amend_consent(first, form("consent-no-external.toml", "someone-else"))
 
 
 @pytest.mark.parametrize("mutation", [
@@ -230,7 +210,7 @@ def test_malformed_forms_change_nothing(vault_path: Path, mutation: tuple[str, s
     before = _snapshot(vault_path)
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
         with pytest.raises(InvalidInput) as err:
-            v.enrol(good.replace(mutation[0], mutation[1], 1).encode(), now=NOW)
+            at(v, NOW).enrol(good.replace(mutation[0], mutation[1], 1).encode())
         assert "\n" not in str(err.value) and "Maren" not in str(err.value)
     after = _snapshot(vault_path)
     assert after == before
@@ -239,10 +219,10 @@ def test_malformed_forms_change_nothing(vault_path: Path, mutation: tuple[str, s
 def test_consent_history_is_append_only_and_chained(fresh_vault: Vault) -> None:
     import sqlite3
 
-    pid = fresh_vault.enrol(form("consent-all-granted.toml", "h"), now=NOW)["participant_id"]
+    pid = at(fresh_vault, NOW).enrol(form("consent-all-granted.toml", "h"))["participant_id"]
     amended = (EXAMPLES / "amend-withdraw-recommender.toml").read_text()
     amended = amended.replace('code = "TL-', 'code = "h-', 1)
-    fresh_vault.amend_consent(pid, amended.encode(), now=NOW + dt.timedelta(days=1))
+    at(fresh_vault, NOW + dt.timedelta(days=1)).amend_consent(pid, amended.encode())
     history = fresh_vault.consent_history(pid)
     assert [h["number"] for h in history] == [1, 2]
     assert history[1]["previous_digest"] == history[0]["digest"]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 
+from tests.clock import at
 from tests.conftest import ROOT
 from vault import Vault
 from vault.report import to_markdown
@@ -16,9 +17,9 @@ NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
 def test_record_counts_consent_and_names_nobody(fresh_vault: Vault) -> None:
     pids = []
     for name in ("all-granted", "no-recommender", "expired", "no-external"):
-        pids.append(fresh_vault.enrol((EXAMPLES / f"consent-{name}.toml").read_bytes(), now=NOW)
+        pids.append(at(fresh_vault, NOW).enrol((EXAMPLES / f"consent-{name}.toml").read_bytes())
                     ["participant_id"])
-    record = fresh_vault.report(now=NOW)
+    record = at(fresh_vault, NOW).report()
     purposes = {p["purpose"]: p for p in record["purposes"]}
     # hand-counted from the four example forms (docs/examples/README.md)
     assert purposes["recommender-training"]["participants_with_consent_now"] == 2

@@ -31,7 +31,7 @@ def test_wrong_passphrase_is_refused_and_changes_nothing(vault_path: Path) -> No
 
 def test_kdf_parameters_meet_rfc9106_second_option(vault_path: Path) -> None:
     with Vault.init(vault_path, TEST_PASSPHRASE) as v:
-        kdf = json.loads(v._conn.execute("SELECT kdf FROM keyslots").fetchone()[0])
+        kdf = json.loads(v._conn.execute("SELECT kdf FROM keyslots").fetchone()[0])["kdf"]
     # RFC 9106 section 4, second recommended option: t=3, p=4, m=2^16 KiB, 128-bit salt
     assert kdf["algorithm"] == "argon2id"
     assert kdf["iterations"] >= 3 and kdf["memory_kib"] >= 65536 and kdf["lanes"] == 4

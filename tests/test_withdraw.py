@@ -37,6 +37,7 @@ from cryptography.hazmat.primitives.keywrap import InvalidUnwrap, aes_key_unwrap
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from tests.clock import ManualClock, at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
 from vault import (
     Conflict,
@@ -81,41 +82,41 @@ def _form(name: str, code: str, *, person: tuple[bytes, bytes, bytes] | None = N
 
 def _grant_blobs(v: Vault, pid: str) -> dict[str, bytes]:
     """Plaintext of every eeg-raw blob of `pid`, read through the one door."""
-    grant = v.authorize("method-development", ["eeg-raw"], now=NOW, cohort=False,
+    grant = at(v, NOW)._authorize_release("method-development", ["eeg-raw"], cohort=False,
                         participants=(pid,))
-    return {b["blob_id"]: b"".join(v.read_blob(grant, b["blob_id"], now=NOW))
+    return {b["blob_id"]: b"".join(at(v, NOW).read_blob(grant, b["blob_id"]))
             for b in v.blobs(pid) if b["kind"] == "eeg-raw"}
 
 
 def _export(v: Vault, purpose: str, categories: list[str], members: list[str], **options: Any
             ) -> dict[str, Any]:
-    grant = v.authorize(purpose, categories, now=NOW, **options)
+    grant = at(v, NOW)._authorize_release(purpose, categories, **options)
     chosen = [p for p in members if p in grant.participants]
-    return exports.sign_and_record(v, export_id=exports.new_export_id(), kind="aggregate",
+    return exports.sign_and_record(at(v, NOW), export_id=exports.new_export_id(), kind="aggregate",
                                    grant=grant, members=exports.pseudonyms(v, purpose, chosen),
-                                   body={}, now=NOW)
+                                   body={})
 
 
 def _build_lab(path: Path) -> dict[str, Any]:
     """22 invented participants, one of them (T) with a recording, blobs, scores and exports."""
-    with Vault.init(path, TEST_PASSPHRASE, now=NOW) as v:
-        t = v.enrol(_form("consent-all-granted.toml", T_CODE.decode(),
-                          person=(T_NAME, T_MAIL, T_PHONE)), now=NOW)["participant_id"]
-        others = [v.enrol(_form("consent-all-granted.toml", f"P{i:02d}",
+    with Vault.init(path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        t = at(v, NOW).enrol(_form("consent-all-granted.toml", T_CODE.decode(),
+                          person=(T_NAME, T_MAIL, T_PHONE)))["participant_id"]
+        others = [at(v, NOW).enrol(_form("consent-all-granted.toml", f"P{i:02d}",
                                 person=(b"Maren Ashcombe%d" % i, b"m%d@mail.northfield.example" % i,
-                                        b"+44 7700 9001%02d" % i)), now=NOW)["participant_id"]
+                                        b"+44 7700 9001%02d" % i)))["participant_id"]
                   for i in range(20)]
-        no_rec = v.enrol(_form("consent-no-recommender.toml", "NR"), now=NOW)["participant_id"]
-        expired = v.enrol(_form("consent-expired.toml", "EX"), now=NOW)["participant_id"]
-        v.ingest_eeg(t, PYEDFLIB_DATA / "test_subsecond.edf", now=NOW)
-        v.put_blob(t, "eeg-raw", [MARKER * 300, os.urandom(20000), MARKER], now=NOW)
+        no_rec = at(v, NOW).enrol(_form("consent-no-recommender.toml", "NR"))["participant_id"]
+        expired = at(v, NOW).enrol(_form("consent-expired.toml", "EX"))["participant_id"]
+        at(v, NOW).ingest_eeg(t, PYEDFLIB_DATA / "test_subsecond.edf")
+        at(v, NOW).put_blob(t, "eeg-raw", [MARKER * 300, os.urandom(20000), MARKER])
         for pid in [*others, no_rec, expired]:
-            v.put_blob(pid, "eeg-raw", [f"EEG-OF-{pid}".encode() * 50], now=NOW)
+            at(v, NOW).put_blob(pid, "eeg-raw", [f"EEG-OF-{pid}".encode() * 50])
         csv = path.parent / f"{path.name}-scores.csv"
         for kind, values in (("derived", ("0.25", "-0.5")), ("explicit", ("3", "1"))):
             csv.write_text("participant_id,item_id,value\n" + "".join(
                 f"{p},dish-{i:02d},{values[i % 2]}\n" for p in (t, others[0]) for i in range(4)))
-            v.ingest_scores(csv, kind, now=NOW)
+            at(v, NOW).ingest_scores(csv, kind)
         csv.unlink()
         internal = _export(v, "primary-analysis", ["eeg-raw"], [t, *others])
         shared = _export(v, "external-sharing", ["scores-derived"], [t, *others, no_rec],
@@ -137,14 +138,14 @@ def lab(template, tmp_path: Path):
     source, facts = template
     path = tmp_path / "vault"
     shutil.copytree(source, path)
-    v = Vault.open(path, TEST_PASSPHRASE, now=NOW)
+    v = Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW))
     yield v, facts
-    v.close(now=NOW)
+    at(v, NOW).close()
 
 
 def _withdraw(v: Vault, pid: str, scope: str = "full", *, now: dt.datetime = NOW) -> dict[str, Any]:
-    withdraw.request_withdrawal(v, pid, received=RECEIVED, scope=scope, now=now)
-    return withdraw.process(v, pid, now=now)
+    withdraw.request_withdrawal(at(v, now), pid, received=RECEIVED, scope=scope)
+    return withdraw.process(at(v, now), pid)
 
 
 # --------------------------------------------------------------------------- outside checks
@@ -213,7 +214,7 @@ def test_full_withdrawal_leaves_no_trace_in_any_byte(lab, tmp_path: Path) -> Non
     path = v.path
     old_ring = v._keys
     old_wrapped = v._conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (t,)).fetchone()[0]
-    v.rekey("a new passphrase, long enough", now=NOW)  # leaves an older wrap in freed space
+    at(v, NOW).rekey("a new passphrase, long enough")  # leaves an older wrap in freed space
     row = v._conn.execute("SELECT wrapped_key, date_offset, lab_code_tag FROM participants "
                           "WHERE pid = ?", (t,)).fetchone()
     wrapped, offset, tag = row
@@ -236,16 +237,16 @@ def test_full_withdrawal_leaves_no_trace_in_any_byte(lab, tmp_path: Path) -> Non
     assert not any(f.exists() for f in blob_files)
     assert_absent(path, *needles)  # while open: DB, WAL, SHM, blobs, tmp
     kek_now, kek_before = v._keys._participant_kek(t), old_ring._participant_kek(t)
-    v.close(now=NOW)
+    at(v, NOW).close()
     assert_absent(path, *needles)
     db = (path / "vault.db").read_bytes()
     assert _unwrappable_windows(db, kek_now) == 0 and _unwrappable_windows(db, kek_before) == 0
 
-    with Vault.open(path, "a new passphrase, long enough", now=NOW) as again:
+    with Vault.open(path, "a new passphrase, long enough", clock=ManualClock(NOW)) as again:
         with pytest.raises(NotFound, match="erased"):
             again._keys.participant_key(again._conn, t)
         assert again.blobs(t) == []
-        grant = again.authorize("primary-analysis", ["eeg-raw"], now=NOW)
+        grant = at(again, NOW).authorize("primary-analysis", ["eeg-raw"])
         assert t not in grant.participants
     assert _raw_count(path, "SELECT COUNT(*) FROM participants WHERE pid = ? AND wrapped_key IS NULL "
                       "AND date_offset IS NULL AND lab_code_tag IS NULL AND erased_at IS NOT NULL", t) == 1
@@ -282,11 +283,11 @@ def test_second_withdrawal_is_a_clear_no_op_error(lab) -> None:
     t = facts["t"]
     first = _withdraw(v, t)
     size = v._audit.size
-    for attempt in (lambda: withdraw.process(v, t, now=NOW),
-                    lambda: withdraw.process(v, first["request_id"], now=NOW),
-                    lambda: withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW),
-                    lambda: withdraw.request_withdrawal(v, t, received=RECEIVED,
-                                                        scope="purpose:re-contact", now=NOW)):
+    for attempt in (lambda: withdraw.process(at(v, NOW), t),
+                    lambda: withdraw.process(at(v, NOW), first["request_id"]),
+                    lambda: withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED),
+                    lambda: withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED,
+                                                        scope="purpose:re-contact")):
         with pytest.raises(Conflict, match=r"erased|processed already|nothing"):
             attempt()
     assert v._audit.size == size
@@ -296,17 +297,18 @@ def test_second_withdrawal_is_a_clear_no_op_error(lab) -> None:
 
 def test_only_stewards_withdraw(lab) -> None:
     v, facts = lab
-    v.add_member("omar", "analyst", "analyst passphrase long enough", now=NOW)
-    v.close(now=NOW)
-    with Vault.open(v.path, "analyst passphrase long enough", member="omar", now=NOW) as analyst:
+    at(v, NOW).add_member("omar", "analyst", "analyst passphrase long enough")
+    at(v, NOW).close()
+    with Vault.open(v.path, "analyst passphrase long enough", member="omar",
+                    clock=ManualClock(NOW)) as analyst:
         with pytest.raises(PolicyRefusal, match="stewards only"):
-            withdraw.request_withdrawal(analyst, facts["t"], received=RECEIVED, now=NOW)
+            withdraw.request_withdrawal(at(analyst, NOW), facts["t"], received=RECEIVED)
         with pytest.raises(PolicyRefusal, match="stewards only"):
-            withdraw.sweep(analyst, now=NOW)
+            withdraw.sweep(at(analyst, NOW))
 
 
 def test_a_participant_without_consent_or_data_can_be_erased(fresh_vault: Vault) -> None:
-    pid = fresh_vault.new_participant(now=NOW)
+    pid = at(fresh_vault, NOW).new_participant()
     result = _withdraw(fresh_vault, pid)
     assert result["blobs_deleted"] == 0 and result["stage"] == "nothing-stored"
     assert result["receipt"]["body"]["consent"] is None
@@ -385,7 +387,7 @@ def one_receipt(template, tmp_path_factory: pytest.TempPathFactory) -> tuple[dic
     source, facts = template
     path = tmp_path_factory.mktemp("receipt") / "vault"
     shutil.copytree(source, path)
-    with Vault.open(path, TEST_PASSPHRASE, now=NOW) as v:
+    with Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
         doc = _withdraw(v, facts["t"])["receipt"]
         return doc, v.public_key
 
@@ -475,14 +477,14 @@ def test_erased_files_can_be_reclaimed_later_or_at_the_next_open(lab) -> None:
     v, facts = lab
     t = facts["t"]
     blob_ids = [b["blob_id"] for b in v.blobs(t)]
-    withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW)
-    result = withdraw.process(v, t, now=NOW, reclaim_space=False)
+    withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
+    result = withdraw.process(at(v, NOW), t, reclaim_space=False)
     assert "files_unlinked" not in result
     assert not any(v._store.path(b).exists() for b in blob_ids)  # out of the store at once
     trash = sorted(p.name for p in (v.path / "tmp").iterdir())
     assert trash == sorted(b + withdraw.TRASH_SUFFIX for b in blob_ids)
-    v.close(now=NOW)
-    Vault.open(v.path, TEST_PASSPHRASE, now=NOW).close(now=NOW)  # the store's recovery at open
+    at(v, NOW).close()
+    Vault.open(v.path, TEST_PASSPHRASE, clock=ManualClock(NOW)).close()  # the store's recovery at open
     assert list((v.path / "tmp").iterdir()) == []
 
 
@@ -520,8 +522,7 @@ def test_withdrawing_a_purpose_others_still_cover_deletes_nothing(lab) -> None:
     assert receipt.verify_receipt(result["receipt"], v.public_key) == (True, [])
     assert result["notify"] == []  # no export of recommender training held them
     assert _grant_blobs(v, t)  # still readable for the purposes still granted
-    decision = v.access_check("recommender-training", ["scores-derived"], now=NOW, cohort=False,
-                              participants=(t,))
+    decision = at(v, NOW).access_check("recommender-training", ["scores-derived"], participants=(t,))
     assert [r.value for r in decision.decisions[t].reasons] == ["consent-withdrawn"]
 
 
@@ -554,20 +555,20 @@ def test_purpose_withdrawals_delete_a_category_once_nothing_grants_it(lab) -> No
     assert {e["purpose"] for e in last["notify"]} == {"primary-analysis"}
     assert _withdraw(v, t, "purpose:re-contact")["blobs_deleted"] == 1  # the identity record
     assert v.blobs(t) == [] and v._keys.participant_key(v._conn, t)  # nothing left, key still there
-    assert t in withdraw.sweep(v, now=NOW, dry_run=True)["no_purpose_permits"]  # for the steward
+    assert t in withdraw.sweep(at(v, NOW), dry_run=True)["no_purpose_permits"]  # for the steward
 
 
 def test_purpose_scopes_that_do_not_fit_the_consent_are_refused(lab) -> None:
     v, facts = lab
     t = facts["t"]
     with pytest.raises(InvalidInput, match="only through recommender-training"):
-        withdraw.request_withdrawal(v, t, received=RECEIVED,
-                                    scope="purpose:recommender-training/canteen-menu", now=NOW)
+        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED,
+                                    scope="purpose:recommender-training/canteen-menu")
     with pytest.raises(InvalidInput, match="does not answer"):
-        withdraw.request_withdrawal(v, t, received=RECEIVED, scope="purpose:mind-reading", now=NOW)
+        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:mind-reading")
     for bad in ("everything", "purpose:", "purpose:Bad Id", "full "):
         with pytest.raises(UsageError):
-            withdraw.request_withdrawal(v, t, received=RECEIVED, scope=bad, now=NOW)
+            withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope=bad)
 
 
 # --------------------------------------------------------------------------- requests
@@ -576,7 +577,7 @@ def test_purpose_scopes_that_do_not_fit_the_consent_are_refused(lab) -> None:
 def test_deadline_comes_from_the_policy_and_pending_lists_overdue_first(lab, tmp_path: Path) -> None:
     v, facts = lab
     a, b, c = facts["others"][:3]
-    late = withdraw.request_withdrawal(v, a, received=dt.date(2026, 5, 1), now=NOW)
+    late = withdraw.request_withdrawal(at(v, NOW), a, received=dt.date(2026, 5, 1))
     assert late["deadline"] == "2026-05-31" and late["days_left"] < 0  # 30 days: GDPR Art. 12(3)
     policy = tmp_path / "policy"
     shutil.copytree(ROOT / "policies", policy)
@@ -584,17 +585,16 @@ def test_deadline_comes_from_the_policy_and_pending_lists_overdue_first(lab, tmp
     assert "withdrawal_deadline_days = 30" in text
     (policy / "policy.toml").write_text(text.replace("withdrawal_deadline_days = 30",
                                                      "withdrawal_deadline_days = 10"))
-    v.apply_policy(policy, now=NOW)
-    soon = withdraw.request_withdrawal(v, b, received=dt.date(2026, 6, 14), now=NOW)
+    at(v, NOW).apply_policy(policy)
+    soon = withdraw.request_withdrawal(at(v, NOW), b, received=dt.date(2026, 6, 14))
     assert soon["deadline"] == "2026-06-24"
-    mid = withdraw.request_withdrawal(v, c, received=dt.date(2026, 6, 1), scope="purpose:re-contact",
-                                      now=NOW)
-    listed = withdraw.pending(v, now=NOW)
+    mid = withdraw.request_withdrawal(at(v, NOW), c, received=dt.date(2026, 6, 1), scope="purpose:re-contact")
+    listed = withdraw.pending(at(v, NOW))
     assert [r["request_id"] for r in listed] == [late["request_id"], mid["request_id"], soon["request_id"]]
     assert [r["overdue"] for r in listed] == [True, True, False]
-    done = withdraw.process(v, mid["request_id"], now=NOW)
+    done = withdraw.process(at(v, NOW), mid["request_id"])
     assert not done["on_time"]
-    assert [r["request_id"] for r in withdraw.pending(v, now=NOW)] == [late["request_id"], soon["request_id"]]
+    assert [r["request_id"] for r in withdraw.pending(at(v, NOW))] == [late["request_id"], soon["request_id"]]
 
 
 def test_bad_requests_change_nothing(lab) -> None:
@@ -602,33 +602,33 @@ def test_bad_requests_change_nothing(lab) -> None:
     t = facts["t"]
     size = v._audit.size
     with pytest.raises(UsageError, match="future"):
-        withdraw.request_withdrawal(v, t, received=dt.date(2026, 7, 1), now=NOW)
+        withdraw.request_withdrawal(at(v, NOW), t, received=dt.date(2026, 7, 1))
     with pytest.raises(UsageError, match="date"):
-        withdraw.request_withdrawal(v, t, received=NOW, now=NOW)  # type: ignore[arg-type]
+        withdraw.request_withdrawal(at(v, NOW), t, received=NOW)  # type: ignore[arg-type]
     with pytest.raises(NotFound):
-        withdraw.request_withdrawal(v, "0" * 32, received=RECEIVED, now=NOW)
+        withdraw.request_withdrawal(at(v, NOW), "0" * 32, received=RECEIVED)
     with pytest.raises(NotFound, match="no open withdrawal request"):
-        withdraw.process(v, t, now=NOW)
+        withdraw.process(at(v, NOW), t)
     with pytest.raises(NotFound):
-        withdraw.process(v, "w-0000000000000000", now=NOW)
+        withdraw.process(at(v, NOW), "w-0000000000000000")
     assert v._audit.size == size
-    first = withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW)
+    first = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
     with pytest.raises(Conflict, match=first["request_id"]):
-        withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW)
+        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
 
 
 def test_a_full_withdrawal_supersedes_open_purpose_requests(lab) -> None:
     v, facts = lab
     t = facts["t"]
-    purpose = withdraw.request_withdrawal(v, t, received=RECEIVED, scope="purpose:re-contact", now=NOW)
+    purpose = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:re-contact")
     with pytest.raises(UsageError, match="several open requests"):
-        withdraw.request_withdrawal(v, t, received=RECEIVED, scope="purpose:external-sharing", now=NOW)
-        withdraw.process(v, t, now=NOW)
-    full = withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW)
-    result = withdraw.process(v, t, now=NOW)  # the full request wins
+        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:external-sharing")
+        withdraw.process(at(v, NOW), t)
+    full = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
+    result = withdraw.process(at(v, NOW), t)  # the full request wins
     assert result["request_id"] == full["request_id"]
     assert purpose["request_id"] in result["superseded_requests"]
-    assert withdraw.pending(v, now=NOW) == []
+    assert withdraw.pending(at(v, NOW)) == []
 
 
 # --------------------------------------------------------------------------- recall
@@ -638,17 +638,17 @@ def test_withdrawal_lists_the_exports_to_recall_and_export_check_sees_it(lab) ->
     v, facts = lab
     manifests = facts["manifests"]
     for name in ("internal", "shared", "without_t"):
-        assert not v.check_export(manifests[name], now=NOW)["must_replace"], name
+        assert not at(v, NOW).check_export(manifests[name])["must_replace"], name
     result = _withdraw(v, facts["t"])
     assert {(e["export_id"], e["recipient"]) for e in result["notify"]} == {
         (manifests["internal"]["body"]["export_id"], "internal"),
         (manifests["shared"]["body"]["export_id"], RECIPIENT)}
     for name in ("internal", "shared"):
-        check = v.check_export(manifests[name], now=NOW)
+        check = at(v, NOW).check_export(manifests[name])
         assert check["must_replace"] and check["withdrawn_or_erased"] == 1
         assert check["consent_no_longer_covers"] == 0
         assert facts["t"] not in json.dumps(check)  # counts, never who
-    assert not v.check_export(manifests["without_t"], now=NOW)["must_replace"]
+    assert not at(v, NOW).check_export(manifests["without_t"])["must_replace"]
 
 
 def test_export_check_after_a_purpose_withdrawal(lab) -> None:
@@ -656,10 +656,10 @@ def test_export_check_after_a_purpose_withdrawal(lab) -> None:
     manifests = facts["manifests"]
     result = _withdraw(v, facts["others"][0], "purpose:external-sharing")
     assert [e["recipient"] for e in result["notify"]] == [RECIPIENT]
-    check = v.check_export(manifests["shared"], now=NOW)
+    check = at(v, NOW).check_export(manifests["shared"])
     assert check["must_replace"] and check["consent_no_longer_covers"] == 1
     assert check["withdrawn_or_erased"] == 0
-    assert not v.check_export(manifests["internal"], now=NOW)["must_replace"]
+    assert not at(v, NOW).check_export(manifests["internal"])["must_replace"]
 
 
 def test_export_check_of_a_narrower_purpose_uses_the_consent_for_its_parent(lab) -> None:
@@ -667,7 +667,7 @@ def test_export_check_of_a_narrower_purpose_uses_the_consent_for_its_parent(lab)
     members = [facts["t"], *facts["others"]]
     doc = _export(v, "recommender-training/canteen-menu", ["scores-derived"], members, export=True,
                   epsilon=0.5, budget_remaining=dict.fromkeys(members, 3.0))
-    assert not v.check_export(doc, now=NOW)["must_replace"]  # a fresh export still stands
+    assert not at(v, NOW).check_export(doc)["must_replace"]  # a fresh export still stands
 
 
 # --------------------------------------------------------------------------- retention
@@ -676,18 +676,18 @@ def test_export_check_of_a_narrower_purpose_uses_the_consent_for_its_parent(lab)
 def test_sweep_erases_ended_consent_with_receipts_and_is_idempotent(lab) -> None:
     v, facts = lab
     expired = facts["expired"]
-    dry = withdraw.sweep(v, now=NOW, dry_run=True)
+    dry = withdraw.sweep(at(v, NOW), dry_run=True)
     assert dry["would_erase"] == [{"participant_id": expired, "trigger": "consent-expired"}]
     assert not v._conn.execute("SELECT erased_at FROM participants WHERE pid = ?", (expired,)).fetchone()[0]
     files = [v._store.path(b["blob_id"]) for b in v.blobs(expired)]
-    report = withdraw.sweep(v, now=NOW)
+    report = withdraw.sweep(at(v, NOW))
     assert [e["participant_id"] for e in report["erased"]] == [expired] and report["wal_truncated"]
     assert not any(f.exists() for f in files) and v.blobs(expired) == []
     doc = withdraw.receipt_of(v, expired)
     assert doc["body"]["trigger"] == "consent-expired" and doc["body"]["consent"]["change"].startswith("none")
     assert receipt.verify_receipt(doc, v.public_key) == (True, [])
-    assert withdraw.sweep(v, now=NOW)["erased"] == []
-    later = withdraw.sweep(v, now=dt.datetime(2031, 3, 5, tzinfo=dt.UTC), dry_run=True)
+    assert withdraw.sweep(at(v, NOW))["erased"] == []
+    later = withdraw.sweep(at(v, dt.datetime(2031, 3, 5, tzinfo=dt.UTC)), dry_run=True)
     assert len(later["would_erase"]) == 22  # everyone else's retention ended on 2031-03-02 / 04
     assert {w["trigger"] for w in later["would_erase"]} == {"retention-ended", "consent-expired"}
     erases = [e for e in v.audit_entries() if e["action"] == "withdraw.erase"]
@@ -696,6 +696,7 @@ def test_sweep_erases_ended_consent_with_receipts_and_is_idempotent(lab) -> None
 
 _SWEEPER = """
 import datetime as dt, fcntl, json, os, sys
+from tests.clock import ManualClock
 from tests.conftest import TEST_PASSPHRASE
 from vault import Vault, withdraw
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
@@ -707,8 +708,8 @@ except BlockingIOError:
     blocked = True
 os.close(fd)
 print("tried", flush=True)
-with Vault.open(sys.argv[1], TEST_PASSPHRASE, now=NOW) as v:  # waits for the lock
-    print(json.dumps({"blocked": blocked, "erased": len(withdraw.sweep(v, now=NOW)["erased"])}))
+with Vault.open(sys.argv[1], TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:  # waits for the lock
+    print(json.dumps({"blocked": blocked, "erased": len(withdraw.sweep(v)["erased"])}))
 """
 
 
@@ -716,19 +717,19 @@ def test_a_concurrent_sweep_waits_for_the_lock_and_then_finds_nothing(template, 
     source, facts = template
     path = tmp_path / "vault"
     shutil.copytree(source, path)
-    v = Vault.open(path, TEST_PASSPHRASE, now=NOW)
+    v = Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW))
     with subprocess.Popen([sys.executable, "-c", _SWEEPER, str(path)], cwd=ROOT, stdout=subprocess.PIPE,
                           stderr=subprocess.PIPE, env={**os.environ, "PYTHONPATH": str(ROOT)}) as child:
         assert child.stdout is not None
         assert child.stdout.readline().strip() == b"tried"
         time.sleep(0.2)  # the child now waits for the vault's lock
-        assert len(withdraw.sweep(v, now=NOW)["erased"]) == 1
-        v.close(now=NOW)
+        assert len(withdraw.sweep(at(v, NOW))["erased"]) == 1
+        at(v, NOW).close()
         out, err = child.communicate(timeout=60)
     assert child.returncode == 0, err
     second = json.loads(out)
     assert second == {"blocked": True, "erased": 0}
-    with Vault.open(path, TEST_PASSPHRASE, now=NOW) as again:
+    with Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as again:
         erases = [e for e in again.audit_entries() if e["action"] == "withdraw.erase"]
         assert [e["subjects"] for e in erases] == [[facts["expired"]]]
 
@@ -741,13 +742,13 @@ RUNS = 52
 @pytest.fixture(scope="module")
 def crash_template(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str, list[str], bytes]:
     path = tmp_path_factory.mktemp("crash") / "vault"
-    with Vault.init(path, TEST_PASSPHRASE, now=NOW) as v:
-        t = v.enrol(_form("consent-all-granted.toml", "K"), now=NOW)["participant_id"]
-        other = v.enrol(_form("consent-all-granted.toml", "L"), now=NOW)["participant_id"]
+    with Vault.init(path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        t = at(v, NOW).enrol(_form("consent-all-granted.toml", "K"))["participant_id"]
+        other = at(v, NOW).enrol(_form("consent-all-granted.toml", "L"))["participant_id"]
         for i in range(8):
-            v.put_blob(t, "eeg-raw", [MARKER + bytes([i]) * 5000], now=NOW)
-        v.put_blob(other, "eeg-raw", [b"EEG-OF-OTHER" * 100], now=NOW)
-        withdraw.request_withdrawal(v, t, received=RECEIVED, now=NOW)
+            at(v, NOW).put_blob(t, "eeg-raw", [MARKER + bytes([i]) * 5000])
+        at(v, NOW).put_blob(other, "eeg-raw", [b"EEG-OF-OTHER" * 100])
+        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
         wrapped = v._conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (t,)).fetchone()[0]
         blobs = [b["blob_id"] for b in v.blobs(t)]
     return path, t, blobs, wrapped
@@ -760,7 +761,7 @@ def _child(path: Path, target: str, mode: str, n: int) -> subprocess.Popen[bytes
 
 
 def _check_after_kill(path: Path, t: str, blobs: list[str], wrapped: bytes) -> str:
-    with Vault.open(path, TEST_PASSPHRASE, now=NOW) as v:  # the open runs the store's recovery
+    with Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:  # the open runs the store's recovery
         erased = v._conn.execute("SELECT wrapped_key IS NULL FROM participants WHERE pid = ?",
                                  (t,)).fetchone()[0]
         status, stored = v._conn.execute("SELECT status, receipt FROM withdrawals WHERE pid = ?",
@@ -774,13 +775,13 @@ def _check_after_kill(path: Path, t: str, blobs: list[str], wrapped: bytes) -> s
             assert v.blobs(t) == [] and present == []
             assert registry.consent_history(v._conn, t)[-1].change == "withdrawn"
             with pytest.raises(Conflict):
-                withdraw.process(v, t, now=NOW)
+                withdraw.process(at(v, NOW), t)
         else:
             state = "before"
             assert status == "pending" and stored is None and erase_entries == []
             assert sorted(b["blob_id"] for b in v.blobs(t)) == sorted(blobs) and present == blobs
             assert len(_grant_blobs(v, t)) == 8 and len(v.consent_history(t)) == 1
-            withdraw.process(v, t, now=NOW)  # the rerun completes it
+            withdraw.process(at(v, NOW), t)  # the rerun completes it
             assert v.blobs(t) == [] and not any(v._store.path(b).exists() for b in blobs)
         assert v.verify()["ok"]
     assert_absent(path, wrapped, MARKER)

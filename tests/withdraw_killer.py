@@ -15,6 +15,7 @@ import os
 import signal
 import sys
 
+from tests.clock import ManualClock, at
 from tests.conftest import TEST_PASSPHRASE
 from vault import Vault, withdraw
 
@@ -22,7 +23,7 @@ NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
 
 
 def main(path: str, target: str, mode: str, n: int) -> None:
-    v = Vault.open(path, TEST_PASSPHRASE, now=NOW)
+    v = Vault.open(path, TEST_PASSPHRASE, clock=ManualClock(NOW))
     steps = [0]
 
     def step(*_: object) -> None:
@@ -49,11 +50,11 @@ def main(path: str, target: str, mode: str, n: int) -> None:
         v._conn.set_trace_callback(step)
     else:
         print("ready", flush=True)
-    withdraw.process(v, target, now=NOW)
+    withdraw.process(at(v, NOW), target)
     v._conn.set_trace_callback(None)
     if mode == "count":
         print(steps[0], flush=True)
-    v.close(now=NOW)
+    at(v, NOW).close()
 
 
 if __name__ == "__main__":

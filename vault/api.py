@@ -9,12 +9,12 @@ import re
 import shutil
 import sqlite3
 import time
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Any, Protocol
 
-from vault import audit, crypto, registry, storage
+from vault import audit, crypto, notes, registry, storage
 from vault.consent import parse_consent_form, record_consent, split_identity
 from vault.decide import CohortDecision, Request
 from vault.errors import (
@@ -25,7 +25,7 @@ from vault.errors import (
     PolicyRefusal,
     UsageError,
 )
-from vault.keys import KeyRing
+from vault.keys import KeyRing, Unlocked
 from vault.policy import Grant, PolicyEngine
 from vault.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
 from vault.store import BlobInfo, BlobStore
@@ -81,77 +81,95 @@ def _take_lock(path: Path) -> int:
             time.sleep(0.05)
 
 
+def _reads_data(policy: PolicySet) -> Callable[[str], bool]:
+    """Which roles get a key slot that opens participant data (stewards always)."""
+    return lambda role: role == "steward" or (role in policy.roles and policy.roles[role].reads_data)
+
+
 def _check_passphrase(passphrase: str) -> None:
     if len(passphrase) < 12:
         raise UsageError("choose a passphrase of at least 12 characters")
 
 
 class Vault:
-    """An unlocked vault. Open with `Vault.open`, create with `Vault.init`; close when done."""
+    """An unlocked vault. Open with `Vault.open`, create with `Vault.init`; close when done.
 
-    def __init__(self, path: Path, conn: sqlite3.Connection, keys: KeyRing, member: str,
-                 role: str, lock_fd: int, clock: Clock | None = None) -> None:
+    `member` and `role` are fixed when the vault is opened (the role is bound to the
+    member's key slot); decisions read the vault's own clock."""
+
+    def __init__(self, path: Path, conn: sqlite3.Connection, unlocked: Unlocked, member: str,
+                 lock_fd: int, clock: Clock | None = None) -> None:
+        if unlocked.ring is None:
+            raise UsageError("this member's slot opens no vault keys")
+        keys = unlocked.ring
         self.path = path
         self._clock: Clock = clock or SYSTEM_CLOCK
         self._conn = conn
         self._keys = keys
-        self.member = member
-        self.role = role
+        self._member = member
+        self._role = unlocked.role
         self._lock_fd = lock_fd
         self.vault_id = keys.vault_id
         self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
-        keys.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
         self._store = BlobStore(path, self.vault_id)
         self._audit = audit.AuditLog(conn, self.vault_id)
         self._closed = False
         self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
 
-    def _moment(self, now: datetime | None = None) -> datetime:
-        return moment(now, self._clock)
+    @property
+    def member(self) -> str:
+        return self._member
 
-    def _stamp(self, now: datetime | None = None) -> str:
-        return utc_now(self._moment(now))
+    @property
+    def role(self) -> str:
+        return self._role
+
+    def _stamp(self) -> str:
+        return utc_now(self.now())
 
     def _engine_clock_changed(self) -> None:
-        """Tests that swap the injected clock after open call this (tests/clock.py)."""
+        """Tests that swap the injected clock object after open call this (tests/clock.py)."""
 
     def now(self) -> datetime:
         """The vault's clock (the system's, or the one a test injected at open): decisions,
         deadlines and audit entries all read it; no caller chooses the time of an action."""
         return moment(None, self._clock)
 
+    @property
+    def policy(self) -> PolicySet:
+        """The pinned policy set (change it with `apply_policy`)."""
+        return self._policy
+
     def _set_policy(self, policy: PolicySet) -> None:
-        self.policy = policy
+        self._policy = policy
         self._engine = PolicyEngine(
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
-            self._database_state)
+            self.now)
 
-    def _database_state(self) -> tuple[int, int]:
-        """Changes when anything is written to the database: SQLite's data_version moves on
-        commits by other connections, the connection's change count on its own writes."""
-        return self._conn.execute("PRAGMA data_version").fetchone()[0], self._conn.total_changes
-
-    def _audit_batch(self, entries: list[dict[str, Any]], now: datetime) -> None:
+    def _audit_batch(self, entries: list[dict[str, Any]], _ignored: object = None) -> None:
+        """Append entries in their own transaction, stamped by the vault's clock (a second
+        argument, once the caller's time, is ignored until every caller drops it)."""
         with storage.transaction(self._conn):
-            self._audit.append_many(entries, self._stamp(now))
+            self._audit.append_many(entries, self._stamp())
 
     # -- lifecycle ------------------------------------------------------------------------------
 
     @classmethod
     def init(cls, path: Path, passphrase: str, *, member: str = "steward",
-             policy_dir: Path | None = None, now: datetime | None = None,
-             clock: Clock | None = None) -> Vault:
+             policy_dir: Path | None = None, clock: Clock | None = None) -> Vault:
         """Create a new vault at `path` (atomically: all of it or nothing).
 
         The policy set (the shipped default, or `policy_dir`) is validated and pinned
         in the vault; later changes go through `apply_policy`.
         """
         _check_passphrase(passphrase)
+        if not _MEMBER_NAME.fullmatch(member):
+            raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
         policy = load_policy_dir(Path(policy_dir)) if policy_dir else load_default_policy()
         path = Path(path)
         if path.exists() and any(path.iterdir()):
             raise Conflict(f"{path} exists and is not empty; refusing to create a vault there")
-        at = utc_now(moment(now, clock or SYSTEM_CLOCK))
+        at = utc_now(moment(None, clock or SYSTEM_CLOCK))
         staging = path.parent / f".{path.name}.creating-{crypto.random_id(6)}"
         staging.mkdir(mode=0o700, parents=True)
         try:
@@ -162,7 +180,7 @@ class Vault:
         except BaseException:
             shutil.rmtree(staging, ignore_errors=True)
             raise
-        return cls.open(path, passphrase, member=member, now=now, clock=clock)
+        return cls.open(path, passphrase, member=member, clock=clock)
 
     @staticmethod
     def _create(root: Path, passphrase: str, member: str, at: str, policy: PolicySet) -> None:
@@ -170,6 +188,7 @@ class Vault:
         master = crypto.new_key()
         ring = KeyRing(vault_id, master)
         signing = crypto.SigningKey.generate()
+        secret = crypto.new_key()
         conn = storage.connect(root)
         try:
             storage.create_schema(conn)
@@ -179,24 +198,30 @@ class Vault:
                     "vault_id": vault_id, "schema_version": str(storage.SCHEMA_VERSION),
                     "created_at": at, "signing_public_key": signing.public_key.hex(),
                     "wrapped_signing_key": ring.wrap_signing_key(signing).hex(),
-                    "wrapped_vault_secret": ring.wrap_secret(crypto.new_key()).hex(),
+                    "wrapped_vault_secret": ring.wrap_secret(secret).hex(),
                     "policy_version": policy.version,
                 }.items():
                     storage.set_meta(conn, key, value)
+                ring.load_secret(ring.wrap_secret(secret))
                 registry.store_policy(conn, policy, at)
                 ring.add_slot(conn, member, "steward", passphrase, at)
                 log = audit.AuditLog(conn, vault_id)
                 log.append({"actor": member, "action": "vault.init", "decision": "done",
                             "details": {"fingerprint": crypto.fingerprint(signing.public_key),
-                                        "policy_version": policy.version}}, at)
+                                        "policy_version": policy.version,
+                                        "member": member, "role": "steward"}}, at)
                 log.sign_head(signing, at)
         finally:
             conn.close()
 
     @classmethod
     def open(cls, path: Path, passphrase: str, *, member: str = "steward",
-             now: datetime | None = None, clock: Clock | None = None) -> Vault:
-        """Unlock a vault for `member`; cleans up after any interrupted write."""
+             clock: Clock | None = None) -> Vault:
+        """Unlock a vault for `member`; cleans up after any interrupted write.
+
+        Members whose role reads no participant data (auditors) hold no key that opens
+        the vault: for them this raises PolicyRefusal (recorded as their note); they use
+        `read_audit_log` and the key-free checks instead."""
         path = Path(path)
         _require_vault(path)
         lock_fd = _take_lock(path)
@@ -204,25 +229,41 @@ class Vault:
         try:
             conn = storage.connect(path)
             vault_id = _check_schema(conn)
-            keys, role = KeyRing.unlock(conn, vault_id, member, passphrase)
-            vault = cls(path, conn, keys, member, role, lock_fd, clock)
+            storage.add_missing_tables(conn)
+            policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
+            unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
+            if unlocked.ring is None:
+                notes.add(conn, vault_id, member, unlocked, "vault.open", "refuse",
+                          utc_now(moment(None, clock or SYSTEM_CLOCK)))
+                raise PolicyRefusal(
+                    f"member '{member}' ({unlocked.role}) holds no key to participant data; "
+                    "use 'mindward audit show', 'audit verify' and the other key-free checks")
+            vault = cls(path, conn, unlocked, member, lock_fd, clock)
         except BaseException:
             if conn is not None:
                 conn.close()
             os.close(lock_fd)
             raise
-        vault._recover()
+        vault._recover(upgraded=unlocked.upgraded)
         return vault
 
-    def _recover(self) -> None:
+    def _recover(self, *, upgraded: bool = False) -> None:
         from vault.withdraw import finish_interrupted
 
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
         finish_interrupted(self)  # an erasure killed between its commit and its clean-up
+        entries = notes.fold(self._conn, self.vault_id, self._keys.member_key)
+        if upgraded:
+            entries.append({"actor": self.member, "action": "member.slot-bound", "decision": "done",
+                            "details": {"member": self.member, "role": self.role}})
+        if entries:
+            with storage.transaction(self._conn):
+                self._audit.append_many(entries, self._stamp())
+                notes.clear(self._conn)
 
-    def close(self, now: datetime | None = None) -> None:
+    def close(self) -> None:
         """Sign a tree head over any new entries, then release the vault."""
         if self._closed:
             return
@@ -230,7 +271,7 @@ class Vault:
             head = self._audit.latest_head()
             if head is None or head.tree_size < self._audit.size:
                 with storage.transaction(self._conn):
-                    self._audit.sign_head(self._signing, self._stamp(now))
+                    self._audit.sign_head(self._signing, self._stamp())
         finally:
             self._closed = True
             self._conn.close()
@@ -256,10 +297,11 @@ class Vault:
 
     # -- keys -----------------------------------------------------------------------------------
 
-    def rekey(self, new_passphrase: str, *, now: datetime | None = None) -> dict[str, Any]:
+    def rekey(self, new_passphrase: str) -> dict[str, Any]:
         """New master key and new passphrase for this member; re-wraps keys, never data."""
+        self._require_steward("vault.rekey")
         _check_passphrase(new_passphrase)
-        at = self._stamp(now)
+        at = self._stamp()
         wrapped_signing = bytes.fromhex(storage.get_meta(self._conn, "wrapped_signing_key"))
         with storage.transaction(self._conn):
             others = self._conn.execute(
@@ -277,15 +319,21 @@ class Vault:
 
     # -- participants and blobs -----------------------------------------------------------------
 
-    def _require_steward(self) -> None:
+    def _require_steward(self, action: str = "steward-only") -> None:
+        """Refuse (audited) unless this member is a steward."""
         if self.role != "steward":
-            raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not do this: "
-                                "stewards only")
+            self._refuse_role(action)
 
-    def new_participant(self, *, now: datetime | None = None) -> str:
+    def _refuse_role(self, action: str) -> None:
+        self._audit_batch([{"actor": self.member, "action": action, "decision": "refuse",
+                            "reasons": ["role-not-allowed"], "details": {"role": self.role}}])
+        raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not do this: "
+                            f"{action} is for stewards only")
+
+    def new_participant(self) -> str:
         """Create a participant with a fresh data key; returns their random id."""
-        self._require_steward()
-        at = self._stamp(now)
+        self._require_steward("participant.create")
+        at = self._stamp()
         pid = crypto.random_id(16)
         key = self._keys.new_participant_key(pid)
         with storage.transaction(self._conn):
@@ -297,10 +345,10 @@ class Vault:
         return pid
 
     def put_blob(self, pid: str, kind: str, chunks: Iterable[bytes], *,
-                 now: datetime | None = None, details: dict[str, Any] | None = None) -> BlobInfo:
+                 details: dict[str, Any] | None = None) -> BlobInfo:
         """Encrypt and store a blob for `pid`: file first, then row and audit entry at once."""
-        self._require_steward()
-        at = self._stamp(now)
+        self._require_steward("blob.store")
+        at = self._stamp()
         key = self._keys.participant_key(self._conn, pid)
         blob_id = "b-" + crypto.random_id(12)
         info = self._store.write(key, pid, blob_id, kind, chunks)
@@ -321,11 +369,11 @@ class Vault:
     def describe_policy(self) -> list[str]:
         return describe_policy(self.policy)
 
-    def apply_policy(self, policy_dir: Path, *, now: datetime | None = None) -> dict[str, Any]:
+    def apply_policy(self, policy_dir: Path) -> dict[str, Any]:
         """Pin a new policy set (validated first); consent already given is not changed."""
-        self._require_steward()
+        self._require_steward("policy.apply")
         policy = load_policy_dir(Path(policy_dir))
-        at = self._stamp(now)
+        at = self._stamp()
         previous = self.policy.version
         with storage.transaction(self._conn):
             new = registry.store_policy(self._conn, policy, at)
@@ -335,14 +383,14 @@ class Vault:
         self._set_policy(policy)
         return {"version": policy.version, "previous": previous, "new": new}
 
-    def enrol(self, form: bytes, *, now: datetime | None = None) -> dict[str, Any]:
+    def enrol(self, form: bytes) -> dict[str, Any]:
         """Enrol a participant from a filled consent form (TOML bytes).
 
         Identity and contact details are stored only encrypted under the new
         participant's own key; the consent terms become version 1 under a random id.
         """
-        self._require_steward()
-        when = self._moment(now)
+        self._require_steward("participant.enrol")
+        when = self.now()
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
         tag = self._keys.lab_code_tag(identity.code)
         existing = registry.pid_for_tag(self._conn, tag)
@@ -371,10 +419,10 @@ class Vault:
             raise
         return {"participant_id": pid, **_consent_details(version)}
 
-    def amend_consent(self, pid: str, form: bytes, *, now: datetime | None = None) -> dict[str, Any]:
+    def amend_consent(self, pid: str, form: bytes) -> dict[str, Any]:
         """Add a consent version from a new filled form (a partial withdrawal is one)."""
-        self._require_steward()
-        when = self._moment(now)
+        self._require_steward("consent.amend")
+        when = self.now()
         registry.require_participant(self._conn, pid)
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
         if registry.pid_for_tag(self._conn, self._keys.lab_code_tag(identity.code)) != pid:
@@ -391,6 +439,7 @@ class Vault:
 
     def consent_history(self, pid: str) -> list[dict[str, Any]]:
         """The consent versions, oldest first (kept after erasure: they name no one)."""
+        self._require_steward("consent.show")
         if self._conn.execute("SELECT 1 FROM participants WHERE pid = ?", (pid,)).fetchone() is None:
             raise NotFound(f"no participant '{pid}'")
         return [json.loads(v.to_json()) | {"digest": v.digest}
@@ -398,103 +447,127 @@ class Vault:
 
     # -- the one door -----------------------------------------------------------------------------
 
-    def request(self, purpose: str, categories: Iterable[str], **options: Any) -> Request:
+    def request(self, purpose: str, categories: Iterable[str], *,
+                participants: Iterable[str] | None = None) -> Request:
+        """A plain read request by this member: cohort rules apply, no export options."""
         return Request(actor=self.member, role=self.role, purpose=purpose,
-                       categories=frozenset(categories), **options)
+                       categories=frozenset(categories),
+                       participants=None if participants is None else tuple(participants))
 
     def access_check(self, purpose: str, categories: Iterable[str], *,
-                     now: datetime | None = None, **options: Any) -> CohortDecision:
+                     participants: Iterable[str] | None = None) -> CohortDecision:
         """Who a request would include and why others are not; reads no data (audited)."""
-        return self._engine.decide(self.request(purpose, categories, **options), now=self._moment(now))
+        return self._engine.decide(self.request(purpose, categories, participants=participants))
 
-    def authorize(self, purpose: str, categories: Iterable[str], *, now: datetime | None = None,
-                  budget_remaining: dict[str, float] | None = None, **options: Any) -> Grant:
-        """A grant from the policy engine, or PolicyRefusal (both audited)."""
-        return self._engine.authorize(self.request(purpose, categories, **options),
-                                      now=self._moment(now), budget_remaining=budget_remaining)
+    def authorize(self, purpose: str, categories: Iterable[str], *,
+                  participants: Iterable[str] | None = None) -> Grant:
+        """A grant from the policy engine, or PolicyRefusal (both audited).
 
-    def read_blob(self, grant: Grant, blob_id: str, *, now: datetime | None = None) -> Iterator[bytes]:
+        A grant for a purpose that requires differential-privacy noise yields plaintext to
+        no caller: only the release mechanisms (`export_matrix`) read under it."""
+        return self._engine.authorize(self.request(purpose, categories, participants=participants))
+
+    def _authorize_release(self, purpose: str, categories: Iterable[str], *,
+                           budget_remaining: Mapping[str, float] | None = None,
+                           **options: Any) -> Grant:
+        """Export grants (cohort, noise, recipient rules); for the export modules only, which
+        compute `budget_remaining` from the vault's own ledger."""
+        request = Request(actor=self.member, role=self.role, purpose=purpose,
+                          categories=frozenset(categories), **options)
+        return self._engine.authorize(request, budget_remaining=budget_remaining)
+
+    def read_blob(self, grant: Grant, blob_id: str) -> Iterator[bytes]:
         """Plaintext of one blob through the one door (grant checked live, read audited)."""
-        row = self._conn.execute("SELECT pid, kind FROM blobs WHERE blob_id = ?", (blob_id,)).fetchone()
-        if row is None:
-            raise NotFound(f"no blob '{blob_id}'")
-        pid, category = row
-        when = self._moment(now)
-        key = self._keys.participant_key(self._conn, pid)
-        chunks = self._store.plaintext(grant, key, pid, blob_id, category, now=when)
-        self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
-                            "subjects": [pid], "decision": "permit",
-                            "details": {"grant": grant.grant_id, "blob": blob_id,
-                                        "category": category}}], when)
+        ((_, _, chunks),) = list(self.read_blobs(grant, [blob_id]))
         return chunks
 
-    def read_blobs(self, grant: Grant, blob_ids: list[str], *,
-                   now: datetime | None = None) -> Iterator[tuple[str, str, Iterator[bytes]]]:
+    def read_blobs(self, grant: Grant, blob_ids: list[str]) -> Iterator[tuple[str, str, Iterator[bytes]]]:
         """Many blobs through the one door: one live decision, one audit batch.
 
-        Yields (blob_id, participant id, plaintext chunks) in the order given.
-        """
-        when = self._moment(now)
+        Yields (blob_id, subject, plaintext chunks) in the order given. The subject is the
+        participant's pseudonym for the grant's purpose (stewards: their random vault id).
+        Refused for purposes that require differential-privacy noise."""
+        from vault.exports import pseudonyms
+
+        reads = self._admitted_reads(grant, blob_ids, for_noise=False)
+        names = ({pid: pid for _, pid, _ in reads} if self.role == "steward"
+                 else pseudonyms(self, grant.purpose, sorted({pid for _, pid, _ in reads})))
+        return ((blob_id, names[pid], chunks) for blob_id, pid, chunks in reads)
+
+    def _read_for_release(self, grant: Grant, blob_ids: list[str]
+                          ) -> Iterator[tuple[str, str, Iterator[bytes]]]:
+        """The release mechanisms' read: (blob_id, participant id, chunks); the plaintext
+        goes into noise or into pseudonymised files, never back to the caller."""
+        return iter(self._admitted_reads(grant, blob_ids, for_noise=True))
+
+    def _admitted_reads(self, grant: Grant, blob_ids: list[str], *, for_noise: bool
+                        ) -> list[tuple[str, str, Iterator[bytes]]]:
+        record = self._engine.record(grant)
         rows: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
             self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
         missing = [b for b in blob_ids if b not in rows]
         if missing:
             raise NotFound(f"no blob '{missing[0]}'")
-        self._engine.admit_many(grant, [rows[b] for b in blob_ids], now=when)
-        self._audit_batch([{"actor": self.member, "action": "access.read", "purpose": grant.purpose,
+        admission = self._engine.admit_many(grant, [rows[b] for b in blob_ids], for_noise=for_noise)
+        self._audit_batch([{"actor": record.request.actor, "action": "access.read",
+                            "purpose": record.request.purpose,
                             "subjects": sorted({rows[b][0] for b in blob_ids}), "decision": "permit",
-                            "details": {"grant": grant.grant_id, "blobs": len(blob_ids)}}], when)
+                            "details": {"grant": record.grant_id, "blobs": len(blob_ids),
+                                        "categories": sorted({rows[b][1] for b in blob_ids}),
+                                        **({"to": "release-mechanism"} if for_noise else {})}}])
         keys = self._keys.participant_keys(self._conn, (pid for pid, _ in rows.values()))
-        for blob_id in blob_ids:
-            pid, category = rows[blob_id]
-            yield blob_id, pid, self._store.plaintext(grant, keys[pid], pid, blob_id, category,
-                                                      now=when)
+        return [(blob_id, rows[blob_id][0],
+                 self._store.plaintext(admission, keys[rows[blob_id][0]], rows[blob_id][0], blob_id,
+                                       rows[blob_id][1]))
+                for blob_id in blob_ids]
 
     # -- ingest -------------------------------------------------------------------------------------
 
     def ingest_eeg(self, pid: str, path: Path, *, sidecar: Path | None = None,
                    event_codes: str | None = None, keep_sex: bool = False,
-                   age_band_years: int | None = None, keep_header_identity: bool = False,
-                   now: datetime | None = None) -> dict[str, Any]:
+                   age_band_years: int | None = None, keep_header_identity: bool = False) -> dict[str, Any]:
         """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed."""
         from vault.ingest import ingest_eeg
 
-        self._require_steward()
+        self._require_steward("ingest.eeg")
         return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
-                          keep_header_identity=keep_header_identity, now=self._moment(now))
+                          keep_header_identity=keep_header_identity)
 
-    def ingest_scores(self, path: Path, kind: str, *, now: datetime | None = None) -> dict[str, Any]:
+    def ingest_scores(self, path: Path, kind: str) -> dict[str, Any]:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""
         from vault.ingest import ingest_scores
 
-        self._require_steward()
-        return ingest_scores(self, Path(path), kind, now=self._moment(now))
+        self._require_steward("ingest.scores")
+        return ingest_scores(self, Path(path), kind)
 
     # -- exports ------------------------------------------------------------------------------------
 
-    def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None,
-                   now: datetime | None = None) -> dict[str, Any]:
+    def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None) -> dict[str, Any]:
         """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
         from vault.export_eeg import export_eeg
 
-        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=self._moment(now))
+        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient)
 
-    def export_matrix(self, purpose: str, category: str, out: Path, *, now: datetime | None = None,
+    def export_matrix(self, purpose: str, category: str, out: Path,
                       **options: Any) -> dict[str, Any]:
         """A pseudonymised, differentially private preference release (matrix or aggregate)."""
         from vault.export_matrix import export_matrix
 
-        return export_matrix(self, purpose=purpose, category=category, out=Path(out), now=self._moment(now),
+        return export_matrix(self, purpose=purpose, category=category, out=Path(out),
                              **options)
 
-    def export_utility(self, purpose: str, category: str, epsilons: list[float], out_png: Path, *,
-                       now: datetime | None = None, **options: Any) -> dict[str, Any]:
-        """Held-out RMSE of a recommender trained on noised data per epsilon; only RMSEs leave."""
+    def export_utility(self, purpose: str, category: str, epsilons: list[float], out_png: Path,
+                       **options: Any) -> dict[str, Any]:
+        """Held-out RMSE of a recommender trained on noised data per epsilon; only RMSEs leave.
+
+        Stewards only: the no-noise baseline is computed on the real data and the figures
+        are not differentially private."""
         from vault.export_matrix import export_utility
 
+        self._require_steward("export.utility")
         return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
-                              out_png=Path(out_png), now=self._moment(now), **options)
+                              out_png=Path(out_png), **options)
 
     def budget(self, purpose: str | None = None, *, show_participants: bool | None = None
                ) -> list[dict[str, Any]]:
@@ -504,72 +577,76 @@ class Vault:
         show = self.role == "steward" if show_participants is None else show_participants
         return budget_report(self, purpose, show_participants=show)
 
-    def check_export(self, document: dict[str, Any], *, now: datetime | None = None) -> dict[str, Any]:
+    def check_export(self, document: dict[str, Any]) -> dict[str, Any]:
         """Whether an export someone holds now contains withdrawn or expired participants."""
         from vault.exports import check_export
 
-        return check_export(self, document, now=self._moment(now))
+        return check_export(self, document)
 
     # -- withdrawal and erasure ---------------------------------------------------------------------
 
-    def withdraw_request(self, pid: str, *, received: date, scope: str = "full",
-                         now: datetime | None = None) -> dict[str, Any]:
+    def withdraw_request(self, pid: str, *, received: date, scope: str = "full") -> dict[str, Any]:
         """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
+        self._require_steward("withdraw.request")
         from vault.withdraw import request_withdrawal
 
-        return request_withdrawal(self, pid, received=received, scope=scope, now=self._moment(now))
+        return request_withdrawal(self, pid, received=received, scope=scope)
 
-    def withdraw_pending(self, *, now: datetime | None = None) -> list[dict[str, Any]]:
+    def withdraw_pending(self) -> list[dict[str, Any]]:
         from vault.withdraw import pending
 
-        self._require_steward()
-        return pending(self, now=self._moment(now))
+        self._require_steward("withdraw.pending")
+        return pending(self)
 
-    def withdraw_process(self, target: str, *, now: datetime | None = None) -> dict[str, Any]:
+    def withdraw_process(self, target: str) -> dict[str, Any]:
         """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
+        self._require_steward("withdraw.process")
         from vault.withdraw import process
 
-        return process(self, target, now=self._moment(now))
+        return process(self, target)
 
     def withdraw_receipt(self, target: str) -> dict[str, Any]:
+        self._require_steward("withdraw.receipt")
         from vault.withdraw import receipt_of
 
         return receipt_of(self, target)
 
-    def sweep(self, *, dry_run: bool = False, now: datetime | None = None) -> dict[str, Any]:
+    def sweep(self, *, dry_run: bool = False) -> dict[str, Any]:
         """Erase, with receipts, everyone whose consent expired or retention ended."""
+        self._require_steward("sweep")
         from vault.withdraw import sweep
 
-        return sweep(self, now=self._moment(now), dry_run=dry_run)
+        return sweep(self, dry_run=dry_run)
 
-    def report(self, *, now: datetime | None = None) -> dict[str, Any]:
+    def report(self) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
+        self._require_steward("report")
         from vault.report import record_of_processing
 
-        return record_of_processing(self, now=self._moment(now))
+        return record_of_processing(self)
 
     # -- members ------------------------------------------------------------------------------------
 
-    def add_member(self, name: str, role: str, passphrase: str, *,
-                   now: datetime | None = None) -> dict[str, str]:
+    def add_member(self, name: str, role: str, passphrase: str) -> dict[str, str]:
         """A new member with their own passphrase (it wraps the same master key)."""
-        self._require_steward()
+        self._require_steward("member.add")
         if role not in self.policy.roles:
             raise UsageError(f"unknown role '{role}'; the policy set defines "
                              + ", ".join(sorted(self.policy.roles)))
         if not _MEMBER_NAME.fullmatch(name):
             raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
         _check_passphrase(passphrase)
-        at = self._stamp(now)
+        at = self._stamp()
         with storage.transaction(self._conn):
-            self._keys.add_slot(self._conn, name, role, passphrase, at)
+            self._keys.add_slot(self._conn, name, role, passphrase, at,
+                                reads_data=_reads_data(self.policy)(role))
             self._audit.append({"actor": self.member, "action": "member.add", "decision": "done",
                                 "details": {"member": name, "role": role}}, at)
         return {"member": name, "role": role}
 
-    def remove_member(self, name: str, *, now: datetime | None = None) -> dict[str, str]:
-        self._require_steward()
-        at = self._stamp(now)
+    def remove_member(self, name: str) -> dict[str, str]:
+        self._require_steward("member.remove")
+        at = self._stamp()
         with storage.transaction(self._conn):
             registry.remove_member(self._conn, name)
             self._audit.append({"actor": self.member, "action": "member.remove", "decision": "done",
@@ -588,6 +665,7 @@ class Vault:
             (info.blob_id, info.pid, info.kind, info.plain_size, info.stored_size, at))
 
     def blobs(self, pid: str | None = None) -> list[dict[str, Any]]:
+        self._require_steward("blobs.list")
         sql = "SELECT blob_id, pid, kind, plain_size, stored_size, created_at FROM blobs"
         rows = self._conn.execute(sql + (" WHERE pid = ?" if pid else ""), (pid,) if pid else ())
         cols = ("blob_id", "pid", "kind", "plain_size", "stored_size", "created_at")
@@ -597,6 +675,7 @@ class Vault:
 
     def verify(self, *, trusted: list[audit.TreeHead] | None = None) -> dict[str, Any]:
         """Check the audit log and authenticate every stored blob (no plaintext leaves)."""
+        self._require_steward("vault.verify")
         report = audit.verify_log(self._conn, self.public_key, trusted or [])
         bad: list[str] = []
         rows = self._conn.execute(
@@ -612,11 +691,21 @@ class Vault:
                 "ok": report.ok and not bad}
 
     def audit_entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
-        return self._audit.entries(start, limit)
+        """Entries of the log, for roles the policy set lets read it (audited)."""
+        role = self.policy.roles.get(self.role)
+        if role is None or not role.reads_audit:
+            self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "refuse",
+                                "reasons": ["role-not-allowed"], "details": {"role": self.role}}])
+            raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not read the audit log")
+        entries = self._audit.entries(start, limit)
+        self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "done",
+                            "details": {"start": start, "entries": len(entries)}}])
+        return entries
 
-    def sign_head(self, *, now: datetime | None = None) -> audit.TreeHead:
+    def sign_head(self) -> audit.TreeHead:
+        self._require_steward("audit.head")
         with storage.transaction(self._conn):
-            return self._audit.sign_head(self._signing, self._stamp(now))
+            return self._audit.sign_head(self._signing, self._stamp())
 
 
 
@@ -671,6 +760,38 @@ def describe(path: Path) -> dict[str, Any]:
         }
     finally:
         conn.close()
+
+
+def read_audit_log(path: Path, passphrase: str, *, member: str, start: int = 0,
+                   limit: int | None = None, clock: Clock | None = None) -> list[dict[str, Any]]:
+    """The log's entries for a member whose role may read it (auditors included: this
+    needs their passphrase, never a key to participant data). Each read, and each refusal,
+    is left as the member's authenticated note and folded into the log by the next
+    session that holds the vault's keys."""
+    path = Path(path)
+    _require_vault(path)
+    lock_fd = _take_lock(path)
+    try:
+        conn = storage.connect(path)
+        try:
+            vault_id = _check_schema(conn)
+            storage.add_missing_tables(conn)
+            policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
+            unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
+            at = utc_now(moment(None, clock or SYSTEM_CLOCK))
+            role = policy.roles.get(unlocked.role)
+            allowed = role is not None and role.reads_audit
+            entries = audit.AuditLog(conn, vault_id).entries(start, limit) if allowed else []
+            with storage.transaction(conn):
+                notes.add(conn, vault_id, member, unlocked, "audit.show",
+                          "done" if allowed else "refuse", at, start=start, entries=len(entries))
+            if not allowed:
+                raise PolicyRefusal(f"member '{member}' ({unlocked.role}) may not read the audit log")
+            return entries
+        finally:
+            conn.close()
+    finally:
+        os.close(lock_fd)
 
 
 def parse_public_key(text: str) -> bytes:

@@ -271,9 +271,9 @@ def _decide_cohort(v: Vault, n: int) -> dict[str, float]:
     from vault.policy import PolicyEngine
 
     policy, request, consents, budget, at = synthetic_cohort(n)
-    engine = PolicyEngine(policy, lambda _pids: consents, v._audit_batch)
+    engine = PolicyEngine(policy, lambda _pids: consents, v._audit_batch, lambda: at)
     before = v._audit.size
-    seconds = _timed(lambda: engine.decide(request, now=at, budget_remaining=budget))
+    seconds = _timed(lambda: engine.decide(request, budget_remaining=budget))
     return {"decide_participants": n, "decide_s": seconds, "decisions_per_s": n / seconds,
             "decide_audit_entries": v._audit.size - before}
 

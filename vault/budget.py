@@ -152,14 +152,14 @@ def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], requ
     return out
 
 
-def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
-           now: dt.datetime) -> None:
+def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str) -> None:
     """Spend `costs` from every budgeted purpose of the chain, in one transaction (audited).
 
     Re-checks every participant inside the transaction and refuses the whole
     charge (PolicyRefusal, nothing written) if anyone would exceed a budget.
     Every call spends again: the same request twice is charged twice.
     """
+    now = v.now()
     plan = budgets(v.policy, purpose)
     if not plan:
         raise PolicyRefusal(f"purpose {purpose} sets no per-participant privacy budget")

@@ -137,8 +137,7 @@ def audit_show(
     limit: Annotated[int, typer.Option(min=1, help="How many entries.")] = 50,
 ) -> None:
     """Show audit entries (actor, action, purpose, random ids, decision, reasons)."""
-    with _open(path, member) as v:
-        entries = v.audit_entries(start, limit)
+    entries = vault.read_audit_log(path, _passphrase(), member=member, start=start, limit=limit)
     _emit(as_json, entries, lambda: "\n".join(
         f"{e['seq']:>6}  {e.get('at', '')}  {e.get('actor', '')}  {e.get('action', '')}  "
         f"{e.get('decision', '')}" + (f"  {','.join(e['reasons'])}" if e.get("reasons") else "")

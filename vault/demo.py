@@ -107,7 +107,8 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         refused = ", ".join(f"{n} {r}" for r, n in released["refused_by_reason"].items()) or "none"
         say(f"   released for {released['cohort_size']} participants x {released['items']} dishes "
             f"under pseudonyms (refused: {refused}); Parquet, CSV and a signed manifest in {export_dir}")
-        utility = a.export_utility("recommender-training", "ratings-explicit", UTILITY_EPSILONS, plot)
+    with Vault.open(vault_dir, DEMO_PASSPHRASE) as v:  # the utility figures are not DP: stewards only
+        utility = v.export_utility("recommender-training", "ratings-explicit", UTILITY_EPSILONS, plot)
     base = utility["report"]
     curve = dict(zip(base["epsilons"], base["noisy_rmse"], strict=True))
     say(f"8. A plain recommender (soft-impute matrix completion) trained inside the vault on noised "

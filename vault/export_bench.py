@@ -37,6 +37,13 @@ NOW = dt.datetime(2026, 6, 15, 12, tzinfo=dt.UTC)
 _GRANTING = ["eeg-raw", "scores-derived", "ratings-explicit"]
 
 
+class _FixedClock:
+    """The bench's vault lives at one instant (its synthetic consents are dated around it)."""
+
+    def now(self) -> dt.datetime:
+        return NOW
+
+
 def _terms(v: Vault, *, recommender: bool, expires: dt.date) -> ConsentTerms:
     answers: dict[str, Any] = {
         "primary-analysis": {"granted": [*_GRANTING, "demographics"], "explicit": True},
@@ -152,7 +159,7 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
     t, remaining = _timed(lambda: budget.remaining_for_decide(
         v, purpose, costs, epsilon, scale=n_rows if per_rating else None))
     out["ledger_s"] = t
-    t, grant = _timed(lambda: v.authorize(purpose, [CATEGORY], now=now, export=True, epsilon=epsilon,
+    t, grant = _timed(lambda: v._authorize_release(purpose, [CATEGORY], export=True, epsilon=epsilon,
                                           privacy_unit=unit, participants=tuple(batches),
                                           budget_remaining=remaining))
     out["decide_s"] = t
@@ -170,7 +177,7 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
                                                  epsilon=Fraction(str(epsilon)), rho=None))
     out["noise_s"] = t
     spent = {p: costs[p] for p in order}
-    t, _ = _timed(lambda: budget.charge(v, purpose, spent, export_id="x-bench", now=now))
+    t, _ = _timed(lambda: budget.charge(v, purpose, spent, export_id="x-bench"))
     out["charge_s"] = t
     target = Path(tempfile.mkdtemp(prefix="mindward-export-phase-"))
     try:
@@ -192,9 +199,9 @@ def _door_parts(v: Vault, now: dt.datetime, n: int) -> dict[str, float]:
     from vault.export_matrix import _candidates
 
     batches = _candidates(v, CATEGORY)
-    grant = v.authorize("primary-analysis", [CATEGORY], now=now, participants=tuple(batches))
+    grant = v.authorize("primary-analysis", [CATEGORY], participants=tuple(batches))
     blobs = [(pid, b[0][0]) for pid, b in batches.items() if pid in grant.participants][:n]
-    t_door, _ = _timed(lambda: [b"".join(v.read_blob(grant, blob, now=now)) for _, blob in blobs])
+    t_door, _ = _timed(lambda: [b"".join(v.read_blob(grant, blob)) for _, blob in blobs])
 
     def decrypt_only() -> None:
         for pid, blob in blobs:
@@ -202,9 +209,9 @@ def _door_parts(v: Vault, now: dt.datetime, n: int) -> dict[str, float]:
             b"".join(v._store._decrypt(key, pid, blob))
 
     t_decrypt, _ = _timed(decrypt_only)
-    t_admit, _ = _timed(lambda: [grant.admit(pid, CATEGORY, now=now) for pid, _ in blobs])
+    t_admit, _ = _timed(lambda: [v._engine.admit_many(grant, [(pid, CATEGORY)]) for pid, _ in blobs])
     t_consents, _ = _timed(lambda: [registry.latest_consents(v._conn, [pid]) for pid, _ in blobs])
-    t_audit, _ = _timed(lambda: [v._audit_batch([{"actor": "bench", "action": "bench.read"}], now)
+    t_audit, _ = _timed(lambda: [v._audit_batch([{"actor": "bench", "action": "bench.read"}])
                                  for _ in blobs])
     per = 1000 / max(len(blobs), 1)
     return {"door_blobs": float(len(blobs)), "door_per_read_ms": t_door * per,
@@ -238,7 +245,7 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
         policy_dir = None
         if unit == "rating":
             policy_dir = _rating_policy(workdir)
-        v = Vault.init(workdir / "vault", PASSPHRASE, policy_dir=policy_dir, now=NOW)
+        v = Vault.init(workdir / "vault", PASSPHRASE, policy_dir=policy_dir, clock=_FixedClock())
         try:
             assert policy_dir is not None or v.policy.version == load_default_policy().version
             t_build, data = _timed(lambda: build_synthetic(v, n_participants=n_participants,
@@ -247,7 +254,7 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
             figures.update(build_s=t_build, ratings=int(data["rating_value"].size),
                            granted=data["granted"])
             request = {"purpose": "recommender-training", "category": CATEGORY, "epsilon": epsilon,
-                       "unit": unit, "now": NOW, "formats": ("parquet",)}
+                       "unit": unit, "formats": ("parquet",)}
             bases, exports, cohorts = [], [], set()
             for i in range(repeats):  # interleaved; the fastest of each (a shared machine's noise)
                 bases.append(_baseline(data, workdir))

@@ -8,7 +8,6 @@ and the export is recorded in the lineage.
 
 from __future__ import annotations
 
-import datetime as dt
 import json
 import shutil
 from collections.abc import Iterator
@@ -52,9 +51,8 @@ def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
     return bytes(first[:size]), rest()
 
 
-def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
-               now: dt.datetime) -> dict[str, Any]:
-    grant = v.authorize(purpose, ["eeg-raw"], export=True, recipient=recipient, now=now)
+def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None) -> dict[str, Any]:
+    grant = v._authorize_release(purpose, ["eeg-raw"], export=True, recipient=recipient)
     marks = ",".join("?" * len(grant.participants))
     rows = v._conn.execute(
         f"SELECT r.blob_id, r.pid, r.meta FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
@@ -70,7 +68,7 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
     try:
         runs: dict[str, int] = {}
         metas = {blob_id: meta for blob_id, _, meta in rows}
-        for blob_id, pid, chunks in v.read_blobs(grant, [r[0] for r in rows], now=now):
+        for blob_id, pid, chunks in v._read_for_release(grant, [r[0] for r in rows]):
             runs[pid] = runs.get(pid, 0) + 1
             header, blocks = _split_header(iter(chunks))
             writer.add_recording(labels[pid], None, runs[pid], header, blocks,
@@ -79,7 +77,7 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                               bidsignore=[MANIFEST_NAME])
         export_id = exports.new_export_id()
         signed = exports.sign_and_record(
-            v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels, now=now,
+            v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,
             body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
                   "privacy": "no differential-privacy noise: de-identified recordings, which can "

@@ -178,7 +178,7 @@ def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, i
     wanted = [blob_id for pid in pids for blob_id, _ in batches.get(pid, ())]
     owners: list[str] = []
     bodies: list[bytes] = []
-    for _, pid, chunks in v.read_blobs(grant, wanted, now=now):  # one live decision, one audit batch
+    for _, pid, chunks in v._read_for_release(grant, wanted):  # one live decision, one audit batch
         owners.append(pid)
         bodies.append(b"".join(chunks))
     decoded = scores.decode_many(bodies)
@@ -325,7 +325,6 @@ def export_matrix(
     purpose: str,
     category: str,
     out: Path,
-    now: dt.datetime,
     epsilon: float | str | Fraction | None = None,
     rho: float | str | Fraction | None = None,
     release: str = "matrix",
@@ -345,6 +344,7 @@ def export_matrix(
     release only). `items`: the public item catalogue (recommended; see the
     module docstring). Returns a summary: counts only, no participant ids.
     """
+    now = v.now()
     if release not in RELEASES:
         raise UsageError("--release is 'matrix' or 'aggregate'")
     try:
@@ -377,7 +377,7 @@ def export_matrix(
     remaining = (budget.remaining_for_decide(v, purpose, bound, request_eps,
                                              scale=n_rows if per_rating else None)
                  if purpose in v.policy.purposes else {})
-    grant = v.authorize(purpose, [category], now=now, export=True, epsilon=request_eps,
+    grant = v._authorize_release(purpose, [category], export=True, epsilon=request_eps,
                         privacy_unit=privacy_unit.value, recipient=recipient,
                         participants=tuple(batches), budget_remaining=remaining)
     refused = dict(sorted(grant.counts.items()))
@@ -416,7 +416,7 @@ def export_matrix(
 
     # 5. charge, write, sign, record, move into place
     export_id = exports.new_export_id()
-    budget.charge(v, purpose, costs, export_id=export_id, now=now)
+    budget.charge(v, purpose, costs, export_id=export_id)
     staging = out.parent / f".{out.name}.export-{crypto.random_id(6)}"
     staging.mkdir(mode=0o700, parents=True)
     try:
@@ -431,7 +431,7 @@ def export_matrix(
         body = _manifest_body(release, category, guarantee, files, item_list, catalogue is not None,
                               budget.budgets(v.policy, purpose), k, mech, formats)
         signed = exports.sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
-                                         grant=grant, members=members, body=body, now=now,
+                                         grant=grant, members=members, body=body,
                                          list_pseudonyms=release == "matrix")
         (staging / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
         fsync_path(staging / MANIFEST_NAME)
@@ -551,7 +551,6 @@ def export_utility(
     category: str,
     epsilons: Sequence[float],
     out_png: Path,
-    now: dt.datetime,
     unit: str = "participant",
     rank: int = 3,
     test_fraction: float = 0.2,
@@ -567,6 +566,7 @@ def export_utility(
     report's numbers; no budget is charged because no data is released, but the
     figures are computed from raw ratings and are not themselves DP.
     """
+    now = v.now()
     from vault.recommend import utility_curve
     from vault.utility_plot import plot_utility
 
@@ -578,7 +578,7 @@ def export_utility(
         raise UsageError("the utility plot is written as PNG: give a path ending in .png")
     catalogue = _check_items(items) if items is not None else None
     batches = _candidates(v, category)
-    grant = v.authorize(purpose, [category], now=now, privacy_unit=privacy_unit.value,
+    grant = v._authorize_release(purpose, [category], privacy_unit=privacy_unit.value,
                         participants=tuple(batches))
     low, high, k = _scale_of(v, category, grid_k)
     cohort = _read_cohort(v, grant, batches, now)

@@ -51,7 +51,7 @@ def new_export_id() -> str:
 
 
 def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, members: Mapping[str, str],
-                    body: Mapping[str, Any], now: dt.datetime,
+                    body: Mapping[str, Any],
                     expires_days: int = DEFAULT_EXPORT_DAYS,
                     list_pseudonyms: bool = True) -> dict[str, Any]:
     """Sign the manifest (with the audit tree head at release) and record the lineage.
@@ -59,6 +59,7 @@ def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, member
     `members` maps internal participant id -> pseudonym in the export. One transaction
     holds the lineage rows, the audit entry and the tree head the manifest names.
     """
+    now = v.now()
     at = _at(now)
     expires = _at(now + dt.timedelta(days=expires_days))
     recipient = grant.request.recipient or "internal"
@@ -105,8 +106,9 @@ def storage_json(doc: Mapping[str, Any]) -> bytes:
     return canonical_json(dict(doc))
 
 
-def check_export(v: Vault, document: Mapping[str, Any], *, now: dt.datetime) -> dict[str, Any]:
+def check_export(v: Vault, document: Mapping[str, Any]) -> dict[str, Any]:
     """Does an export someone holds still stand? Names counts, never who."""
+    now = v.now()
     if not manifest.verify(document, v.public_key, manifest.MANIFEST):
         raise IntegrityError("the manifest's signature does not verify with this vault's key")
     body = document["body"]

@@ -85,8 +85,8 @@ def _prefixed(header: bytes, blocks: Iterator[bytes]) -> Iterator[bytes]:
 
 
 def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None, event_codes: str | None,
-               keep_sex: bool, age_band_years: int | None, keep_header_identity: bool,
-               now: dt.datetime) -> dict[str, Any]:
+               keep_sex: bool, age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
+    now = v.now()
     registry.require_participant(v._conn, pid)
     _require_storage_consent(v, [pid], EEG, now)
     pattern = v.policy.categories[EEG].event_code_pattern if event_codes is None else event_codes
@@ -144,7 +144,8 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None, event_co
             "identity_kept": identity is not None}
 
 
-def ingest_scores(v: Vault, path: Path, kind: str, *, now: dt.datetime) -> dict[str, Any]:
+def ingest_scores(v: Vault, path: Path, kind: str) -> dict[str, Any]:
+    now = v.now()
     if kind not in SCORE_KINDS:
         raise UsageError("--kind is 'derived' or 'explicit'")
     category = SCORE_KINDS[kind]

@@ -15,11 +15,31 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from collections.abc import Iterable
-from dataclasses import dataclass
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
 
 from vault import crypto, storage
 from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFound
+
+SLOT_FORMAT = 2
+SLOT_MASTER = "master"
+SLOT_MEMBER = "member"
+
+
+def member_key_from_secret(secret: bytes, vault_id: str, member: str, role: str) -> bytes:
+    return crypto.derive_key(secret, "member-key", vault_id.encode(), member.encode(),
+                             role.encode())
+
+
+@dataclass(frozen=True)
+class Unlocked:
+    """What a member's passphrase opened: the key ring (data roles only), their role, and
+    their member key (authenticates their notes)."""
+
+    ring: KeyRing | None
+    role: str
+    member_key: bytes = field(repr=False)
+    upgraded: bool = False  # a legacy slot was rewritten with its role bound
 
 
 @dataclass(frozen=True)
@@ -41,38 +61,82 @@ class KeyRing:
         raise TypeError("key rings are not serialisable")
 
     # -- slots ------------------------------------------------------------------------------
+    #
+    # A slot's wrapping key is HKDF(Argon2id(passphrase), vault id, member, role, kind): the
+    # role is bound to the slot, so a slot whose role (or member name) was edited no longer
+    # unwraps. Roles that read participant data get a "master" slot (wraps the master key);
+    # roles that do not (auditors) a "member" slot, which wraps only their member key and
+    # so opens nothing of participant data. Slots written before roles were bound ("legacy":
+    # the bare Argon2id key wrapped the master key) are rewritten at their member's next
+    # unlock.
 
     @staticmethod
-    def new_slot(passphrase: str, master: bytes) -> tuple[str, bytes]:
-        """(kdf parameters JSON, wrapped master) for a member's passphrase."""
+    def _slot_kek(passphrase: str, params: crypto.KdfParams, vault_id: str, member: str,
+                  role: str, kind: str) -> bytes:
+        root = crypto.passphrase_key(passphrase, params)
+        return crypto.derive_key(root, "slot-kek", vault_id.encode(), member.encode(),
+                                 role.encode(), kind.encode())
+
+    def member_key(self, member: str, role: str) -> bytes:
+        """The key a member's notes are authenticated with (from the vault secret, so it
+        survives rekeys; stewards recompute it to check notes)."""
+        return member_key_from_secret(self._secret, self.vault_id, member, role)
+
+    def _write_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+                    now: str, *, reads_data: bool, replace: bool = False) -> None:
         params = crypto.KdfParams.fresh()
-        kek = crypto.passphrase_key(passphrase, params)
-        return json.dumps(params.as_dict(), sort_keys=True), crypto.wrap_key(kek, master)
-
-    @classmethod
-    def unlock(cls, conn: sqlite3.Connection, vault_id: str, member: str, passphrase: str
-               ) -> tuple[KeyRing, str]:
-        """Unwrap the master key with a member's passphrase; returns (ring, role)."""
-        row = conn.execute(
-            "SELECT kdf, wrapped_master, role FROM keyslots WHERE member = ?", (member,)
-        ).fetchone()
-        if row is None:
-            raise AuthenticationFailed(f"no member '{member}' in this vault")
-        params = crypto.KdfParams.from_dict(json.loads(row[0]))
-        master = crypto.unwrap_master(crypto.passphrase_key(passphrase, params), row[1])
-        return cls(vault_id, master), str(row[2])
-
-    def add_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
-                 now: str) -> None:
-        kdf, wrapped = self.new_slot(passphrase, self._master)
+        kind = SLOT_MASTER if reads_data else SLOT_MEMBER
+        kek = self._slot_kek(passphrase, params, self.vault_id, member, role, kind)
+        secret = self._master if reads_data else self.member_key(member, role)
+        doc = json.dumps({"format": SLOT_FORMAT, "kind": kind, "kdf": params.as_dict()},
+                         sort_keys=True)
+        verb = "INSERT OR REPLACE" if replace else "INSERT"
         try:
             conn.execute(
-                "INSERT INTO keyslots (member, role, kdf, wrapped_master, created_at) "
-                "VALUES (?, ?, ?, ?, ?)",
-                (member, role, kdf, wrapped, now),
-            )
+                f"{verb} INTO keyslots (member, role, kdf, wrapped_master, created_at) "
+                "VALUES (?, ?, ?, ?, ?)", (member, role, doc, crypto.wrap_key(kek, secret), now))
         except sqlite3.IntegrityError as exc:
             raise Conflict(f"member '{member}' exists already") from exc
+
+    def add_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+                 now: str, *, reads_data: bool = True) -> None:
+        self._write_slot(conn, member, role, passphrase, now, reads_data=reads_data)
+
+    @classmethod
+    def unlock(cls, conn: sqlite3.Connection, vault_id: str, member: str, passphrase: str,
+               reads_data: Callable[[str], bool]) -> Unlocked:
+        """Check a member's passphrase against their slot.
+
+        Returns the key ring for members whose role reads data, and only the member key
+        for the others. A wrong passphrase and an edited slot fail alike."""
+        row = conn.execute(
+            "SELECT kdf, wrapped_master, role, created_at FROM keyslots WHERE member = ?",
+            (member,)).fetchone()
+        if row is None:
+            raise AuthenticationFailed(f"no member '{member}' in this vault")
+        doc, wrapped, role, created = json.loads(row[0]), row[1], str(row[2]), str(row[3])
+        if "format" not in doc:  # legacy slot: the bare passphrase key wraps the master key
+            params = crypto.KdfParams.from_dict(doc)
+            master = crypto.unwrap_master(crypto.passphrase_key(passphrase, params), wrapped)
+            ring = cls(vault_id, master)
+            ring.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
+            with storage.transaction(conn):
+                ring._write_slot(conn, member, role, passphrase, created,
+                                 reads_data=reads_data(role), replace=True)
+            return Unlocked(ring if reads_data(role) else None, role, ring.member_key(member, role),
+                            upgraded=True)
+        if doc.get("format") != SLOT_FORMAT or doc.get("kind") not in (SLOT_MASTER, SLOT_MEMBER):
+            raise IntegrityError(f"the key slot of member '{member}' has an unknown format")
+        params = crypto.KdfParams.from_dict(doc["kdf"])
+        kek = cls._slot_kek(passphrase, params, vault_id, member, role, doc["kind"])
+        inner = crypto.unwrap_master(kek, wrapped)
+        if doc["kind"] == SLOT_MEMBER:
+            return Unlocked(None, role, inner)
+        if not reads_data(role):
+            raise IntegrityError(f"the key slot of member '{member}' does not match its role")
+        ring = cls(vault_id, inner)
+        ring.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
+        return Unlocked(ring, role, ring.member_key(member, role))
 
     # -- participant keys ---------------------------------------------------------------------
 
@@ -182,8 +246,9 @@ class KeyRing:
                 wrapped_signing: bytes, now: str) -> tuple[KeyRing, bytes, bytes]:
         """Re-wrap every key under a fresh master key (inside the caller's transaction).
 
-        Every other member's slot is dropped: their passphrases wrap the old
-        master key, and only they can choose a new one.
+        Every other member's master slot is dropped: their passphrases wrap the old
+        master key, and only they can choose a new one. Member slots (roles that read no
+        data) wrap no master key and stay.
         """
         fresh = KeyRing(self.vault_id, crypto.new_key())
         fresh._secret = self._secret
@@ -197,6 +262,7 @@ class KeyRing:
                 "UPDATE participants SET wrapped_key = ? WHERE pid = ?",
                 (crypto.wrap_key(fresh._participant_kek(pid), key), pid),
             )
-        conn.execute("DELETE FROM keyslots")
-        fresh.add_slot(conn, member, role, passphrase, now)
+        conn.execute("DELETE FROM keyslots WHERE kdf NOT LIKE ?", (f'%"kind": "{SLOT_MEMBER}"%',))
+        conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+        fresh._write_slot(conn, member, role, passphrase, now, reads_data=True)
         return fresh, fresh.wrap_signing_key(signing), fresh.wrap_secret(self._secret)

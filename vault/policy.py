@@ -1,69 +1,74 @@
 """The policy engine: the only place a `Grant` is minted.
 
-A grant names actor, role, purpose, categories, the participants it covers, its
-expiry, and the policy and consent versions it was decided on. The store's
-read path takes a grant and asks it to `admit` each read; admission re-decides
-that participant against their consent as it is *now*, so a withdrawal takes
-effect at once, even for a grant minted before it. The one shortcut: a read at
-the very instant the grant was decided, while the vault's database shows no
-change at all since then (by anyone: `StateToken`), is admitted on that
-decision, because deciding again on the same inputs could only agree (the live
-check asks strictly less than the minting decision did).
+A grant is a handle: its fields (actor, role, purpose, categories, the participants
+it covers, expiry, the policy and consent versions it was decided on, whether only
+the noise mechanism may see its plaintext) live in a frozen record that the engine
+keeps; the handle's attributes only read that record, so nothing a caller sets on a
+grant changes what it allows. Every read re-decides: `admit_many` checks the grant's
+own record (participant, category, expiry) and decides each participant again
+against their consent as it is *now*, for exactly the categories being read, with the
+engine's clock; a withdrawal takes effect at once, even for a grant minted before it.
 
-Grants cannot be built outside this module (they need `_MINT`), pickled, or
-copied; `tests/test_architecture.py` checks that no other module names `_MINT`.
+Grants cannot be built outside this module (they need `_MINT`), pickled, or copied;
+`tests/test_architecture.py` checks that no other module names `_MINT`.
 """
 
 from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from types import MappingProxyType
 from typing import Any
 
 from vault import crypto
 from vault.consent import ConsentVersion
 from vault.decide import CohortDecision, Request, decide
 from vault.errors import PolicyRefusal
-from vault.policyset import PolicySet
 
 _MINT = object()
 GRANT_LIFETIME = dt.timedelta(minutes=30)
 AUDIT_CHUNK = 1000  # subjects per audit entry: one batch of entries per decision
 
 ConsentLoader = Callable[[Sequence[str] | None], Mapping[str, ConsentVersion | None]]
-AuditSink = Callable[[list[dict[str, Any]], dt.datetime], None]
-# A value that changes whenever anything is written to the vault's database, by this process
-# or any other (the vault passes SQLite's data_version and its connection's change count).
-StateToken = Callable[[], object]
+AuditSink = Callable[[list[dict[str, Any]]], None]
+Clock = Callable[[], dt.datetime]
+
+
+@dataclass(frozen=True, slots=True)
+class GrantRecord:
+    """What a grant allows, as decided; kept by the engine, never by the caller."""
+
+    grant_id: str
+    request: Request
+    categories: frozenset[str]
+    participants: frozenset[str]
+    policy_version: str
+    consent_digest: str | None
+    decided_at: dt.datetime
+    expires_at: dt.datetime
+    counts: Mapping[str, int]
+    noise_only: bool  # the purpose requires DP noise: plaintext goes to the mechanism alone
 
 
 class Grant:
-    """Permission to decrypt named categories of named participants for one purpose."""
+    """Permission to decrypt named categories of named participants for one purpose.
 
-    __slots__ = ("_admitted", "_engine", "_state", "actor", "categories", "consent_digest",
-                 "counts", "decided_at", "expires_at", "grant_id", "participants", "policy_version",
-                 "purpose", "request", "role")
+    Read-only: every attribute is looked up in the engine's record of the grant."""
 
-    def __init__(self, mint: object, *, engine: PolicyEngine, decision: CohortDecision,
-                 grant_id: str) -> None:
+    __slots__ = ("_engine", "_id")
+
+    def __init__(self, mint: object, *, engine: PolicyEngine, grant_id: str) -> None:
         if mint is not _MINT:
             raise PolicyRefusal("grants are issued only by the policy engine")
-        request = decision.request
-        self._engine = engine
-        self.grant_id = grant_id
-        self.request = request
-        self.actor = request.actor
-        self.role = request.role
-        self.purpose = request.purpose
-        self.categories = frozenset(request.categories)
-        self.participants = frozenset(decision.included)
-        self.policy_version = decision.policy_version
-        self.consent_digest = decision.consent_digest
-        self.decided_at = decision.decided_at
-        self.expires_at = decision.decided_at + GRANT_LIFETIME
-        self.counts = dict(decision.counts)  # refusals by reason, no ids
-        self._admitted: set[tuple[str, str, dt.datetime]] = set()
-        self._state: object = None  # the database's state token once the grant was recorded
+        object.__setattr__(self, "_engine", engine)
+        object.__setattr__(self, "_id", grant_id)
+
+    def __setattr__(self, name: str, value: object) -> None:
+        raise AttributeError("grants are read-only")
+
+    def __delattr__(self, name: str) -> None:
+        raise AttributeError("grants are read-only")
 
     def __reduce__(self) -> object:
         raise TypeError("grants are not serialisable")
@@ -73,84 +78,107 @@ class Grant:
 
     __deepcopy__ = __copy__
 
-    def admit(self, pid: str, category: str, *, now: dt.datetime) -> None:
-        """Raise PolicyRefusal unless this grant covers reading `category` of `pid` now."""
-        self._engine.admit(self, pid, category, now=now)
+    @property
+    def _record(self) -> GrantRecord:
+        return self._engine.record(self)
+
+    grant_id = property(lambda self: self._id)
+    request = property(lambda self: self._record.request)
+    actor = property(lambda self: self._record.request.actor)
+    role = property(lambda self: self._record.request.role)
+    purpose = property(lambda self: self._record.request.purpose)
+    categories = property(lambda self: self._record.categories)
+    participants = property(lambda self: self._record.participants)
+    policy_version = property(lambda self: self._record.policy_version)
+    consent_digest = property(lambda self: self._record.consent_digest)
+    decided_at = property(lambda self: self._record.decided_at)
+    expires_at = property(lambda self: self._record.expires_at)
+    counts = property(lambda self: self._record.counts)
+    noise_only = property(lambda self: self._record.noise_only)
 
     def summary(self) -> dict[str, Any]:
-        return {"grant": self.grant_id, "actor": self.actor, "role": self.role,
-                "purpose": self.purpose, "categories": sorted(self.categories),
-                "participants": len(self.participants), "policy_version": self.policy_version,
-                "consent_digest": self.consent_digest,
-                "expires_at": self.expires_at.strftime("%Y-%m-%dT%H:%M:%SZ")}
+        r = self._record
+        return {"grant": r.grant_id, "actor": r.request.actor, "role": r.request.role,
+                "purpose": r.request.purpose, "categories": sorted(r.categories),
+                "participants": len(r.participants), "policy_version": r.policy_version,
+                "consent_digest": r.consent_digest,
+                "expires_at": r.expires_at.strftime("%Y-%m-%dT%H:%M:%SZ")}
 
 
 class PolicyEngine:
     """Decides requests against live consent, audits every outcome, mints grants."""
 
-    def __init__(self, policy: PolicySet, consents: ConsentLoader, audit: AuditSink,
-                 state: StateToken | None = None) -> None:
+    def __init__(self, policy: Any, consents: ConsentLoader, audit: AuditSink, clock: Clock) -> None:
         self.policy = policy
         self._consents = consents
         self._audit = audit
-        self._state = state
-        self._revoked: set[str] = set()
+        self._clock = clock
+        self._issued: dict[str, GrantRecord] = {}
 
-    def decide(self, request: Request, *, now: dt.datetime,
+    def record(self, grant: Grant) -> GrantRecord:
+        found = (self._issued.get(grant._id)
+                 if isinstance(grant, Grant) and grant._engine is self else None)
+        if found is None:
+            raise PolicyRefusal("this grant was not issued by this vault session")
+        return found
+
+    def decide(self, request: Request, *,
                budget_remaining: Mapping[str, float] | None = None) -> CohortDecision:
         """Decide without granting (what `access check` shows); audited."""
-        decision = decide(self.policy, request, self._consents(request.participants), now=now,
-                          budget_remaining=budget_remaining)
-        self._audit(decision_entries(decision, action="access.check"), now)
+        decision = decide(self.policy, request, self._consents(request.participants),
+                          now=self._clock(), budget_remaining=budget_remaining)
+        self._audit(decision_entries(decision, action="access.check"))
         return decision
 
-    def authorize(self, request: Request, *, now: dt.datetime,
+    def authorize(self, request: Request, *,
                   budget_remaining: Mapping[str, float] | None = None) -> Grant:
         """A grant for the permitted participants, or PolicyRefusal with counted reasons."""
-        decision = decide(self.policy, request, self._consents(request.participants), now=now,
-                          budget_remaining=budget_remaining)
+        decision = decide(self.policy, request, self._consents(request.participants),
+                          now=self._clock(), budget_remaining=budget_remaining)
         grant_id = "g-" + crypto.random_id(8)
-        self._audit(decision_entries(decision, action="access.grant", grant_id=grant_id), now)
+        self._audit(decision_entries(decision, action="access.grant", grant_id=grant_id))
         if not decision.permit:
             raise PolicyRefusal(decision.refusal_message())
-        grant = Grant(_MINT, engine=self, decision=decision, grant_id=grant_id)
-        if self._state is not None:
-            grant._state = self._state()
-        return grant
+        purpose = self.policy.purposes[request.purpose]
+        self._issued[grant_id] = GrantRecord(
+            grant_id=grant_id, request=request, categories=frozenset(request.categories),
+            participants=frozenset(decision.included), policy_version=decision.policy_version,
+            consent_digest=decision.consent_digest, decided_at=decision.decided_at,
+            expires_at=decision.decided_at + GRANT_LIFETIME,
+            counts=MappingProxyType(dict(decision.counts)), noise_only=purpose.dp_required)
+        return Grant(_MINT, engine=self, grant_id=grant_id)
 
-    def admit(self, grant: Grant, pid: str, category: str, *, now: dt.datetime) -> None:
-        why = self._why_not(grant, pid, category, now)
-        if why is not None:
-            self._audit([{"actor": grant.actor, "action": "access.read", "decision": "refuse",
-                          "purpose": grant.purpose, "subjects": [pid], "reasons": [why],
-                          "details": {"grant": grant.grant_id, "category": category}}], now)
-            raise PolicyRefusal(f"read refused: {why}")
+    def admit_many(self, grant: Grant, reads: Sequence[tuple[str, str]], *,
+                   for_noise: bool = False) -> Admission:
+        """Admit (participant, category) reads now: the grant's own record, then one live
+        decision for exactly those participants and categories. Refusals are audited."""
+        record = self.record(grant)
+        now = self._clock()
+        refused: dict[str, str] = {}
+        for pid, category in reads:
+            why = _static_refusal(record, pid, category, now, for_noise)
+            if why is not None:
+                refused.setdefault(pid, why)
+        if not refused and reads:
+            refused = self._live_refusals(record, reads, now)
+        if refused:
+            self._audit([{"actor": record.request.actor, "action": "access.read",
+                          "decision": "refuse", "purpose": record.request.purpose,
+                          "subjects": sorted(refused), "reasons": sorted(set(refused.values())),
+                          "details": {"grant": record.grant_id}}])
+            raise PolicyRefusal(f"read refused for {len(refused)} participant(s): "
+                                + ", ".join(sorted(set(refused.values()))))
+        return Admission(_MINT, record, frozenset(reads))
 
-    def _why_not(self, grant: Grant, pid: str, category: str, now: dt.datetime) -> str | None:
-        static = self._static_refusal(grant, pid, category, now)
-        if static is not None:
-            return static
-        if (pid, category, now) in grant._admitted:
-            return None
-        return self._live_refusals(grant, (pid,), now).get(pid)
-
-    def _unchanged_since_decision(self, grant: Grant, now: dt.datetime) -> bool:
-        """The same instant and not one write to the database since the grant was recorded:
-        a live decision would see the minting decision's inputs again."""
-        return (self._state is not None and grant._state is not None and now == grant.decided_at
-                and self._state() == grant._state)
-
-    def _live_refusals(self, grant: Grant, pids: tuple[str, ...], now: dt.datetime) -> dict[str, str]:
-        """Re-decide `pids` against their consent now (budget and export rules were settled
-        when the grant was minted); returns pid -> first reason for those now refused.
-
-        Every pid here is in the grant, so each was permitted by the minting decision, which
-        asked all the live check asks and more: with unchanged inputs nobody can be refused."""
-        if self._unchanged_since_decision(grant, now):
-            return {}
-        live = decide(self.policy, grant.request.model_copy(update={
-            "participants": pids, "cohort": False, "epsilon": None, "export": False}),
-            self._consents(pids), now=now)
+    def _live_refusals(self, record: GrantRecord, reads: Sequence[tuple[str, str]],
+                       now: dt.datetime) -> dict[str, str]:
+        """Decide the readers' participants again against their consent now, for the
+        categories actually read (budget and export rules were settled at minting)."""
+        pids = tuple(sorted({pid for pid, _ in reads}))
+        categories = frozenset(category for _, category in reads)
+        live = decide(self.policy, record.request.model_copy(update={
+            "participants": pids, "categories": categories, "cohort": False, "epsilon": None,
+            "export": False}), self._consents(pids), now=now)
         refused = {}
         for pid in pids:
             verdict = live.decisions.get(pid)
@@ -159,36 +187,46 @@ class PolicyEngine:
                                 else "not-permitted-now")
         return refused
 
-    def admit_many(self, grant: Grant, reads: list[tuple[str, str]], *, now: dt.datetime) -> None:
-        """Admit many (participant, category) reads with one live decision; refusals audited."""
-        for pid, category in reads:
-            why = self._static_refusal(grant, pid, category, now)
-            if why is not None:
-                self.admit(grant, pid, category, now=now)  # audits and raises
-        pids = tuple(sorted({pid for pid, _ in reads}))
-        refused = self._live_refusals(grant, pids, now)
-        if refused:
-            self._audit([{"actor": grant.actor, "action": "access.read", "decision": "refuse",
-                          "purpose": grant.purpose, "subjects": sorted(refused),
-                          "reasons": sorted(set(refused.values())),
-                          "details": {"grant": grant.grant_id}}], now)
-            raise PolicyRefusal(f"read refused for {len(refused)} participant(s): "
-                                + ", ".join(sorted(set(refused.values()))))
-        grant._admitted = {(pid, category, now) for pid, category in reads}
 
-    def _static_refusal(self, grant: Grant, pid: str, category: str, now: dt.datetime) -> str | None:
-        if grant._engine is not self or grant.grant_id in self._revoked:
-            return "grant-not-valid-here"
-        if now >= grant.expires_at:
-            return "grant-expired"
-        if pid not in grant.participants:
-            return "participant-not-in-grant"
-        if category not in grant.categories:
-            return "category-not-in-grant"
-        return None
+class Admission:
+    """The outcome of one `admit_many`: the (participant, category) reads the store may
+    decrypt under the grant. Read-only, like the grant."""
 
-    def revoke(self, grant: Grant) -> None:
-        self._revoked.add(grant.grant_id)
+    __slots__ = ("_reads", "_record")
+
+    def __init__(self, mint: object, record: GrantRecord, reads: frozenset[tuple[str, str]]) -> None:
+        if mint is not _MINT:
+            raise PolicyRefusal("admissions are issued only by the policy engine")
+        object.__setattr__(self, "_record", record)
+        object.__setattr__(self, "_reads", reads)
+
+    def __setattr__(self, name: str, value: object) -> None:
+        raise AttributeError("admissions are read-only")
+
+    @property
+    def record(self) -> GrantRecord:
+        return self._record
+
+    def covers(self, pid: str, category: str) -> bool:
+        return (pid, category) in self._reads
+
+    def __reduce__(self) -> object:
+        raise TypeError("admissions are not serialisable")
+
+
+def _static_refusal(record: GrantRecord, pid: str, category: str, now: dt.datetime,
+                    for_noise: bool) -> str | None:
+    if record.noise_only and not for_noise:
+        return "dp-noise-required"
+    if now >= record.expires_at:
+        return "grant-expired"
+    if now < record.decided_at:
+        return "clock-before-grant"
+    if pid not in record.participants:
+        return "participant-not-in-grant"
+    if category not in record.categories:
+        return "category-not-in-grant"
+    return None
 
 
 def decision_entries(decision: CohortDecision, *, action: str,

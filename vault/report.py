@@ -33,7 +33,8 @@ def _count(v: Vault, sql: str, *args: object) -> int:
     return int(v._conn.execute(sql, args).fetchone()[0])
 
 
-def record_of_processing(v: Vault, *, now: dt.datetime) -> dict[str, Any]:
+def record_of_processing(v: Vault) -> dict[str, Any]:
+    now = v.now()
     policy = v.policy
     consents = registry.latest_consents(v._conn, None)
     purposes = []

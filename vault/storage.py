@@ -69,6 +69,8 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
                      "status": str, "processed_at": str, "receipt": bytes}, "request_id"),
     "audit_log": ({"seq": int, "entry": bytes, "leaf_hash": bytes}, "seq"),
     "tree_heads": ({"tree_size": int, "body": bytes, "signature": bytes}, "tree_size"),
+    # notes (refusals, log reads) by members who hold no signing key; folded into the log
+    "member_notes": ({"id": int, "body": bytes, "mac": bytes}, "id"),
 }
 
 _NOT_NULL: dict[str, set[str]] = {
@@ -87,6 +89,7 @@ _NOT_NULL: dict[str, set[str]] = {
     "withdrawals": {"pid", "scope", "received", "deadline", "status"},
     "audit_log": {"entry", "leaf_hash"},
     "tree_heads": {"body", "signature"},
+    "member_notes": {"body", "mac"},
 }
 
 _APPEND_ONLY_TRIGGERS = """
@@ -116,6 +119,14 @@ def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
         conn.close()
         raise IntegrityError(f"{path} is unreadable or not a vault database") from exc
     return conn
+
+
+def add_missing_tables(conn: sqlite3.Connection) -> None:
+    """Tables added since schema 1 (additive; existing vaults gain them at open)."""
+    db = sqlite_utils.Database(conn)
+    for name, (columns, pk) in _TABLES.items():
+        if not db[name].exists():
+            db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
 
 
 def create_schema(conn: sqlite3.Connection) -> None:

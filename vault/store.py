@@ -15,7 +15,6 @@ missing or partial blob.
 
 from __future__ import annotations
 
-import datetime as dt
 import errno
 import os
 from collections.abc import Iterable, Iterator
@@ -25,7 +24,7 @@ from pathlib import Path
 from vault import crypto
 from vault.errors import IntegrityError, PolicyRefusal, StorageFull
 from vault.fsutil import fsync_path
-from vault.policy import Grant
+from vault.policy import Admission
 
 BLOB_DIR = "blobs"
 TMP_DIR = "tmp"
@@ -133,16 +132,15 @@ class BlobStore:
         except FileNotFoundError as exc:
             raise IntegrityError(f"blob '{blob_id}' is missing from the vault") from exc
 
-    def plaintext(self, grant: Grant, key: bytes, pid: str, blob_id: str, category: str, *,
-                  now: dt.datetime) -> Iterator[bytes]:
-        """The one door: authenticated plaintext of a blob, only under a grant that admits it.
+    def plaintext(self, admission: Admission, key: bytes, pid: str, blob_id: str,
+                  category: str) -> Iterator[bytes]:
+        """The one door: authenticated plaintext of a blob, only under an admission that the
+        policy engine issued for this participant and category (live consent included).
 
-        The grant is checked (live consent included) before the file is opened;
-        any tampering raises IntegrityError and no unauthenticated byte is handed out.
+        Any tampering raises IntegrityError and no unauthenticated byte is handed out.
         """
-        if not isinstance(grant, Grant):
+        if not isinstance(admission, Admission) or not admission.covers(pid, category):
             raise PolicyRefusal("reading participant data needs a grant from the policy engine")
-        grant.admit(pid, category, now=now)
         return self._decrypt(key, pid, blob_id)
 
     def _decrypt(self, key: bytes, pid: str, blob_id: str) -> Iterator[bytes]:

@@ -163,9 +163,9 @@ def _named_purposes(policy: PolicySet, consent: ConsentVersion, purpose: str) ->
     raise InvalidInput(f"--scope: the consent does not answer purpose {purpose}")
 
 
-def request_withdrawal(v: Vault, pid: str, *, received: dt.date, scope: str = SCOPE_FULL,
-                       now: dt.datetime) -> dict[str, Any]:
+def request_withdrawal(v: Vault, pid: str, *, received: dt.date, scope: str = SCOPE_FULL) -> dict[str, Any]:
     """Record a withdrawal request and its deadline; audited. Nothing is deleted yet."""
+    now = v.now()
     v._require_steward()
     scope = parse_scope(scope)
     if not isinstance(received, dt.date) or isinstance(received, dt.datetime):
@@ -202,8 +202,9 @@ def request_withdrawal(v: Vault, pid: str, *, received: dt.date, scope: str = SC
             "deadline_days": days, "days_left": (deadline - _today(now)).days}
 
 
-def pending(v: Vault, *, now: dt.datetime) -> list[dict[str, Any]]:
+def pending(v: Vault) -> list[dict[str, Any]]:
     """Open requests, overdue first (then by deadline)."""
+    now = v.now()
     rows = v._conn.execute(
         "SELECT request_id, pid, scope, received, deadline FROM withdrawals WHERE status = ? "
         "ORDER BY deadline, received, request_id", (PENDING,)).fetchall()
@@ -242,7 +243,7 @@ def _resolve(v: Vault, target: str) -> tuple[str, ...]:
                      + ", ".join(r[0] for r in rows))
 
 
-def process(v: Vault, target: str, *, now: dt.datetime, reclaim_space: bool = True
+def process(v: Vault, target: str, *, reclaim_space: bool = True
             ) -> dict[str, Any]:
     """Carry out a request (named by request id, or by participant id when one is open).
 
@@ -251,6 +252,7 @@ def process(v: Vault, target: str, *, now: dt.datetime, reclaim_space: bool = Tr
     `reclaim_space=False` leaves the unlinking of the erased files to `reclaim` (or the
     next open): the erasure itself is complete either way.
     """
+    now = v.now()
     v._require_steward()
     try:
         request_id, pid, scope, received, deadline, status = _resolve(v, target)
@@ -624,11 +626,12 @@ def _due(consent: ConsentVersion, now: dt.datetime) -> str | None:
     return TRIGGER_EXPIRED
 
 
-def sweep(v: Vault, *, now: dt.datetime, dry_run: bool = False) -> dict[str, Any]:
+def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
     """Erase, with receipts, every participant whose consent or retention period has ended.
 
     Idempotent (erased participants are skipped); one transaction per participant.
     """
+    now = v.now()
     v._require_steward()
     consents = registry.latest_consents(v._conn, None)  # living participants only
     due: list[tuple[str, str, dt.date]] = []

@@ -43,9 +43,9 @@ def _participant(v: Vault, total: int, blobs: int, block: bytes) -> str:
 
 def _erase_seconds(v: Vault, pid: str, now: dt.datetime) -> tuple[float, float, dict[str, object]]:
     """(erase seconds, reclaim seconds, receipt): the erasure, then unlinking the files."""
-    withdraw.request_withdrawal(v, pid, received=now.date(), now=now)
+    withdraw.request_withdrawal(v, pid, received=now.date())
     start = time.perf_counter()
-    result = withdraw.process(v, pid, now=now, reclaim_space=False)
+    result = withdraw.process(v, pid, reclaim_space=False)
     erased = time.perf_counter()
     withdraw.reclaim(v)
     return erased - start, time.perf_counter() - erased, result["receipt"]
