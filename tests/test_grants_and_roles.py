@@ -243,6 +243,10 @@ def test_analysts_cannot_rekey_read_the_log_or_see_raw_ids(lab) -> None:
         subjects = {s for _, s, _ in a.read_blobs(grant, [eeg[p] for p in pids[:5]])}
         assert subjects == set(pseudonyms(a, "primary-analysis", pids[:5]).values())
         assert not subjects & set(pids)
+        assert grant.participants == set(pseudonyms(a, "primary-analysis", pids).values())
+        decision = a.access_check("primary-analysis", ["eeg-raw"])
+        assert set(decision.decisions) == set(decision.eligible) == grant.participants
+        assert decision.request.participants is None
         with pytest.raises(PolicyRefusal, match="stewards only"):
             a.budget(show_participants=True)
     with pytest.raises(PolicyRefusal):

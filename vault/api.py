@@ -10,8 +10,10 @@ import shutil
 import sqlite3
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
+from dataclasses import replace
 from datetime import UTC, date, datetime
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any, Protocol
 
 from vault import audit, crypto, notes, registry, storage
@@ -142,9 +144,11 @@ class Vault:
 
     def _set_policy(self, policy: PolicySet) -> None:
         self._policy = policy
+        from vault.exports import pseudonyms
+
         self._engine = PolicyEngine(
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
-            self.now)
+            self.now, lambda purpose, pids: pseudonyms(self, purpose, pids))
 
     def _audit_batch(self, entries: list[dict[str, Any]], _ignored: object = None) -> None:
         """Append entries in their own transaction, stamped by the vault's clock (a second
@@ -456,8 +460,22 @@ class Vault:
 
     def access_check(self, purpose: str, categories: Iterable[str], *,
                      participants: Iterable[str] | None = None) -> CohortDecision:
-        """Who a request would include and why others are not; reads no data (audited)."""
-        return self._engine.decide(self.request(purpose, categories, participants=participants))
+        """Who a request would include and why others are not; reads no data (audited).
+
+        Stewards see vault ids; everyone else sees the purpose's pseudonyms."""
+        from vault.exports import pseudonyms
+
+        decision = self._engine.decide(self.request(purpose, categories, participants=participants))
+        if self.role == "steward":
+            return decision
+        names = pseudonyms(self, purpose, list(decision.decisions))
+        return replace(decision, request=decision.request.model_copy(update={"participants": None}),
+                       decisions=MappingProxyType({names[p]: d for p, d in decision.decisions.items()}),
+                       eligible=tuple(names[p] for p in decision.eligible))
+
+    def _grant_participants(self, grant: Grant) -> frozenset[str]:
+        """The vault ids a grant covers, for the export modules (callers see `participants`)."""
+        return self._engine.record(grant).participants
 
     def authorize(self, purpose: str, categories: Iterable[str], *,
                   participants: Iterable[str] | None = None) -> Grant:

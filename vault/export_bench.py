@@ -200,7 +200,7 @@ def _door_parts(v: Vault, now: dt.datetime, n: int) -> dict[str, float]:
 
     batches = _candidates(v, CATEGORY)
     grant = v.authorize("primary-analysis", [CATEGORY], participants=tuple(batches))
-    blobs = [(pid, b[0][0]) for pid, b in batches.items() if pid in grant.participants][:n]
+    blobs = [(pid, b[0][0]) for pid, b in batches.items() if pid in v._grant_participants(grant)][:n]
     t_door, _ = _timed(lambda: [b"".join(v.read_blob(grant, blob)) for _, blob in blobs])
 
     def decrypt_only() -> None:

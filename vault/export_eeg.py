@@ -53,11 +53,11 @@ def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
 
 def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None) -> dict[str, Any]:
     grant = v._authorize_release(purpose, ["eeg-raw"], export=True, recipient=recipient)
-    marks = ",".join("?" * len(grant.participants))
+    marks = ",".join("?" * len(v._grant_participants(grant)))
     rows = v._conn.execute(
         f"SELECT r.blob_id, r.pid, r.meta FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
         f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id",
-        sorted(grant.participants)).fetchall()
+        sorted(v._grant_participants(grant))).fetchall()
     if not rows:
         raise NotFound("the granted participants hold no recordings")
     labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})

@@ -174,7 +174,7 @@ class CohortRatings:
 def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],
                  now: dt.datetime) -> CohortRatings:
     """Every granted participant's ratings, read through the one door and decoded in bulk."""
-    pids = sorted(grant.participants)
+    pids = sorted(v._grant_participants(grant))
     wanted = [blob_id for pid in pids for blob_id, _ in batches.get(pid, ())]
     owners: list[str] = []
     bodies: list[bytes] = []

@@ -33,6 +33,7 @@ AUDIT_CHUNK = 1000  # subjects per audit entry: one batch of entries per decisio
 ConsentLoader = Callable[[Sequence[str] | None], Mapping[str, ConsentVersion | None]]
 AuditSink = Callable[[list[dict[str, Any]]], None]
 Clock = Callable[[], dt.datetime]
+Pseudonymiser = Callable[[str, Sequence[str]], Mapping[str, str]]
 
 
 @dataclass(frozen=True, slots=True)
@@ -88,7 +89,11 @@ class Grant:
     role = property(lambda self: self._record.request.role)
     purpose = property(lambda self: self._record.request.purpose)
     categories = property(lambda self: self._record.categories)
-    participants = property(lambda self: self._record.participants)
+    @property
+    def participants(self) -> frozenset[str]:
+        """Who the grant covers: vault ids for stewards, per-purpose pseudonyms for others."""
+        return self._engine.visible_participants(self._record)
+
     policy_version = property(lambda self: self._record.policy_version)
     consent_digest = property(lambda self: self._record.consent_digest)
     decided_at = property(lambda self: self._record.decided_at)
@@ -108,12 +113,20 @@ class Grant:
 class PolicyEngine:
     """Decides requests against live consent, audits every outcome, mints grants."""
 
-    def __init__(self, policy: Any, consents: ConsentLoader, audit: AuditSink, clock: Clock) -> None:
+    def __init__(self, policy: Any, consents: ConsentLoader, audit: AuditSink, clock: Clock,
+                 pseudonymise: Pseudonymiser | None = None) -> None:
         self.policy = policy
         self._consents = consents
         self._audit = audit
         self._clock = clock
+        self._pseudonymise = pseudonymise
         self._issued: dict[str, GrantRecord] = {}
+
+    def visible_participants(self, record: GrantRecord) -> frozenset[str]:
+        """A grant's participants as its holder may see them (only stewards see vault ids)."""
+        if record.request.role == "steward" or self._pseudonymise is None:
+            return record.participants
+        return frozenset(self._pseudonymise(record.request.purpose, sorted(record.participants)).values())
 
     def record(self, grant: Grant) -> GrantRecord:
         found = (self._issued.get(grant._id)
