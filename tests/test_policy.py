@@ -26,6 +26,7 @@ from vault import crypto
 from vault.consent import ConsentStatus, ConsentVersion, PurposeConsent
 from vault.decide import PERMIT, Reason, Request, decide, request_reasons
 from vault.errors import InvalidInput, UsageError
+from vault.event_codes import EventCodes
 from vault.policyset import (
     DEFAULT_POLICY_DIR,
     DIGEST_DOMAIN,
@@ -150,8 +151,9 @@ def test_default_policy_carries_the_later_fields() -> None:
     assert (ratings.value_type, ratings.value_range) == ("integer", (0.0, 3.0))
     assert scores.value_type == "real" and scores.value_range == (-1.0, 1.0)
     assert scores.derived_from == "eeg-raw"
-    pattern = re.compile(policy.categories["eeg-raw"].event_code_pattern or "")
-    assert pattern.fullmatch("stim/dish_07") and not pattern.fullmatch("note: Ada tired")
+    codes = EventCodes(policy.categories["eeg-raw"].event_codes or ())
+    assert codes.matches("stim/dish-07") and codes.matches("block/start")
+    assert not codes.matches("note: Ada tired") and not codes.matches("stim/Zelda_visit")
     assert policy.purposes["external-sharing"].requires_recipient
     assert not any(p.per_rating_unit_allowed for p in policy.purposes.values())
     assert policy.covers("recommender-training", "recommender-training/canteen-menu")
@@ -270,8 +272,22 @@ MALFORMED = [
      "categories.ratings-explicit.value_range: integer scores need integer bounds"),
     ("categories.toml", "categories|ratings-explicit|value_range", DELETE,
      "categories.ratings-explicit: a 'ratings' category needs value_type and value_range"),
-    ("categories.toml", "categories|eeg-raw|event_code_pattern", "^stim/(",
-     "categories.eeg-raw.event_code_pattern: not a valid regular expression"),
+    ("categories.toml", "categories|eeg-raw|event_codes", ["stim/("],
+     "categories.eeg-raw.event_codes: event code 1: character 6 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", ["(a+)+$"],
+     "categories.eeg-raw.event_codes: event code 1: character 1 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"stim/.*"],
+     "categories.eeg-raw.event_codes: event code 1: character 7 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"S\d{1,9}"],
+     "categories.eeg-raw.event_codes: event code 1: digit runs need 1 <= M <= N <= 4"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"S\d{1,2}\d{1,2}"],
+     "a digit run may not follow a digit or another run"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [],
+     "categories.eeg-raw.event_codes: event codes: list 1 to 200 codes"),
+    ("categories.toml", "categories|eeg-raw|event_code_pattern", "^stim/[A-Za-z0-9_-]+$",
+     "categories.toml: categories.eeg-raw: event_code_pattern is no longer accepted"),
+    ("categories.toml", "categories|ratings-explicit|event_codes", ["stim/1"],
+     "categories.ratings-explicit.event_codes: only recordings carry event codes"),
     ("categories.toml", "categories|Bad Id", {"title": "x"},
      "categories.toml: categories.Bad Id (id): String should match pattern"),
     ("policy.toml", "policy|schema", 2, "policy.toml: policy.schema: Input should be 1"),

@@ -217,6 +217,7 @@ class Vault:
     def _recover(self) -> None:
         from vault.withdraw import finish_interrupted
 
+        storage.add_missing_columns(self._conn)  # additive schema changes of this version
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
@@ -453,10 +454,15 @@ class Vault:
     # -- ingest -------------------------------------------------------------------------------------
 
     def ingest_eeg(self, pid: str, path: Path, *, sidecar: Path | None = None,
-                   event_codes: str | None = None, keep_sex: bool = False,
+                   event_codes: str | list[str] | None = None, keep_sex: bool = False,
                    age_band_years: int | None = None, keep_header_identity: bool = False,
                    now: datetime | None = None) -> dict[str, Any]:
-        """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed."""
+        """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed.
+
+        `event_codes`: the annotations to keep (vault.event_codes; a list or one comma-separated
+        string), default the policy set's. Ingesting the same content again stores nothing and
+        returns the stored blob with `already_stored`.
+        """
         from vault.ingest import ingest_eeg
 
         self._require_steward()
@@ -474,11 +480,16 @@ class Vault:
     # -- exports ------------------------------------------------------------------------------------
 
     def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None,
-                   now: datetime | None = None) -> dict[str, Any]:
-        """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
+                   now: datetime | None = None, with_demographics: bool = False) -> dict[str, Any]:
+        """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest.
+
+        Sex and age band stay in the headers and participants.tsv only with
+        `with_demographics`, which also asks the grant for the demographics category.
+        """
         from vault.export_eeg import export_eeg
 
-        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=self._moment(now))
+        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient, now=self._moment(now),
+                          with_demographics=with_demographics)
 
     def export_matrix(self, purpose: str, category: str, out: Path, *, now: datetime | None = None,
                       **options: Any) -> dict[str, Any]:

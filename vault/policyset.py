@@ -13,17 +13,17 @@ layout and the split into files do not change it but any rule or text does.
 from __future__ import annotations
 
 import json
-import re
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from types import MappingProxyType
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, model_validator
 
 from vault import crypto
-from vault.errors import InvalidInput
+from vault.errors import InvalidInput, UsageError
+from vault.event_codes import EventCodes
 
 SCHEMA_VERSION = 1
 VERSION_LENGTH = 16
@@ -75,7 +75,17 @@ class Category(_Model):
     derived_from: Id | None = None  # derived data inherits its source's consent scope
     value_type: Literal["integer", "real"] | None = None
     value_range: tuple[Number, Number] | None = None
-    event_code_pattern: Annotated[str, StringConstraints(min_length=1, max_length=200)] | None = None
+    # recordings: the annotations kept by de-identification (vault.event_codes language)
+    event_codes: tuple[str, ...] | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _no_free_patterns(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "event_code_pattern" in data:
+            raise ValueError("event_code_pattern is no longer accepted (a regular expression can "
+                             "keep free text): list the codes in event_codes, e.g. "
+                             "['stim/\\d{1,3}', 'block/start']")
+        return data
 
 
 class Role(_Model):
@@ -306,13 +316,13 @@ def _check_categories(doc: PolicyDocument) -> None:
                 raise _fail(f"{path}.value_range", "the lower bound must be below the upper")
             if cat.value_type == "integer" and not (low.is_integer() and high.is_integer()):
                 raise _fail(f"{path}.value_range", "integer scores need integer bounds")
-        if cat.event_code_pattern is not None:
+        if cat.event_codes is not None:
             if cat.kind != "recording":
-                raise _fail(f"{path}.event_code_pattern", "only recordings carry event codes")
+                raise _fail(f"{path}.event_codes", "only recordings carry event codes")
             try:
-                re.compile(cat.event_code_pattern)
-            except (re.error, RecursionError, OverflowError):
-                raise _fail(f"{path}.event_code_pattern", "not a valid regular expression") from None
+                EventCodes(cat.event_codes)
+            except UsageError as exc:
+                raise _fail(f"{path}.event_codes", exc.message) from None
 
 
 def _check_purpose(doc: PolicyDocument, pid: str, p: Purpose) -> None:
