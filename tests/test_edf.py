@@ -819,3 +819,32 @@ def test_every_shipped_file_deidentifies_at_any_offset(src: Path, offset: int, t
     assert np.datetime64(got) == min(max(want, low), high)
     assert d.report.date_clamped == (not low <= want <= high)
     assert ("date clamped" in d.report.render()) == d.report.date_clamped
+
+
+def test_repeated_labels_are_made_unique(tmp_path: Path) -> None:
+    src = tmp_path / "twice.edf"
+    signals = [edfio.EdfSignal(np.zeros(256), 256, label=label) for label in ("Fz", "FZ", "Cz", "Fz")]
+    edfio.Edf(signals, annotations=[]).write(src)  # edfio writes the repeats as given
+    _, d = deid(src, tmp_path)
+    assert d.meta.channels == ["Fz", "CH02", "Cz", "CH04"]  # unique within the file (BIDS rows)
+
+
+def test_the_export_polices_files_stored_before_labels_were_policed(tmp_path: Path) -> None:
+    from vault.edf_header import with_known_channels
+
+    src = tmp_path / "old.edf"
+    edfio.Edf([edfio.EdfSignal(np.zeros(256), 256, label="Fz Jane Roe", physical_dimension="Roe"),
+               edfio.EdfSignal(np.zeros(256), 256, label="Cz", physical_dimension="uV")],
+              annotations=[]).write(src)  # edfio: as an older vault stored it, labels verbatim
+    data = src.read_bytes()
+    h = parse_header(data, len(data))
+    out = with_known_channels(data[: h.header_bytes], h) + data[h.header_bytes :]
+    e = read_edfio_bytes(out, tmp_path)  # edfio reads the policed copy
+    assert [(s.label, s.physical_dimension) for s in e.signals] == [("CH01", ""), ("Cz", "uV")]
+    assert out[h.header_bytes :] == data[h.header_bytes :] and len(out) == len(data)
+
+
+def read_edfio_bytes(data: bytes, tmp: Path):
+    path = tmp / "policed.edf"
+    path.write_bytes(data)
+    return read_edfio(path)

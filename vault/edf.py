@@ -479,7 +479,10 @@ def npy_deidentified_blocks(
     if side["layout"] == "samples_first":
         arr = arr.T
     given_names, given_units = side["channel_names"], side["units"]
-    names = [n if is_known_label(n) else neutral_label(i + 1) for i, n in enumerate(given_names)]
+    names: list[str] = []
+    for i, name in enumerate(given_names):  # as vault.edf_header.policed_channels: known, once
+        known = is_known_label(name) and name.casefold() not in {n.casefold() for n in names}
+        names.append(name if known else neutral_label(i + 1))
     units = [u if is_known_unit(u) else "" for u in given_units]
     if arr.shape[0] != len(names):
         raise InvalidInput("array channel count differs from the sidecar's channel_names")

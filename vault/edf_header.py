@@ -71,6 +71,10 @@ class SignalHeader:
     def label(self) -> str:
         return self.raw["label"].decode("ascii").rstrip()
 
+    @property
+    def unit(self) -> str:
+        return self.raw["dimension"].decode("ascii").rstrip()
+
 
 @dataclass(frozen=True)
 class EdfHeader:
@@ -289,6 +293,39 @@ def parse_plus_date(text: str) -> dt.date | None:
     return date_or_none(int(m[1]), MONTHS.index(m[2].upper()) + 1, int(m[3]))
 
 
+# --------------------------------------------------------------------------- channels
+
+
+def policed_channels(signals: Sequence[SignalHeader]) -> list[tuple[str, str]]:
+    """The (label, unit) to write for each signal (vault.channels): a known electrode or
+    channel name is kept once (a repeat, ignoring case, is replaced too), any other label
+    becomes CHnn by position; a known unit is kept, any other is blanked. Annotation signals
+    keep their label."""
+    out, seen = [], set()
+    for s in signals:
+        label = s.label
+        if not s.is_annotation:
+            if not is_known_label(label) or label.casefold() in seen:
+                label = neutral_label(s.index + 1)
+            seen.add(label.casefold())
+        out.append((label, s.unit if is_known_unit(s.unit) else ""))
+    return out
+
+
+def with_known_channels(header: bytes, h: EdfHeader) -> bytes:
+    """`header` (the bytes `h` was parsed from) with labels and units policed as at ingest:
+    unchanged for anything this version stored, a safety net for files stored before."""
+    signals = []
+    for s, (label, unit) in zip(h.signals, policed_channels(h.signals), strict=True):
+        new = dict(s.raw)
+        if label != s.label:
+            new["label"] = field(label, 16, "label")
+        if unit != s.unit:
+            new["dimension"] = field(unit, 8, "dimension")
+        signals.append(new)
+    return pack_header(h.raw, signals) + header[h.header_bytes :]
+
+
 # --------------------------------------------------------------------------- demographics
 
 
@@ -379,8 +416,8 @@ class DeidOptions:
 
     `date_offset_days`: the participant's secret whole-day shift (see
     `choose_date_offset`). `event_codes`: annotation labels it declares are kept
-    (`vault.event_codes.EventCodes`), every other label becomes `neutral_label`. `keep_sex` keeps the EDF+ sex
-    subfield (M/F); `age_band_years` replaces the birthdate by an additional patient
+    (`vault.event_codes.EventCodes`), every other label becomes `neutral_label`.
+    `keep_sex` keeps the EDF+ sex subfield (M/F); `age_band_years` replaces the birthdate by an additional patient
     subfield `age_<lo>-<hi>` (age in whole years at the original start date, in bands
     of that width; `age_90+` above 89, following the US HIPAA safe-harbour rule,
     cited from memory). The birthdate subfield itself is always written as X.
@@ -522,17 +559,15 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
         changed.append("n_records")
     signals = []
     labels_replaced = units_replaced = 0
-    for s in h.signals:
+    for s, (label, unit) in zip(h.signals, policed_channels(h.signals), strict=True):
         new = dict(s.raw)
-        label = s.raw["label"].decode("ascii").rstrip()
-        if not s.is_annotation and not is_known_label(label):
-            put(f"signal {s.index} label", neutral_label(s.index + 1), label, "")
-            new["label"] = field(neutral_label(s.index + 1), 16, "label")
+        if label != s.label:
+            put(f"signal {s.index} label", label, s.label, "")
+            new["label"] = field(label, 16, "label")
             labels_replaced += 1
-        unit = s.raw["dimension"].decode("ascii").rstrip()
-        if not is_known_unit(unit):
-            put(f"signal {s.index} dimension", "", unit, "")
-            new["dimension"] = field("", 8, "dimension")
+        if unit != s.unit:
+            put(f"signal {s.index} dimension", unit, s.unit, "")
+            new["dimension"] = field(unit, 8, "dimension")
             units_replaced += 1
         for name, pattern in (("transducer", TRANSDUCER_PATTERN), ("prefilter", PREFILTER_PATTERN),
                               ("reserved", None)):  # fmt: skip

@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Any
 from vault import exports
 from vault.bids import BidsWriter
 from vault.edf import recording_meta
-from vault.edf_header import demographics, parse_header, without_demographics
+from vault.edf_header import demographics, parse_header, with_known_channels, without_demographics
 from vault.errors import IntegrityError, InvalidInput, NotFound
 
 if TYPE_CHECKING:
@@ -80,6 +80,8 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
             runs[pid] = runs.get(pid, 0) + 1
             header, blocks = _split_header(iter(chunks))
             try:  # the metadata is the stored header itself: nothing about it is kept in clear
+                parsed = parse_header(header, sizes[blob_id])
+                header = with_known_channels(header, parsed)  # files stored before labels were policed
                 parsed = parse_header(header, sizes[blob_id])
             except InvalidInput as exc:
                 raise IntegrityError("a stored recording has no valid EDF header") from exc
