@@ -171,6 +171,7 @@ def test_describe_lists_every_definition_and_the_version() -> None:
     assert policy.version in text
     for name in [*policy.categories, *policy.roles, *policy.purposes]:
         assert f"  {name}" in text
+    assert "event codes kept: stim/dish-\\d{2}, block/start, block/end" in text  # shown to the steward
 
 
 def test_example_policy_set_loads_and_demonstrates_the_hierarchy() -> None:

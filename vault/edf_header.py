@@ -417,10 +417,11 @@ class DeidOptions:
     `date_offset_days`: the participant's secret whole-day shift (see
     `choose_date_offset`). `event_codes`: annotation labels it declares are kept
     (`vault.event_codes.EventCodes`), every other label becomes `neutral_label`.
-    `keep_sex` keeps the EDF+ sex subfield (M/F); `age_band_years` replaces the birthdate by an additional patient
-    subfield `age_<lo>-<hi>` (age in whole years at the original start date, in bands
-    of that width; `age_90+` above 89, following the US HIPAA safe-harbour rule,
-    cited from memory). The birthdate subfield itself is always written as X.
+    `keep_sex` keeps the EDF+ sex subfield (M/F); `age_band_years` replaces the
+    birthdate by an additional patient subfield `age_<lo>-<hi>` (age in whole years
+    at the original start date, in bands of that width; `age_90+` above 89, following
+    the US HIPAA safe-harbour rule, cited from memory). The birthdate subfield itself
+    is always written as X.
     """
 
     date_offset_days: int

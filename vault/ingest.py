@@ -134,11 +134,11 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
     if numpy_input and sidecar is None:
         raise UsageError("NumPy recordings need --sidecar (JSON: sampling rate, channels, units)")
     inputs = [path, Path(sidecar)] if numpy_input and sidecar is not None else [path]
-    tag = _content_tag(v, pid, _file_digests(inputs))
-    row = v._conn.execute("SELECT blob_id, format FROM recordings WHERE pid = ? AND content_tag = ?",
-                          (pid, tag)).fetchone()
-    if row is not None:
-        return _already_stored(v, pid, row[0], row[1], now)
+    tag = None
+    if numpy_input:  # NumPy: hashed first (and again after reading); EDF: while it streams
+        tag = _content_tag(v, pid, _file_digests(inputs))
+        if (row := _stored_as(v, pid, tag)) is not None:
+            return _already_stored(v, pid, *row, now)
     offset, new_offset = date_offset(v, pid, start_date(path, sidecar if numpy_input else None))
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
                           age_band_years=age_band_years)
@@ -154,9 +154,13 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
     info = v._store.write(key, pid, blob_id, EEG, _prefixed(deid.header, deid.blocks))
     written = [blob_id]
     try:
-        after = _file_digests(inputs) if numpy_input else [seen]
-        if _content_tag(v, pid, after) != tag:
+        read = _content_tag(v, pid, _file_digests(inputs) if numpy_input else [seen])
+        if tag is not None and read != tag:
             raise InvalidInput("recording file changed while it was being read; nothing was stored")
+        tag = read
+        if (row := _stored_as(v, pid, tag)) is not None:  # the same content was stored before
+            v._store.discard(blob_id)
+            return _already_stored(v, pid, *row, now)
         identity = None
         if keep_header_identity and deid.identity.values:
             record = json.dumps({"removed_from_recording": blob_id,
@@ -192,6 +196,12 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
             "recording": {k: meta[k] for k in ("format", "channels", "sampling_rates", "duration",
                                                "n_records", "annotation_count")},
             "identity_kept": identity is not None}
+
+
+def _stored_as(v: Vault, pid: str, tag: str) -> tuple[str, str] | None:
+    row = v._conn.execute("SELECT blob_id, format FROM recordings WHERE pid = ? AND content_tag = ?",
+                          (pid, tag)).fetchone()
+    return None if row is None else (str(row[0]), str(row[1]))
 
 
 def _already_stored(v: Vault, pid: str, blob_id: str, fmt: str, now: dt.datetime) -> dict[str, Any]:

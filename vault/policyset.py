@@ -508,6 +508,9 @@ def describe_policy(policy: PolicySet) -> list[str]:
             flags.append(f"derived from {c.derived_from}")
         if c.value_range is not None:
             flags.append(f"{c.value_type} in [{c.value_range[0]:g}, {c.value_range[1]:g}]")
+        if c.kind == "recording":
+            kept = ", ".join(c.event_codes) if c.event_codes else "none"
+            flags.append(f"event codes kept: {kept} (every other annotation is relabelled)")
         lines.append(f"  {cid}: {c.title} [{'; '.join(flags)}]")
     lines.append(f"roles ({len(policy.roles)}):")
     for rid, r in sorted(policy.roles.items()):
