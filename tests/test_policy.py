@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import copy
 import datetime as dt
+import hashlib
 import json
 import math
 import re
@@ -815,3 +816,22 @@ def test_bench_decide_runs_and_reports_without_timing_assertions() -> None:
     result = bench_decide(n=500, repeat=1)  # speed itself is not asserted in tests
     assert result["participants"] == 500 and result["decisions_per_second"] > 0
     assert 0 < result["eligible"] < 500 and result["baseline_seconds"] > 0
+
+
+def test_a_snapshot_of_an_earlier_version_still_loads_with_its_version_and_keeps_nothing() -> None:
+    # What a vault made before event_codes existed stored: every category with an
+    # `event_code_pattern` key (null except on recordings) and no `event_codes` key.
+    doc = json.loads(load_default_policy().canonical_json())
+    for cid, cat in doc["categories"].items():
+        cat.pop("event_codes", None)
+        cat["event_code_pattern"] = "^(stim|block)/[A-Za-z0-9_-]+$" if cid == "eeg-raw" else None
+    old = json.dumps(doc, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+    policy = parse_policy_json(old)
+    assert policy.canonical_json() == old  # so the stored version still matches (vault opens)
+    assert policy.digest == hashlib.sha256(DIGEST_DOMAIN + old).hexdigest()  # hashlib
+    assert policy.categories["eeg-raw"].event_codes is None  # the regex is never used
+    assert any("event_code_pattern" in w for w in policy.warnings())
+    tables = default_tables()  # but a policy file may not use it
+    tables["categories.toml"]["categories"]["eeg-raw"]["event_code_pattern"] = "^stim/.*$"
+    with pytest.raises(InvalidInput, match="event_code_pattern is no longer accepted"):
+        parse_policy_tables(tables)

@@ -19,7 +19,15 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    ValidationError,
+    ValidationInfo,
+    model_validator,
+)
 
 from vault import crypto
 from vault.errors import InvalidInput, UsageError
@@ -77,11 +85,16 @@ class Category(_Model):
     value_range: tuple[Number, Number] | None = None
     # recordings: the annotations kept by de-identification (vault.event_codes language)
     event_codes: tuple[str, ...] | None = None
+    # Earlier versions' regular expression: accepted only in policy snapshots stored in a
+    # vault (so that vault still opens, with an unchanged version), never used: a policy
+    # set without event_codes keeps no annotation. Files may not set it.
+    event_code_pattern: str | None = None
 
     @model_validator(mode="before")
     @classmethod
-    def _no_free_patterns(cls, data: Any) -> Any:
-        if isinstance(data, dict) and "event_code_pattern" in data:
+    def _no_free_patterns(cls, data: Any, info: ValidationInfo) -> Any:
+        stored = isinstance(info.context, dict) and info.context.get("stored_snapshot")
+        if isinstance(data, dict) and data.get("event_code_pattern") is not None and not stored:
             raise ValueError("event_code_pattern is no longer accepted (a regular expression can "
                              "keep free text): list the codes in event_codes, e.g. "
                              "['stim/\\d{1,3}', 'block/start']")
@@ -262,6 +275,11 @@ class PolicySet:
             if p.special_category and p.special_category_basis is None:
                 out.append(f"purposes.{pid}: processes special-category data but names no "
                            "GDPR Art. 9(2) condition: every request for it is refused")
+        for cid, c in sorted(self.categories.items()):
+            if c.event_code_pattern is not None:
+                out.append(f"categories.{cid}: event_code_pattern (an earlier version's regular "
+                           "expression) is ignored: every annotation is relabelled until a policy "
+                           "set with event_codes is applied")
         return out
 
     def canonical_json(self) -> bytes:
@@ -269,8 +287,16 @@ class PolicySet:
 
 
 def canonical_json(model: BaseModel) -> bytes:
-    """Sorted keys, no whitespace, UTF-8, field names as in the files."""
+    """Sorted keys, no whitespace, UTF-8, field names as in the files.
+
+    A category without `event_codes` is dumped without that key, exactly as before the
+    field existed, so the versions of earlier policy sets (and the vaults pinned to them)
+    stay what they were.
+    """
     data = model.model_dump(mode="json", by_alias=True)
+    for category in data.get("categories", {}).values() if isinstance(model, PolicyDocument) else ():
+        if category.get("event_codes") is None:
+            category.pop("event_codes", None)
     return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
                       allow_nan=False).encode("utf-8")
 
@@ -455,7 +481,7 @@ def parse_policy_tables(tables: Mapping[str, Mapping[str, Any]]) -> PolicySet:
 def parse_policy_json(raw: bytes) -> PolicySet:
     """Rebuild a policy set from `PolicySet.canonical_json()` (e.g. a stored snapshot)."""
     try:
-        document = PolicyDocument.model_validate_json(raw)
+        document = PolicyDocument.model_validate_json(raw, context={"stored_snapshot": True})
     except ValidationError as exc:
         raise invalid_from_validation("policy snapshot", exc) from None
     return PolicySet(document)
