@@ -421,3 +421,27 @@ def test_a_vault_without_the_content_tag_column_gains_it_at_open(vault_path: Pat
         pid = v.enrol(_form("consent-all-granted.toml", "old"))["participant_id"]
         first = v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")
         assert v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")["blob_id"] == first["blob_id"]
+
+
+def test_metadata_an_earlier_version_kept_in_clear_is_scrubbed_at_open(vault_path: Path) -> None:
+    import sqlite3
+
+    with Vault.init(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        pid = v.enrol(_form("consent-all-granted.toml", "old"))["participant_id"]
+        blob = v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")["blob_id"]
+    old_meta = {"format": "EDF+C", "channels": ["Fz Quentin Marlowe"], "units": ["Marlowe"]}
+    old_deid = {"fields_changed": ["patient.name", "recording.technician"], "sex_kept": True,
+                "date_shift_applied": True, "annotations": 3, "annotations_relabelled": 1}
+    conn = sqlite3.connect(vault_path / "vault.db")  # what an earlier version stored in clear
+    conn.execute("UPDATE recordings SET meta = ?, deid = ? WHERE blob_id = ?",
+                 (json.dumps(old_meta), json.dumps(old_deid), blob))
+    conn.commit()
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        row = v._conn.execute("SELECT meta, deid FROM recordings").fetchone()
+        assert row[0] == "{}"
+        assert json.loads(row[1])["fields_changed"] == 2 and json.loads(row[1])["sex_kept"]
+        assert v.audit_entries()[-1]["action"] == "recordings.scrub"
+    assert_absent(vault_path, b"Quentin Marlowe", b"patient.name")  # secure_delete, WAL folded at close
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:  # idempotent: nothing more to do
+        assert [e["action"] for e in v.audit_entries()].count("recordings.scrub") == 1

@@ -215,9 +215,11 @@ class Vault:
         return vault
 
     def _recover(self) -> None:
+        from vault.ingest import scrub_clear_metadata
         from vault.withdraw import finish_interrupted
 
         storage.add_missing_columns(self._conn)  # additive schema changes of this version
+        scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)

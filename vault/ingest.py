@@ -116,10 +116,27 @@ def _content_tag(v: Vault, pid: str, digests: Sequence[crypto.StreamingDigest]) 
 
 def _summary(report: dict[str, Any]) -> dict[str, Any]:
     """What de-identification replaced, as counts and flags: the only part kept in clear."""
-    return {"fields_changed": len(report["fields_changed"]),
-            **{k: report[k] for k in ("labels_replaced", "units_replaced", "annotations_relabelled",
-                                      "date_shift_applied", "date_clamped", "sex_kept",
-                                      "age_band_written")}}
+    changed = report.get("fields_changed", [])
+    return {"fields_changed": len(changed) if isinstance(changed, list) else int(changed),
+            **{k: report.get(k, 0 if k.endswith(("_replaced", "_relabelled")) else False)
+               for k in ("labels_replaced", "units_replaced", "annotations_relabelled",
+                         "date_shift_applied", "date_clamped", "sex_kept", "age_band_written")}}
+
+
+def scrub_clear_metadata(v: Vault) -> int:
+    """Rows stored by earlier versions kept channel metadata (labels, units, rates) and the
+    full report in clear: reduce them to what this version keeps (the header inside the
+    encrypted file has it all). Idempotent; audited when it changes anything."""
+    rows = v._conn.execute("SELECT blob_id, deid FROM recordings WHERE meta != '{}'").fetchall()
+    if not rows:
+        return 0
+    with storage.transaction(v._conn):
+        for blob_id, deid in rows:
+            v._conn.execute("UPDATE recordings SET meta = '{}', deid = ? WHERE blob_id = ?",
+                            (json.dumps(_summary(json.loads(deid))), blob_id))
+        v._audit.append({"actor": v.member, "action": "recordings.scrub", "decision": "done",
+                         "details": {"rows": len(rows)}}, _at(v.now()))
+    return len(rows)
 
 
 def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
