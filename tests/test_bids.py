@@ -42,10 +42,11 @@ from mne_bids import BIDSPath, read_raw_bids
 from vault.bids import README_CAUTIONS, BidsWriter, WrittenFile, channel_type
 from vault.edf import DeidOptions, RecordingMeta, deidentified_blocks
 from vault.errors import Conflict, InvalidInput, UsageError
+from vault.event_codes import EventCodes
 
 ROOT = Path(__file__).resolve().parent.parent
 TASK = "dishrating"  # invented study: how appealing photos of plated canteen dishes are
-CODES = re.compile(r"stim/\d+")
+CODES = EventCodes([r"stim/\d{1,4}"])
 # Invented identity written into every source; none of it may reach the dataset.
 NAME, CODE, BORN, STARTED = "Jolanda_Vermeulen", "MWX88412", dt.date(1991, 5, 17), dt.date(2021, 3, 2)
 TECH, ADMIN, EQUIPMENT = "TechQuirinius", "ADMCanteen77", "RigSerial3391Z"

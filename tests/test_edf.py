@@ -47,10 +47,11 @@ from vault.edf_header import (
     deidentify_header,
     parse_header,
     read_header,
-    shift_date,
+    shifted_date,
     uniform_below,
 )
 from vault.errors import InvalidInput, NotFound, VaultError
+from vault.event_codes import EventCodes
 
 DATA = Path(pyedflib.__file__).parent / "tests" / "data"
 EDF_FILES = ["test_generator.edf", "test_legacy.edf", "test_subsecond.edf", "test_utf8.edf"]
@@ -60,7 +61,10 @@ BDF_FILES = [
     "test_generator_datarec_generator_2.bdf",
 ]
 OFFSET = -2345
-CODES = re.compile(r"XL[A-Za-z]+|stim/\d+|S\d{1,3}")
+# The declared codes (vault.event_codes) and, as oracle, the same set as a plain regex
+# (ASCII digits only: Python's \d would also match other scripts' digits).
+CODES = EventCodes(["XLEvent", "XLSpike", r"stim/\d{1,4}", r"S\d{1,3}"])
+CODES_RE = re.compile(r"XLEvent|XLSpike|stim/[0-9]{1,4}|S[0-9]{1,3}")
 SLOW = settings(deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 
 
@@ -146,7 +150,11 @@ def test_signals_byte_identical_and_both_readers_open(name: str, tmp_path: Path)
         for i in range(ra.signals_in_file):
             if ra.getLabel(i) in ("EDF Annotations", "BDF Annotations"):
                 continue
-            assert rb.getLabel(i) == ra.getLabel(i)
+            # the only channel names in pyedflib's files are Fp1 (10-20) and pulse (a usual
+            # physiological channel), read with pyedflib; the rest ("sine 1 Hz",
+            # "squarewave") become CHnn by position
+            want = ra.getLabel(i) if ra.getLabel(i) in ("Fp1", "pulse") else f"CH{i + 1:02d}"
+            assert rb.getLabel(i) == want
             assert rb.getSampleFrequency(i) == ra.getSampleFrequency(i)
             assert np.array_equal(ra.readSignal(i, digital=True), rb.readSignal(i, digital=True))
             res = abs(ra.getPhysicalMaximum(i) - ra.getPhysicalMinimum(i)) / (
@@ -158,7 +166,8 @@ def test_signals_byte_identical_and_both_readers_open(name: str, tmp_path: Path)
         rb.close()
     # edfio as second independent reader
     ea, eb = read_edfio(src), read_edfio(out)
-    assert [s.label for s in eb.signals] == [s.label for s in ea.signals] == d.meta.channels
+    assert [s.label for s in eb.signals] == d.meta.channels
+    assert len(ea.signals) == len(eb.signals)
     for sa, sb in zip(ea.signals, eb.signals, strict=True):
         assert np.array_equal(sa.digital, sb.digital)
     assert d.meta.sampling_rates == [s.sampling_frequency for s in ea.signals]
@@ -176,7 +185,7 @@ def test_annotations_timing_kept_labels_policed(name: str, tmp_path: Path) -> No
     rb.close()
     assert len(tx_a) > 0
     assert np.array_equal(on_a, on_b) and np.array_equal(du_a, du_b)  # pyedflib
-    expected = [t if CODES.fullmatch(t) else "event" for t in tx_a]
+    expected = [t if CODES_RE.fullmatch(t) else "event" for t in tx_a]
     assert list(tx_b) == expected
     ea, eb = read_edfio(src), read_edfio(out)  # edfio reads the same timings
     assert [(x.onset, x.duration) for x in eb.annotations] == [(x.onset, x.duration) for x in ea.annotations]
@@ -395,8 +404,8 @@ def test_invented_name_appears_nowhere(writer: str, tmp_path: Path) -> None:
 @given(start=st.dates(EDF_FIRST_DATE, EDF_LAST_DATE), rnd=st.randoms(use_true_random=False))
 def test_chosen_offset_keeps_dates_in_range(start: dt.date, rnd) -> None:
     offset = choose_date_offset(lambda n: rnd.randrange(n), start)
-    shifted = shift_date(start, offset)
-    assert EDF_FIRST_DATE <= shifted <= EDF_LAST_DATE
+    shifted, clamped = shifted_date(start, offset)
+    assert EDF_FIRST_DATE <= shifted <= EDF_LAST_DATE and not clamped
     assert 730 <= abs(offset) <= 30 * 365  # multi-year, bounded
     if start >= dt.date(1988, 1, 2):  # room to go back 2 years plus the 1-year margin
         assert offset < 0
@@ -405,14 +414,12 @@ def test_chosen_offset_keeps_dates_in_range(start: dt.date, rnd) -> None:
 
 
 @given(start=st.dates(EDF_FIRST_DATE, EDF_LAST_DATE), offset=st.integers(-40000, 40000))
-def test_shift_date_exact_or_refused(start: dt.date, offset: int) -> None:
+def test_shift_date_exact_or_clamped(start: dt.date, offset: int) -> None:
     want = np.datetime64(start) + np.timedelta64(offset, "D")  # numpy
-    inside = np.datetime64(EDF_FIRST_DATE) <= want <= np.datetime64(EDF_LAST_DATE)
-    if inside:
-        assert np.datetime64(shift_date(start, offset)) == want
-    else:
-        with pytest.raises(InvalidInput):
-            shift_date(start, offset)
+    low, high = np.datetime64(EDF_FIRST_DATE), np.datetime64(EDF_LAST_DATE)
+    got, clamped = shifted_date(start, offset)
+    assert np.datetime64(got) == min(max(want, low), high)
+    assert clamped == (not low <= want <= high)
 
 
 def test_offset_from_crypto_randomness_is_uniform() -> None:
@@ -424,9 +431,11 @@ def test_offset_from_crypto_randomness_is_uniform() -> None:
     assert -30 * 365 <= offset <= -730
 
 
-def test_shift_out_of_range_refused(tmp_path: Path) -> None:
-    with pytest.raises(InvalidInput, match="1985-2084"):
-        deidentified_blocks(sample("test_generator.bdf"), opts(offset=-(20 * 365)))
+def test_shift_out_of_range_is_clamped_and_reported(tmp_path: Path) -> None:
+    # test_generator.bdf starts 01.01.2000 (pyedflib reads it so): 20 years back leaves 1985
+    out, d = deid(sample("test_generator.bdf"), tmp_path, opts(offset=-(20 * 365)))
+    assert raw_header(out.read_bytes())[0]["startdate"] == b"01.01.85"
+    assert d.report.date_clamped and "date clamped" in d.report.render()
 
 
 # --------------------------------------------------------------------------- bad input
@@ -586,7 +595,7 @@ def test_fuzz_random_headers(data: bytes, size: int) -> None:
 @given(area=st.binary(max_size=120), time_keeping=st.booleans())
 def test_fuzz_annotation_bytes(area: bytes, time_keeping: bool) -> None:
     try:
-        out = rewrite_annotations(area, CODES.fullmatch, b"event", time_keeping=time_keeping,
+        out = rewrite_annotations(area, CODES.matches, b"event", time_keeping=time_keeping,
                                   where="fuzz", counts=AnnotationCounts())  # fmt: skip
     except InvalidInput:
         return
@@ -610,7 +619,7 @@ def test_rewritten_tals_parse_identically_in_edfio(tals, spare: int) -> None:
     raw = b"".join(parts)
     area = raw + b"\x00" * spare
     counts = AnnotationCounts()
-    out = rewrite_annotations(area, CODES.fullmatch, b"event", time_keeping=True, where="t",
+    out = rewrite_annotations(area, CODES.matches, b"event", time_keeping=True, where="t",
                               counts=counts)  # fmt: skip
     assert len(out) == len(area)
     before = _EdfAnnotationsDataRecord.from_bytes(area).annotations  # edfio's TAL parser
@@ -618,7 +627,7 @@ def test_rewritten_tals_parse_identically_in_edfio(tals, spare: int) -> None:
     assert [(a.onset, a.duration) for a in after] == [(a.onset, a.duration) for a in before]
     short = counts.short_label_records == 1
     for a, b in zip(before, after, strict=True):
-        kept = a.text == "" or CODES.fullmatch(a.text)
+        kept = a.text == "" or CODES_RE.fullmatch(a.text)
         assert b.text == (a.text if kept else ("X" if short else "event"))
     assert out.startswith(b"+12.5\x14\x14\x00")  # time-keeping TAL byte-exact
 
@@ -772,3 +781,70 @@ def test_bad_numpy_files_refused(kind: str, tmp_path: Path) -> None:
     with pytest.raises(InvalidInput) as info:
         npy_deidentified_blocks(arr, side, opts())
     _check_clean(info.value, b"Zephyrine")
+
+
+# --------------------------------------------------------------------------- labels, units, dates
+
+PYEDFLIB_ROOT = Path(pyedflib.__file__).parent
+SHIPPED = sorted({*(PYEDFLIB_ROOT / "tests" / "data").glob("*.[eb]df"),
+                  *(PYEDFLIB_ROOT / "data").glob("*.[eb]df")})  # every EDF/BDF in the wheel
+
+
+def test_free_text_labels_and_units_are_replaced(tmp_path: Path) -> None:
+    src = tmp_path / "labels.edf"
+    signals = [edfio.EdfSignal(np.zeros(256), 256, label=label, physical_dimension=unit)
+               for label, unit in (("Fz Jane Roe", "uV"), ("EEG Cz-REF", "Roe"), ("ECG", "mV"))]
+    edfio.Edf(signals, annotations=[]).write(src)  # written by edfio
+    out, d = deid(src, tmp_path)
+    assert b"Jane Roe" in src.read_bytes() and b"Jane" not in out.read_bytes()
+    e = read_edfio(out)  # edfio reads the replaced header
+    assert [s.label for s in e.signals] == ["CH01", "EEG Cz-REF", "ECG"] == d.meta.channels
+    assert [s.physical_dimension for s in e.signals] == ["uV", "", "mV"] == d.meta.units
+    assert (d.report.labels_replaced, d.report.units_replaced) == (1, 1)
+    assert {"signal 0 label", "signal 1 dimension"} <= set(d.report.fields_changed)
+    shown = json.dumps(d.report.as_dict()) + d.report.render() + repr(d.identity)
+    assert "Jane" not in shown and "Roe" not in shown
+    assert d.identity.values["signal 0 label"] == "Fz Jane Roe"  # only for the encrypted record
+
+
+@pytest.mark.parametrize("offset", [-40000, -9000, 0, 9000, 40000])
+@pytest.mark.parametrize("src", SHIPPED, ids=lambda p: f"{p.parent.name}/{p.name}")
+def test_every_shipped_file_deidentifies_at_any_offset(src: Path, offset: int, tmp_path: Path) -> None:
+    out, d = deid(src, tmp_path, opts(offset=offset))  # never refused for its date
+    with pyedflib.EdfReader(str(src)) as ra, pyedflib.EdfReader(str(out)) as rb:  # pyedflib
+        start = ra.getStartdatetime().date()
+        got = rb.getStartdatetime().date()
+    want = np.datetime64(start) + np.timedelta64(offset, "D")  # numpy's calendar
+    low, high = np.datetime64(EDF_FIRST_DATE), np.datetime64(EDF_LAST_DATE)
+    assert np.datetime64(got) == min(max(want, low), high)
+    assert d.report.date_clamped == (not low <= want <= high)
+    assert ("date clamped" in d.report.render()) == d.report.date_clamped
+
+
+def test_repeated_labels_are_made_unique(tmp_path: Path) -> None:
+    src = tmp_path / "twice.edf"
+    signals = [edfio.EdfSignal(np.zeros(256), 256, label=label) for label in ("Fz", "FZ", "Cz", "Fz")]
+    edfio.Edf(signals, annotations=[]).write(src)  # edfio writes the repeats as given
+    _, d = deid(src, tmp_path)
+    assert d.meta.channels == ["Fz", "CH02", "Cz", "CH04"]  # unique within the file (BIDS rows)
+
+
+def test_the_export_polices_files_stored_before_labels_were_policed(tmp_path: Path) -> None:
+    from vault.edf_header import with_known_channels
+
+    src = tmp_path / "old.edf"
+    edfio.Edf([edfio.EdfSignal(np.zeros(256), 256, label="Fz Jane Roe", physical_dimension="Roe"),
+               edfio.EdfSignal(np.zeros(256), 256, label="Cz", physical_dimension="uV")],
+              annotations=[]).write(src)  # edfio: as an older vault stored it, labels verbatim
+    data = src.read_bytes()
+    h = parse_header(data, len(data))
+    out = with_known_channels(data[: h.header_bytes], h) + data[h.header_bytes :]
+    e = read_edfio_bytes(out, tmp_path)  # edfio reads the policed copy
+    assert [(s.label, s.physical_dimension) for s in e.signals] == [("CH01", ""), ("Cz", "uV")]
+    assert out[h.header_bytes :] == data[h.header_bytes :] and len(out) == len(data)
+
+
+def read_edfio_bytes(data: bytes, tmp: Path):
+    path = tmp / "policed.edf"
+    path.write_bytes(data)
+    return read_edfio(path)

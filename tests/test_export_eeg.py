@@ -11,8 +11,8 @@ import numpy as np
 import pyedflib
 import pytest
 
-from tests.clock import at
-from tests.conftest import ROOT, assert_absent
+from tests.clock import ManualClock, at
+from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent
 from tests.test_bids import _issues, _validator
 from vault import IntegrityError, PolicyRefusal, Vault, verify_export
 
@@ -119,3 +119,44 @@ def test_export_check_flags_withdrawn_participants(lab, tmp_path: Path) -> None:
     forged["body"]["export_id"] = "x-0000"
     with pytest.raises(IntegrityError):
         at(v, NOW).check_export(forged)
+
+
+# --------------------------------------------------------------------------- demographics
+
+
+@pytest.fixture
+def with_demographics(vault_path: Path) -> Vault:
+    """Six participants whose stored headers keep sex and an age band (--keep-sex --age-band)."""
+    v = Vault.init(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW))
+    for i in range(6):
+        pid = v.enrol(_form("consent-all-granted.toml", f"d{i}"))["participant_id"]
+        v.ingest_eeg(pid, SOURCE, keep_sex=True, age_band_years=10)
+    yield v
+    v.close()
+
+
+def _patients(out: Path) -> list[tuple[str, str]]:
+    found = []
+    for edf in sorted(out.rglob("*_eeg.edf")):
+        with pyedflib.EdfReader(str(edf)) as r:  # pyedflib reads the exported header
+            found.append((r.getSex(), r.getPatientAdditional()))
+    return found
+
+
+def test_demographics_leave_only_under_a_grant_that_covers_them(with_demographics, tmp_path: Path) -> None:
+    v = with_demographics
+    # SOURCE's patient is male, born 30-JUN-1969, recorded 04-APR-2011 (read from its header):
+    # 41 years old, band 40-49 (dateutil-free arithmetic, done by hand).
+    plain = tmp_path / "plain"
+    v.export_eeg("primary-analysis", plain)  # eeg-raw only: no demographics in the grant
+    assert _patients(plain) == [("", "")] * 6
+    assert (plain / "participants.tsv").read_text().splitlines()[0] == "participant_id"
+    assert_absent(plain, b"age_40-49", b" M X X")
+    full = tmp_path / "full"
+    v.export_eeg("primary-analysis", full, with_demographics=True)
+    assert _patients(full) == [("Male", "age_40-49")] * 6
+    rows = (full / "participants.tsv").read_text().splitlines()
+    assert rows[0] == "participant_id\tsex\tage_band" and all(r.endswith("\tM\t40-49") for r in rows[1:])
+    with pytest.raises(PolicyRefusal):  # method development may never touch demographics
+        v.export_eeg("method-development", tmp_path / "refused", with_demographics=True)
+    assert not (tmp_path / "refused").exists() or not any((tmp_path / "refused").iterdir())

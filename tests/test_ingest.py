@@ -5,15 +5,16 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import io
+import json
 from pathlib import Path
 
 import numpy as np
 import pyedflib
 import pytest
 
-from tests.clock import at
+from tests.clock import ManualClock, at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
-from vault import InvalidInput, PolicyRefusal, Vault
+from vault import InvalidInput, PolicyRefusal, UsageError, Vault
 
 PYEDFLIB_DATA = Path(pyedflib.__file__).parent / "tests" / "data"  # real files shipped in the wheel
 EXAMPLES = ROOT / "docs" / "examples"
@@ -210,3 +211,237 @@ def test_numpy_recordings_with_sidecars(lab, tmp_path: Path) -> None:
     with pytest.raises(InvalidInput):
         at(v, NOW).ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json")
     assert len(v.blobs()) == before
+
+
+# --------------------------------------------------------------------------- de-identification holes
+# New tests read time from an injected clock (tests/clock.py), never a per-call `now=`.
+
+
+@pytest.fixture
+def clocked(vault_path: Path):
+    v = Vault.init(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW))
+    pids = {name: v.enrol(_form(f"consent-{name}.toml", name))["participant_id"]
+            for name in ("all-granted", "no-recommender")}
+    yield v, pids
+    v.close()
+
+
+def _pyedflib_file(path: Path, labels: list[tuple[str, str]], notes: list[str],
+                   start: dt.datetime = dt.datetime(2021, 3, 2, 10, 0, 0)) -> Path:
+    """An EDF+ written by pyedflib (EDFlib) with the given (label, unit) pairs and annotations."""
+    w = pyedflib.EdfWriter(str(path), len(labels), file_type=pyedflib.FILETYPE_EDFPLUS)
+    w.setSignalHeaders([{"label": label, "dimension": unit, "sample_frequency": 256,
+                         "physical_max": 100, "physical_min": -100, "digital_max": 32767,
+                         "digital_min": -32768, "transducer": "", "prefilter": ""}
+                        for label, unit in labels])  # fmt: skip
+    w.setStartdatetime(start)
+    w.writeSamples([np.sin(np.arange(256 * 4) / (3 + i)) * 50 for i in range(len(labels))])
+    for i, text in enumerate(notes):
+        w.writeAnnotation(0.25 + i * 0.5, -1, text)
+    w.close()
+    return path
+
+
+def _read_back_clocked(v: Vault, blob_id: str, tmp_path: Path) -> Path:
+    grant = v._authorize_release("method-development", ["eeg-raw"], cohort=False)
+    out = tmp_path / f"{blob_id}.edf"
+    out.write_bytes(b"".join(v.read_blob(grant, blob_id)))
+    return out
+
+
+def test_free_text_labels_and_units_never_reach_the_vault_or_an_export(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    src = _pyedflib_file(tmp_path / "named.edf", [("Fz Jane Roebuck", "uV"), ("EEG FCC5h-REF", "Roebuck"),
+                                                  ("", "uV")], ["stim/dish-07"])  # fmt: skip
+    assert b"Jane Roebuck" in src.read_bytes()  # the source carries them (pyedflib wrote them)
+    result = v.ingest_eeg(pids["all-granted"], src)
+    report = result["deidentification"]
+    assert (report["labels_replaced"], report["units_replaced"]) == (2, 1)
+    assert result["recording"]["channels"] == ["CH01", "EEG FCC5h-REF", "CH03"]
+    assert "Roebuck" not in json.dumps(result)
+    # Nothing of the channel metadata sits in the clear: not the free text, not even the
+    # kept label (the database, its WAL and every blob file were searched).
+    assert_absent(v.path, b"Roebuck", b"Jane", b"FCC5h-REF", b"sampling_rates")
+    with pyedflib.EdfReader(str(_read_back_clocked(v, result["blob_id"], tmp_path))) as back:
+        assert back.getSignalLabels() == ["CH01", "EEG FCC5h-REF", "CH03"]  # pyedflib reads it
+        assert [back.getPhysicalDimension(i) for i in range(3)] == ["uV", "", "uV"]
+    out = tmp_path / "bids"
+    v.export_eeg("method-development", out)  # the export reads channels from the stored header
+    channels = next(out.rglob("*_channels.tsv")).read_text().splitlines()
+    assert [row.split("\t")[0] for row in channels[1:]] == ["CH01", "EEG FCC5h-REF", "CH03"]
+    assert_absent(out, b"Roebuck", b"Jane")
+
+
+def test_numpy_sidecar_labels_and_units_are_policed_too(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    np.save(tmp_path / "rec.npy", np.zeros((2, 512)))
+    (tmp_path / "rec.json").write_text(json.dumps({
+        "sampling_rate": 256, "channel_names": ["Cz", "Jane Roebuck"], "units": ["uV", "Roebuck"]}))
+    result = v.ingest_eeg(pids["all-granted"], tmp_path / "rec.npy", sidecar=tmp_path / "rec.json")
+    assert result["recording"]["channels"] == ["Cz", "CH02"]
+    assert result["deidentification"]["units_replaced"] == 1
+    assert_absent(v.path, b"Roebuck")
+
+
+def test_free_text_after_a_stimulus_prefix_is_relabelled(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    src = _pyedflib_file(tmp_path / "notes.edf", [("Cz", "uV")],
+                         ["stim/dish-07", "stim/Zelda_visit", "block/start"])  # fmt: skip
+    result = v.ingest_eeg(pids["all-granted"], src)  # the shipped policy set's event codes
+    with pyedflib.EdfReader(str(_read_back_clocked(v, result["blob_id"], tmp_path))) as back:
+        texts = list(back.readAnnotations()[2])  # pyedflib
+    assert texts == ["stim/dish-07", "event", "block/start"]
+    assert result["deidentification"]["annotations_relabelled"] == 1
+
+
+@pytest.mark.parametrize("codes", ["(a+)+$", "stim/.*", "stim/[A-Za-z_]+", r"stim/\d+"])
+def test_regular_expressions_are_refused_as_event_codes(clocked, tmp_path: Path, codes: str) -> None:
+    v, pids = clocked
+    before = _snapshot(v.path)
+    with pytest.raises(UsageError, match=r"digit runs"):
+        v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_subsecond.edf", event_codes=codes)
+    assert _snapshot(v.path) == before
+
+
+def test_a_declared_list_of_event_codes_is_honoured(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    result = v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_subsecond.edf",
+                          event_codes=["XLEvent", "XLSpike"])
+    with pyedflib.EdfReader(str(_read_back_clocked(v, result["blob_id"], tmp_path))) as back:
+        texts = set(back.readAnnotations()[2])  # pyedflib
+    assert texts == {"XLEvent", "XLSpike", "event"}  # "Clip Note" relabelled
+
+
+def _placeholder_dated(tmp_path: Path, *, plus: bool) -> Path:
+    """A valid file dated 01.01.85: EDF+ with "Startdate X" (date unknown) or plain EDF."""
+    if plus:
+        src = _pyedflib_file(tmp_path / "anon.edf", [("Cz", "uV")], ["stim/dish-01"])
+        data = bytearray(src.read_bytes())
+        data[88:168] = b"Startdate X X X X".ljust(80)  # EDF+ anonymised date (EDF+ spec, from memory)
+        data[168:176] = b"01.01.85"
+    else:
+        data = bytearray((PYEDFLIB_DATA / "test_legacy.edf").read_bytes())
+        data[168:176] = b"01.01.85"  # plain EDF: a real (if odd) date, 1985's first day
+    path = tmp_path / ("anon.edf" if plus else "early.edf")
+    path.write_bytes(bytes(data))
+    return path
+
+
+def test_an_earlier_dated_file_is_clamped_never_refused(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    pid = pids["all-granted"]
+    v.ingest_eeg(pid, PYEDFLIB_DATA / "test_generator.edf")  # 2011: the offset goes years back
+    early = v.ingest_eeg(pid, _placeholder_dated(tmp_path, plus=False))
+    assert early["deidentification"]["date_clamped"]
+    back = _read_back_clocked(v, early["blob_id"], tmp_path).read_bytes()
+    assert back[168:176] == b"01.01.85"  # clamped to the window's first day
+    anon = v.ingest_eeg(pid, _placeholder_dated(tmp_path, plus=True))
+    report = anon["deidentification"]
+    assert not report["date_shift_applied"] and not report["date_clamped"]
+    back = _read_back_clocked(v, anon["blob_id"], tmp_path).read_bytes()
+    assert back[88:168].split() == [b"Startdate", b"X", b"X", b"X", b"X"] and back[168:176] == b"01.01.85"
+
+
+def _annotation_only(tmp_path: Path) -> Path:
+    """EDF+ with only an annotation signal (header layout: EDF/EDF+ specifications, from memory)."""
+    fixed = [b"0", b"X X X X", b"Startdate 02-MAR-2021 X X X", b"02.03.21", b"10.00.00", b"512",
+             b"EDF+C", b"1", b"0", b"1"]  # fmt: skip
+    widths = [8, 80, 80, 8, 8, 8, 44, 8, 8, 4]
+    signal = [(b"EDF Annotations", 16), (b"", 80), (b"", 8), (b"-1", 8), (b"1", 8), (b"-32768", 8),
+              (b"32767", 8), (b"", 80), (b"30", 8), (b"", 32)]  # fmt: skip
+    header = b"".join(f.ljust(w) for f, w in zip(fixed, widths, strict=True))
+    header += b"".join(f.ljust(w) for f, w in signal)
+    record = b"+0\x14\x14\x00+1\x14stim/dish-01\x14\x00".ljust(60, b"\x00")
+    path = tmp_path / "annotations-only.edf"
+    path.write_bytes(header + record)
+    return path
+
+
+def test_a_file_the_export_would_refuse_is_refused_at_ingest(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    before = _snapshot(v.path)
+    with pytest.raises(InvalidInput, match="no ordinary signals"):
+        v.ingest_eeg(pids["all-granted"], _annotation_only(tmp_path))
+    assert _snapshot(v.path) == before  # no blob, no row, no date offset chosen
+    # An empty label is replaced at ingest, so the participant's recordings still export.
+    src = _pyedflib_file(tmp_path / "empty-label.edf", [("", "uV"), ("Cz", "uV")], [])
+    v.ingest_eeg(pids["all-granted"], src)
+    v.ingest_eeg(pids["all-granted"], PYEDFLIB_DATA / "test_subsecond.edf")
+    assert v.export_eeg("method-development", tmp_path / "bids")["recordings"] == 2
+
+
+def test_the_cli_refuses_an_unexportable_file_with_exit_8(vault_path: Path, tmp_path: Path,
+                                                           capsys, monkeypatch) -> None:
+    from vault.cli import main
+
+    with Vault.init(vault_path, TEST_PASSPHRASE) as v:
+        pid = v.enrol(_form("consent-all-granted.toml", "cli"))["participant_id"]
+    monkeypatch.setenv("MINDWARD_PASSPHRASE", TEST_PASSPHRASE)
+    code = main(["ingest", "eeg", pid, str(_annotation_only(tmp_path)), "--vault", str(vault_path)])
+    _, err = capsys.readouterr()
+    assert code == 8 and err.count("\n") == 1 and "no ordinary signals" in err  # docs/cli.md table
+
+
+def test_re_ingest_is_idempotent(clocked, tmp_path: Path) -> None:
+    v, pids = clocked
+    a, b = pids["all-granted"], pids["no-recommender"]
+    first = v.ingest_eeg(a, PYEDFLIB_DATA / "test_generator.edf")
+    blobs = len(v.blobs())
+    again = v.ingest_eeg(a, PYEDFLIB_DATA / "test_generator.edf", keep_sex=True)
+    assert again["already_stored"] and again["blob_id"] == first["blob_id"]
+    assert len(v.blobs()) == blobs
+    last = v.audit_entries()[-1]
+    assert last["action"] == "ingest.eeg" and last["details"] == {"blob": first["blob_id"],
+                                                                  "already_stored": True}
+    copy = tmp_path / "copy.edf"  # same content under another name: still the same recording
+    copy.write_bytes((PYEDFLIB_DATA / "test_generator.edf").read_bytes())
+    assert v.ingest_eeg(a, copy)["already_stored"]
+    other = v.ingest_eeg(b, copy)  # another participant's key: a recording of their own
+    assert not other["already_stored"] and len(v.blobs()) == blobs + 1
+    changed = bytearray(copy.read_bytes())
+    changed[int(changed[184:192]) + 1] ^= 1  # one sample of the first record: another recording
+    copy.write_bytes(bytes(changed))
+    assert not v.ingest_eeg(a, copy)["already_stored"]
+    out = tmp_path / "bids"
+    v.export_eeg("method-development", out)
+    runs = sorted(p.name for p in out.rglob("*_eeg.edf"))
+    assert len(runs) == 3  # a: two different recordings, b: one; never the duplicate
+
+
+def test_a_vault_without_the_content_tag_column_gains_it_at_open(vault_path: Path) -> None:
+    import sqlite3
+
+    Vault.init(vault_path, TEST_PASSPHRASE).close()
+    conn = sqlite3.connect(vault_path / "vault.db")  # make it look like a vault of before
+    conn.execute("DROP INDEX idx_recordings_pid_content_tag")
+    conn.execute("ALTER TABLE recordings DROP COLUMN content_tag")
+    conn.commit()
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        pid = v.enrol(_form("consent-all-granted.toml", "old"))["participant_id"]
+        first = v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")
+        assert v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")["blob_id"] == first["blob_id"]
+
+
+def test_metadata_an_earlier_version_kept_in_clear_is_scrubbed_at_open(vault_path: Path) -> None:
+    import sqlite3
+
+    with Vault.init(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        pid = v.enrol(_form("consent-all-granted.toml", "old"))["participant_id"]
+        blob = v.ingest_eeg(pid, PYEDFLIB_DATA / "test_subsecond.edf")["blob_id"]
+    old_meta = {"format": "EDF+C", "channels": ["Fz Quentin Marlowe"], "units": ["Marlowe"]}
+    old_deid = {"fields_changed": ["patient.name", "recording.technician"], "sex_kept": True,
+                "date_shift_applied": True, "annotations": 3, "annotations_relabelled": 1}
+    conn = sqlite3.connect(vault_path / "vault.db")  # what an earlier version stored in clear
+    conn.execute("UPDATE recordings SET meta = ?, deid = ? WHERE blob_id = ?",
+                 (json.dumps(old_meta), json.dumps(old_deid), blob))
+    conn.commit()
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:
+        row = v._conn.execute("SELECT meta, deid FROM recordings").fetchone()
+        assert row[0] == "{}"
+        assert json.loads(row[1])["fields_changed"] == 2 and json.loads(row[1])["sex_kept"]
+        assert v.audit_entries()[-1]["action"] == "recordings.scrub"
+    assert_absent(vault_path, b"Quentin Marlowe", b"patient.name")  # secure_delete, WAL folded at close
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:  # idempotent: nothing more to do
+        assert [e["action"] for e in v.audit_entries()].count("recordings.scrub") == 1

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import copy
 import datetime as dt
+import hashlib
 import json
 import math
 import re
@@ -26,6 +27,7 @@ from vault import crypto
 from vault.consent import ConsentStatus, ConsentVersion, PurposeConsent
 from vault.decide import PERMIT, Reason, Request, decide, request_reasons
 from vault.errors import InvalidInput, UsageError
+from vault.event_codes import EventCodes
 from vault.policyset import (
     DEFAULT_POLICY_DIR,
     DIGEST_DOMAIN,
@@ -150,8 +152,9 @@ def test_default_policy_carries_the_later_fields() -> None:
     assert (ratings.value_type, ratings.value_range) == ("integer", (0.0, 3.0))
     assert scores.value_type == "real" and scores.value_range == (-1.0, 1.0)
     assert scores.derived_from == "eeg-raw"
-    pattern = re.compile(policy.categories["eeg-raw"].event_code_pattern or "")
-    assert pattern.fullmatch("stim/dish_07") and not pattern.fullmatch("note: Ada tired")
+    codes = EventCodes(policy.categories["eeg-raw"].event_codes or ())
+    assert codes.matches("stim/dish-07") and codes.matches("block/start")
+    assert not codes.matches("note: Ada tired") and not codes.matches("stim/Zelda_visit")
     assert policy.purposes["external-sharing"].requires_recipient
     assert not any(p.per_rating_unit_allowed for p in policy.purposes.values())
     assert policy.covers("recommender-training", "recommender-training/canteen-menu")
@@ -169,6 +172,7 @@ def test_describe_lists_every_definition_and_the_version() -> None:
     assert policy.version in text
     for name in [*policy.categories, *policy.roles, *policy.purposes]:
         assert f"  {name}" in text
+    assert "event codes kept: stim/dish-\\d{2}, block/start, block/end" in text  # shown to the steward
 
 
 def test_example_policy_set_loads_and_demonstrates_the_hierarchy() -> None:
@@ -270,8 +274,22 @@ MALFORMED = [
      "categories.ratings-explicit.value_range: integer scores need integer bounds"),
     ("categories.toml", "categories|ratings-explicit|value_range", DELETE,
      "categories.ratings-explicit: a 'ratings' category needs value_type and value_range"),
-    ("categories.toml", "categories|eeg-raw|event_code_pattern", "^stim/(",
-     "categories.eeg-raw.event_code_pattern: not a valid regular expression"),
+    ("categories.toml", "categories|eeg-raw|event_codes", ["stim/("],
+     "categories.eeg-raw.event_codes: event code 1: character 6 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", ["(a+)+$"],
+     "categories.eeg-raw.event_codes: event code 1: character 1 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"stim/.*"],
+     "categories.eeg-raw.event_codes: event code 1: character 7 is not allowed"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"S\d{1,9}"],
+     "categories.eeg-raw.event_codes: event code 1: digit runs need 1 <= M <= N <= 4"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [r"S\d{1,2}\d{1,2}"],
+     "a digit run may not follow a digit or another run"),
+    ("categories.toml", "categories|eeg-raw|event_codes", [],
+     "categories.eeg-raw.event_codes: event codes: list 1 to 200 codes"),
+    ("categories.toml", "categories|eeg-raw|event_code_pattern", "^stim/[A-Za-z0-9_-]+$",
+     "categories.toml: categories.eeg-raw: event_code_pattern is no longer accepted"),
+    ("categories.toml", "categories|ratings-explicit|event_codes", ["stim/1"],
+     "categories.ratings-explicit.event_codes: only recordings carry event codes"),
     ("categories.toml", "categories|Bad Id", {"title": "x"},
      "categories.toml: categories.Bad Id (id): String should match pattern"),
     ("policy.toml", "policy|schema", 2, "policy.toml: policy.schema: Input should be 1"),
@@ -798,3 +816,22 @@ def test_bench_decide_runs_and_reports_without_timing_assertions() -> None:
     result = bench_decide(n=500, repeat=1)  # speed itself is not asserted in tests
     assert result["participants"] == 500 and result["decisions_per_second"] > 0
     assert 0 < result["eligible"] < 500 and result["baseline_seconds"] > 0
+
+
+def test_a_snapshot_of_an_earlier_version_still_loads_with_its_version_and_keeps_nothing() -> None:
+    # What a vault made before event_codes existed stored: every category with an
+    # `event_code_pattern` key (null except on recordings) and no `event_codes` key.
+    doc = json.loads(load_default_policy().canonical_json())
+    for cid, cat in doc["categories"].items():
+        cat.pop("event_codes", None)
+        cat["event_code_pattern"] = "^(stim|block)/[A-Za-z0-9_-]+$" if cid == "eeg-raw" else None
+    old = json.dumps(doc, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+    policy = parse_policy_json(old)
+    assert policy.canonical_json() == old  # so the stored version still matches (vault opens)
+    assert policy.digest == hashlib.sha256(DIGEST_DOMAIN + old).hexdigest()  # hashlib
+    assert policy.categories["eeg-raw"].event_codes is None  # the regex is never used
+    assert any("event_code_pattern" in w for w in policy.warnings())
+    tables = default_tables()  # but a policy file may not use it
+    tables["categories.toml"]["categories"]["eeg-raw"]["event_code_pattern"] = "^stim/.*$"
+    with pytest.raises(InvalidInput, match="event_code_pattern is no longer accepted"):
+        parse_policy_tables(tables)

@@ -252,8 +252,11 @@ class Vault:
         return vault
 
     def _recover(self, *, upgraded: bool = False) -> None:
+        from vault.ingest import scrub_clear_metadata
         from vault.withdraw import finish_interrupted
 
+        storage.add_missing_columns(self._conn)  # additive schema changes of this version
+        scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
@@ -542,9 +545,15 @@ class Vault:
     # -- ingest -------------------------------------------------------------------------------------
 
     def ingest_eeg(self, pid: str, path: Path, *, sidecar: Path | None = None,
-                   event_codes: str | None = None, keep_sex: bool = False,
-                   age_band_years: int | None = None, keep_header_identity: bool = False) -> dict[str, Any]:
-        """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed."""
+                   event_codes: str | list[str] | None = None, keep_sex: bool = False,
+                   age_band_years: int | None = None, keep_header_identity: bool = False
+                   ) -> dict[str, Any]:
+        """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed.
+
+        `event_codes`: the annotations to keep (vault.event_codes; a list or one comma-separated
+        string), default the policy set's. Ingesting the same content again stores nothing and
+        returns the stored blob with `already_stored`.
+        """
         from vault.ingest import ingest_eeg
 
         self._require_steward("ingest.eeg")
@@ -561,11 +570,17 @@ class Vault:
 
     # -- exports ------------------------------------------------------------------------------------
 
-    def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None) -> dict[str, Any]:
-        """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
+    def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None,
+                   with_demographics: bool = False) -> dict[str, Any]:
+        """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest.
+
+        Sex and age band stay in the headers and participants.tsv only with
+        `with_demographics`, which also asks the grant for the demographics category.
+        """
         from vault.export_eeg import export_eeg
 
-        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient)
+        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient,
+                          with_demographics=with_demographics)
 
     def export_matrix(self, purpose: str, category: str, out: Path,
                       **options: Any) -> dict[str, Any]:

@@ -33,7 +33,8 @@ from vault.edf import RecordingMeta
 from vault.errors import Conflict, InvalidInput, StorageFull, UsageError
 from vault.fsutil import fsync_path
 
-__all__ = ["BIDS_VERSION", "README_CAUTIONS", "BidsWriter", "WrittenFile", "channel_type"]
+__all__ = ["BIDS_VERSION", "README_CAUTIONS", "BidsWriter", "WrittenFile", "channel_type",
+           "check_recording"]
 
 # The BIDS version the dataset claims; bids-validator 1.15.0 (npm) checks it.
 BIDS_VERSION = "1.9.0"
@@ -145,6 +146,33 @@ def _tsv(header: Sequence[str], rows: Iterable[Sequence[str]]) -> bytes:
     return ("\n".join(lines) + "\n").encode("utf-8")
 
 
+
+
+_FORMATS = ("EDF", "EDF+C", "EDF+D", "BDF", "BDF+C", "BDF+D")
+
+
+def check_recording(meta: RecordingMeta) -> None:
+    """Refuse (InvalidInput) a recording this writer could not export; ingest calls it too,
+    so that no stored file can block a later export."""
+    def bad(why: str) -> InvalidInput:
+        return InvalidInput(f"recording cannot be exported as EEG-BIDS: {why}")
+
+    if meta.format not in _FORMATS:
+        raise bad("its format is not EDF or BDF")
+    if not meta.channels:
+        raise bad("it has no ordinary signals (annotations only)")
+    if not len(meta.channels) == len(meta.units) == len(meta.sampling_rates):
+        raise bad("its metadata lists channels, units and rates of different lengths")
+    for i, (name, unit, rate) in enumerate(zip(meta.channels, meta.units, meta.sampling_rates,
+                                               strict=True)):  # fmt: skip
+        if not name.strip() or not name.isprintable():
+            raise bad(f"signal {i} has an empty or unprintable label")
+        if not _UNITS.get(unit.strip(), unit.strip()).isprintable():
+            raise bad(f"signal {i} has an unprintable unit")
+        if not (math.isfinite(rate) and rate > 0):
+            raise bad(f"signal {i} has no positive sampling rate")
+    if not (math.isfinite(meta.duration) and meta.duration > 0):
+        raise bad("its duration is not positive")
 
 
 class BidsWriter:
@@ -263,10 +291,7 @@ class BidsWriter:
         known = self._folded.get(label.casefold())
         if known is not None and known != label:
             raise Conflict("participant labels must differ in more than letter case")
-        if meta.format not in ("EDF", "EDF+C", "EDF+D", "BDF", "BDF+C", "BDF+D"):
-            raise UsageError("recording format must be EDF or BDF")
-        if not meta.channels:
-            raise UsageError("recording has no ordinary signals")
+        check_recording(meta)
         event_rows = self._event_rows(events) if events is not None else None
         channel_rows, counts = self._channel_rows(meta)
 

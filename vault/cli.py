@@ -333,7 +333,8 @@ def ingest_eeg(
     path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
     sidecar: Annotated[Path | None, typer.Option(help="JSON sidecar for NumPy input.")] = None,
     event_codes: Annotated[str | None, typer.Option(
-        help="Regex of annotation labels to keep (default: the policy set's).")] = None,
+        help="Comma-separated event codes to keep, e.g. 'stim/\\d{1,3},block/start' (literal codes "
+             "with digit runs \\d{N} or \\d{M,N}, N <= 4; default: the policy set's).")] = None,
     keep_sex: Annotated[bool, typer.Option(help="Keep the header's sex subfield.")] = False,
     age_band: Annotated[int | None, typer.Option(
         min=1, max=50, help="Replace the birthdate by an age band of this many years.")] = None,
@@ -346,12 +347,19 @@ def ingest_eeg(
                               keep_sex=keep_sex, age_band_years=age_band,
                               keep_header_identity=keep_header_identity)
     report = result["deidentification"]
+    if result["already_stored"]:
+        _emit(as_json, result, f"already stored as {result['blob_id']}: the same content was "
+                               "ingested before for this participant; nothing new was stored")
+        return
     _emit(as_json, result, lambda: (
         f"stored {result['blob_id']} ({result['recording']['format']}, "
         f"{len(result['recording']['channels'])} channels, {result['recording']['duration']:g} s)\n"
         f"  header fields removed or replaced: {', '.join(report['fields_changed']) or 'none'}\n"
+        f"  signal labels replaced: {report['labels_replaced']}, units blanked: "
+        f"{report['units_replaced']}\n"
         f"  annotations relabelled: {report['annotations_relabelled']} of {report['annotations']}\n"
-        f"  start date shifted: {'yes' if report['date_shift_applied'] else 'no'}\n"
+        f"  start date shifted: {'yes' if report['date_shift_applied'] else 'no'}"
+        f"{' (date clamped to 1985-2084)' if report['date_clamped'] else ''}\n"
         "  De-identification removes what the header and labels can name; EEG itself can still "
         "identify a person. Ask your ethics board and DPO before sharing."))
 
@@ -381,10 +389,12 @@ def export_eeg(
     purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
     out: Annotated[Path, typer.Option("--out", help="New or empty folder for the dataset.")],
     recipient: RecipientOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    demographics: Annotated[bool, typer.Option(
+        "--demographics", help="Keep sex and age band (the grant must cover demographics).")] = False,
 ) -> None:
     """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
     with _open(path, member) as v:
-        result = v.export_eeg(purpose, out, recipient=recipient)
+        result = v.export_eeg(purpose, out, recipient=recipient, with_demographics=demographics)
     _emit(as_json, result, lambda: (
         f"exported {result['recordings']} recordings of {result['participants']} participants to "
         f"{result['out']} (export {result['export_id']}); manifest {result['manifest']}\n"

@@ -33,6 +33,7 @@ from typing import Any, BinaryIO, NamedTuple
 
 import numpy as np
 
+from vault.channels import is_known_label, is_known_unit, neutral_label
 from vault.edf_header import (
     BLOCK,
     DeidOptions,
@@ -42,16 +43,18 @@ from vault.edf_header import (
     deidentify_header,
     edf_date,
     pack_header,
+    parse_header,
     plus_date,
     read_header,
-    shift_date,
+    shifted_date,
 )
 from vault.edf_header import field as header_field
 from vault.errors import InvalidInput, NotFound
 
 __all__ = [
     "CAUTION", "AnnotationCounts", "DeidOptions", "DeidReport", "Deidentified", "RecordingMeta",
-    "RemovedIdentity", "deidentified_blocks", "npy_deidentified_blocks", "rewrite_annotations",
+    "RemovedIdentity", "deidentified_blocks", "npy_deidentified_blocks", "recording_meta",
+    "rewrite_annotations",
 ]  # fmt: skip
 
 DEFAULT_BLOCK_BYTES = 1 << 20
@@ -70,6 +73,9 @@ class DeidReport:
     date_shift_applied: bool
     sex_kept: bool = False
     age_band_written: bool = False
+    date_clamped: bool = False  # the shifted date fell outside 1985-2084 and was clamped
+    labels_replaced: int = 0  # signal labels that were not known channel names
+    units_replaced: int = 0  # physical dimensions that were not known units
     annotations: int = 0
     annotations_relabelled: int = 0
     records_with_short_neutral_label: int = 0
@@ -82,8 +88,10 @@ class DeidReport:
         lines = [
             "de-identification report" + ("" if self.complete else " (INCOMPLETE)"),
             f"  header fields changed: {', '.join(self.fields_changed) or 'none'}",
+            f"  signal labels replaced: {self.labels_replaced}, units blanked: {self.units_replaced}",
             f"  annotations: {self.annotations}, relabelled as neutral: {self.annotations_relabelled}",
-            f"  start date shifted by the participant's offset: {'yes' if self.date_shift_applied else 'no'}",
+            f"  start date shifted by the participant's offset: {'yes' if self.date_shift_applied else 'no'}"
+            + (" (date clamped to EDF's 1985-2084 window)" if self.date_clamped else ""),
             f"  caution: {CAUTION}",
         ]
         return "\n".join(lines)
@@ -111,7 +119,8 @@ class RecordingMeta:
         return asdict(self)
 
 
-def _meta(h: EdfHeader) -> RecordingMeta:
+def recording_meta(h: EdfHeader) -> RecordingMeta:
+    """The metadata of a parsed (de-identified) header: what the BIDS writer needs."""
     ordinary = [s for s in h.signals if not s.is_annotation]
     duration = float(h.record_duration)
     return RecordingMeta(
@@ -237,16 +246,21 @@ def _open(path: Path, what: str) -> BinaryIO:
 
 
 def _keeper(opts: DeidOptions) -> Callable[[str], bool]:
-    pattern = opts.event_codes
-    if pattern is None:
+    codes = opts.event_codes
+    if codes is None:
         return lambda _text: False
-    return lambda text: pattern.fullmatch(text) is not None
+    return codes.matches
 
 
 def deidentified_blocks(
-    path: str | os.PathLike[str], options: DeidOptions, block_bytes: int = DEFAULT_BLOCK_BYTES
+    path: str | os.PathLike[str], options: DeidOptions, block_bytes: int = DEFAULT_BLOCK_BYTES,
+    observe: Callable[[bytes], None] | None = None,
 ) -> Deidentified:
-    """Validate the header now; stream the de-identified data records lazily."""
+    """Validate the header now; stream the de-identified data records lazily.
+
+    `observe`, if given, sees every byte of the input file as read, in order (for a
+    content digest of exactly what was de-identified).
+    """
     path = Path(path)
     with _open(path, "recording") as f:
         size = os.fstat(f.fileno()).st_size
@@ -254,12 +268,15 @@ def deidentified_blocks(
     deid = deidentify_header(header, options)
     report = DeidReport(
         list(deid.changed),
-        date_shift_applied=options.date_offset_days != 0,
+        date_shift_applied=deid.date_known and options.date_offset_days != 0,
+        date_clamped=deid.date_clamped,
         sex_kept=deid.sex_kept,
         age_band_written=deid.age_band_written,
+        labels_replaced=deid.labels_replaced,
+        units_replaced=deid.units_replaced,
     )
-    meta = _meta(header)
-    blocks = _edf_blocks(path, raw, size, header, options, block_bytes, report, meta)
+    meta = recording_meta(parse_header(deid.header, size))  # what is stored, not the input
+    blocks = _edf_blocks(path, raw, size, header, options, block_bytes, report, meta, observe)
     return Deidentified(deid.header, blocks, report, meta, deid.identity)
 
 
@@ -272,8 +289,10 @@ def _edf_blocks(
     block_bytes: int,
     report: DeidReport,
     meta: RecordingMeta,
+    observe: Callable[[bytes], None] | None,
 ) -> Iterator[bytes]:
     keep, neutral = _keeper(opts), opts.neutral_label.encode("ascii")
+    seen = observe or (lambda _data: None)
     rec = h.record_bytes
     per_block = max(1, block_bytes // rec)
     areas: list[tuple[int, int, bool]] = []  # annotation signals: start, stop, time-keeping
@@ -287,12 +306,14 @@ def _edf_blocks(
     with _open(path, "recording") as f:
         if os.fstat(f.fileno()).st_size != size or f.read(h.header_bytes) != raw_header:
             raise InvalidInput("recording file changed while it was being read")
+        seen(raw_header)
         done = 0
         while done < h.n_records:
             k = min(per_block, h.n_records - done)
             data = f.read(k * rec)
             if len(data) != k * rec:
                 raise InvalidInput("recording file was truncated while it was being read")
+            seen(data)
             if areas:
                 buf: bytearray | None = None
                 for r in range(k):
@@ -457,7 +478,12 @@ def npy_deidentified_blocks(
     arr = _load_array(Path(array_path), side.get("array"))
     if side["layout"] == "samples_first":
         arr = arr.T
-    names, units = side["channel_names"], side["units"]
+    given_names, given_units = side["channel_names"], side["units"]
+    names: list[str] = []
+    for i, name in enumerate(given_names):  # as vault.edf_header.policed_channels: known, once
+        known = is_known_label(name) and name.casefold() not in {n.casefold() for n in names}
+        names.append(name if known else neutral_label(i + 1))
+    units = [u if is_known_unit(u) else "" for u in given_units]
     if arr.shape[0] != len(names):
         raise InvalidInput("array channel count differs from the sidecar's channel_names")
     n_ch, n_samples = arr.shape
@@ -479,7 +505,7 @@ def npy_deidentified_blocks(
     pmin = [_fit8(v, ROUND_FLOOR) for v in np.where(wide, lo - 1, lo)]
     pmax = [_fit8(v, ROUND_CEILING) for v in np.where(wide, hi + 1, hi)]
     start = side["start_date"]
-    shifted = shift_date(start, options.date_offset_days) if start else None
+    shifted, clamped = shifted_date(start, options.date_offset_days) if start else (None, False)
     last_onset = _onset(n_records - 1, d)
     ann_bytes = -(-(len(last_onset) + 3) // 2) * 2
     blank = header_field("", 80, "text")
@@ -510,7 +536,13 @@ def npy_deidentified_blocks(
     }  # fmt: skip
     header = pack_header(fixed, signals)
     applied = shifted is not None and options.date_offset_days != 0
-    report = DeidReport(["startdate"] if applied else [], date_shift_applied=applied)
+    changed = [f"signal {i} {what}" for i in range(n_ch)
+               for what, old, new in (("label", given_names, names), ("dimension", given_units, units))
+               if old[i] != new[i]]  # fmt: skip
+    report = DeidReport(changed + (["startdate"] if applied else []), date_shift_applied=applied,
+                        date_clamped=clamped,
+                        labels_replaced=sum(a != b for a, b in zip(given_names, names, strict=True)),
+                        units_replaced=sum(a != b for a, b in zip(given_units, units, strict=True)))
     meta = RecordingMeta(
         format="EDF+C", channels=list(names), units=list(units),
         sampling_rates=[float(side["sampling_rate"])] * n_ch, samples_per_record=[spr] * n_ch,

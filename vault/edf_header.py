@@ -18,7 +18,9 @@ from dataclasses import dataclass
 from decimal import Decimal
 from typing import BinaryIO
 
+from vault.channels import is_known_label, is_known_unit, neutral_label
 from vault.errors import InvalidInput, UsageError
+from vault.event_codes import EventCodes
 
 FIXED_FIELDS: tuple[tuple[str, int], ...] = (
     ("version", 8), ("patient", 80), ("recording", 80), ("startdate", 8), ("starttime", 8),
@@ -45,6 +47,7 @@ _INT = re.compile(rb"[+-]?[0-9]{1,8}")
 _FLOAT = re.compile(rb"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]{1,2})?")
 _DATE = re.compile(rb"([0-9]{2})\.([0-9]{2})\.([0-9]{2})")
 _PLUS_DATE = re.compile(r"([0-9]{2})-([A-Za-z]{3})-([0-9]{4})")
+_AGE_BAND = re.compile(r"age_(?:[0-9]{1,2}-[0-9]{1,2}|90\+)")  # as `_age_band` writes them
 
 # Kept verbatim only when they match these strict forms (common practice, no source:
 # the EDF+ specification's examples "AgAgCl electrode" and "HP:0.1Hz LP:75Hz N:50Hz").
@@ -67,6 +70,10 @@ class SignalHeader:
     @property
     def label(self) -> str:
         return self.raw["label"].decode("ascii").rstrip()
+
+    @property
+    def unit(self) -> str:
+        return self.raw["dimension"].decode("ascii").rstrip()
 
 
 @dataclass(frozen=True)
@@ -286,18 +293,79 @@ def parse_plus_date(text: str) -> dt.date | None:
     return date_or_none(int(m[1]), MONTHS.index(m[2].upper()) + 1, int(m[3]))
 
 
+# --------------------------------------------------------------------------- channels
+
+
+def policed_channels(signals: Sequence[SignalHeader]) -> list[tuple[str, str]]:
+    """The (label, unit) to write for each signal (vault.channels): a known electrode or
+    channel name is kept once (a repeat, ignoring case, is replaced too), any other label
+    becomes CHnn by position; a known unit is kept, any other is blanked. Annotation signals
+    keep their label."""
+    out, seen = [], set()
+    for s in signals:
+        label = s.label
+        if not s.is_annotation:
+            if not is_known_label(label) or label.casefold() in seen:
+                label = neutral_label(s.index + 1)
+            seen.add(label.casefold())
+        out.append((label, s.unit if is_known_unit(s.unit) else ""))
+    return out
+
+
+def with_known_channels(header: bytes, h: EdfHeader) -> bytes:
+    """`header` (the bytes `h` was parsed from) with labels and units policed as at ingest:
+    unchanged for anything this version stored, a safety net for files stored before."""
+    signals = []
+    for s, (label, unit) in zip(h.signals, policed_channels(h.signals), strict=True):
+        new = dict(s.raw)
+        if label != s.label:
+            new["label"] = field(label, 16, "label")
+        if unit != s.unit:
+            new["dimension"] = field(unit, 8, "dimension")
+        signals.append(new)
+    return pack_header(h.raw, signals) + header[h.header_bytes :]
+
+
+# --------------------------------------------------------------------------- demographics
+
+
+def demographics(h: EdfHeader) -> tuple[str, str]:
+    """(sex, age band) that de-identification kept in an EDF+ patient field ("n/a" if none)."""
+    if not h.is_plus:
+        return "n/a", "n/a"
+    parts = h.raw["patient"].decode("ascii").split()
+    sex = parts[1] if len(parts) > 1 and parts[1] in ("F", "M") else "n/a"
+    band = next((p for p in parts[4:] if _AGE_BAND.fullmatch(p)), "n/a")
+    return sex, band
+
+
+def without_demographics(header: bytes, h: EdfHeader) -> bytes:
+    """`header` (the bytes `h` was parsed from) with the patient field's sex and age band
+    blanked: EDF+ "X X X X", plain EDF "X" (offsets 8-88, EDF specification)."""
+    patient = field("X X X X" if h.is_plus else "X", 80, "patient")
+    return header[:8] + patient + header[88:]
+
+
 # --------------------------------------------------------------------------- date shifting
 
 
-def shift_date(date: dt.date, offset_days: int) -> dt.date:
-    """`date` moved by whole days; refuses to leave EDF's 1985-2084 window."""
+def clamp_date(date: dt.date) -> dt.date:
+    """`date` moved to the nearest day of EDF's 1985-2084 window if it lies outside."""
+    return min(max(date, EDF_FIRST_DATE), EDF_LAST_DATE)
+
+
+def shifted_date(date: dt.date, offset_days: int) -> tuple[dt.date, bool]:
+    """(`date` moved by whole days, clamped) into EDF's 1985-2084 window; True if clamped.
+
+    The rule: a valid file is never refused for its date. A shift that would leave the
+    window (a recording older than the participant's first by more than the offset's
+    headroom, or a placeholder date such as 01.01.85) lands on the window's first or last
+    day instead, and the report says "date clamped"; that file's distance in days to the
+    participant's other recordings is then not kept.
+    """
     ordinal = date.toordinal() + offset_days
-    if not EDF_FIRST_DATE.toordinal() <= ordinal <= EDF_LAST_DATE.toordinal():
-        raise InvalidInput(
-            "the participant's date offset would move this recording's start date outside "
-            "EDF's 1985-2084 window; the offset must be chosen anew"
-        )
-    return dt.date.fromordinal(ordinal)
+    low, high = EDF_FIRST_DATE.toordinal(), EDF_LAST_DATE.toordinal()
+    return dt.date.fromordinal(min(max(ordinal, low), high)), not low <= ordinal <= high
 
 
 def uniform_below(n: int, random_bytes: Callable[[int], bytes]) -> int:
@@ -328,8 +396,7 @@ def choose_date_offset(
     date `margin_years` before 2084-12-31. `random_below(n)` returns a uniform
     integer in [0, n) from a CSPRNG (e.g. `lambda n: uniform_below(n, random_bytes)`).
     """
-    if not EDF_FIRST_DATE <= start_date <= EDF_LAST_DATE:
-        raise InvalidInput("start date outside EDF's 1985-2084 window")
+    start_date = clamp_date(start_date)  # a NumPy sidecar may name any date
     if not 1 <= min_years <= max_years or margin_years < 0 or min_years + margin_years > 45:
         raise UsageError("choose_date_offset needs 1 <= min_years <= max_years, small margin")
     low, high, margin = 365 * min_years, 365 * max_years, 365 * margin_years
@@ -348,16 +415,17 @@ class DeidOptions:
     """What de-identification keeps.
 
     `date_offset_days`: the participant's secret whole-day shift (see
-    `choose_date_offset`). `event_codes`: annotation labels that fully match it are
-    kept, every other label becomes `neutral_label`. `keep_sex` keeps the EDF+ sex
-    subfield (M/F); `age_band_years` replaces the birthdate by an additional patient
-    subfield `age_<lo>-<hi>` (age in whole years at the original start date, in bands
-    of that width; `age_90+` above 89, following the US HIPAA safe-harbour rule,
-    cited from memory). The birthdate subfield itself is always written as X.
+    `choose_date_offset`). `event_codes`: annotation labels it declares are kept
+    (`vault.event_codes.EventCodes`), every other label becomes `neutral_label`.
+    `keep_sex` keeps the EDF+ sex subfield (M/F); `age_band_years` replaces the
+    birthdate by an additional patient subfield `age_<lo>-<hi>` (age in whole years
+    at the original start date, in bands of that width; `age_90+` above 89, following
+    the US HIPAA safe-harbour rule, cited from memory). The birthdate subfield itself
+    is always written as X.
     """
 
     date_offset_days: int
-    event_codes: re.Pattern[str] | None = None
+    event_codes: EventCodes | None = None
     neutral_label: str = "event"
     keep_sex: bool = False
     age_band_years: int | None = None
@@ -368,6 +436,8 @@ class DeidOptions:
             raise UsageError("neutral_label must be 1-40 printable ASCII characters")
         if self.age_band_years is not None and not 1 <= self.age_band_years <= 50:
             raise UsageError("age_band_years must be between 1 and 50")
+        if self.event_codes is not None and not isinstance(self.event_codes, EventCodes):
+            raise UsageError("event_codes must be an EventCodes list (no free regular expressions)")
 
 
 @dataclass(frozen=True, repr=False)
@@ -392,6 +462,19 @@ class HeaderDeid:
     start_date: dt.date  # shifted
     sex_kept: bool
     age_band_written: bool
+    labels_replaced: int = 0  # ordinary signals whose label was not a known channel name
+    units_replaced: int = 0  # signals whose physical dimension was not a known unit
+    date_known: bool = True  # False: EDF+ "Startdate X", kept unknown and unshifted
+    date_clamped: bool = False  # the shifted date was clamped into 1985-2084
+
+
+def known_start_date(h: EdfHeader) -> dt.date | None:
+    """The start date the header states, or None for EDF+'s anonymised "Startdate X"."""
+    if h.is_plus:
+        rec = h.raw["recording"].decode("ascii").split()
+        if len(rec) >= 2 and rec[0] == "Startdate" and rec[1] == "X":
+            return None
+    return h.start_date
 
 
 def _age_band(birth: dt.date | None, start: dt.date, width: int) -> str | None:
@@ -422,7 +505,8 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
                 removed[name] = original
 
     start = h.start_date
-    sex_kept = age_written = False
+    sex_kept = age_written = clamped = False
+    known = known_start_date(h) is not None
     if h.is_plus:
         pat = _subfields(h.raw["patient"], ("code", "sex", "birthdate", "name"))
         rec = _subfields(h.raw["recording"], ("keyword", "startdate", "admincode",
@@ -433,12 +517,14 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
                 raise _bad("recording field (offset 88)", "has a malformed Startdate subfield")
             if rec_date != start:
                 raise _bad("recording field (offset 88)", "disagrees with the startdate field")
-        shifted = shift_date(start, opts.date_offset_days)
+        # EDF+ "Startdate X": the date is unknown and the startdate field a placeholder
+        # (01.01.85 by the EDF+ specification, from memory): nothing to shift.
+        shifted, clamped = shifted_date(start, opts.date_offset_days) if known else (EDF_FIRST_DATE, False)
         sex = pat["sex"] if opts.keep_sex and pat["sex"] in ("F", "M") else "X"
         sex_kept = sex != "X"
         patient = f"X {sex} X X"
         band = None
-        if opts.age_band_years:
+        if opts.age_band_years and known:
             band = _age_band(parse_plus_date(pat["birthdate"]), start, opts.age_band_years)
             patient += f" {band}" if band else ""
             age_written = band is not None
@@ -446,16 +532,17 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
             new = sex if name == "sex" else "X"
             put(f"patient.{name}", new, pat[name])
         put("patient.additional", band or "", pat["additional"], "")
-        recording = f"Startdate {plus_date(shifted)} X X X"
+        rec_text = plus_date(shifted) if known else "X"
+        recording = f"Startdate {rec_text} X X X"
         if rec["keyword"] != "Startdate":
             put("recording", recording, h.raw["recording"].decode("ascii").rstrip())
         else:
-            put("recording.startdate", plus_date(shifted), rec["startdate"])
+            put("recording.startdate", rec_text, rec["startdate"])
             for name in ("admincode", "technician", "equipment"):
                 put(f"recording.{name}", "X", rec[name])
             put("recording.additional", "", rec["additional"], "")
     else:
-        shifted = shift_date(start, opts.date_offset_days)
+        shifted, clamped = shifted_date(start, opts.date_offset_days)
         patient = recording = "X"
         for name in ("patient", "recording"):
             put(name, "X", h.raw[name].decode("ascii").rstrip())
@@ -472,8 +559,17 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
     if fixed["n_records"] != h.raw["n_records"]:
         changed.append("n_records")
     signals = []
-    for s in h.signals:
+    labels_replaced = units_replaced = 0
+    for s, (label, unit) in zip(h.signals, policed_channels(h.signals), strict=True):
         new = dict(s.raw)
+        if label != s.label:
+            put(f"signal {s.index} label", label, s.label, "")
+            new["label"] = field(label, 16, "label")
+            labels_replaced += 1
+        if unit != s.unit:
+            put(f"signal {s.index} dimension", unit, s.unit, "")
+            new["dimension"] = field(unit, 8, "dimension")
+            units_replaced += 1
         for name, pattern in (("transducer", TRANSDUCER_PATTERN), ("prefilter", PREFILTER_PATTERN),
                               ("reserved", None)):  # fmt: skip
             text = s.raw[name].decode("ascii").rstrip()
@@ -483,4 +579,5 @@ def deidentify_header(h: EdfHeader, opts: DeidOptions) -> HeaderDeid:
         signals.append(new)
     identity = RemovedIdentity(removed, start)
     header = pack_header(fixed, signals)
-    return HeaderDeid(header, tuple(changed), identity, shifted, sex_kept, age_written)
+    return HeaderDeid(header, tuple(changed), identity, shifted, sex_kept, age_written,
+                      labels_replaced, units_replaced, known, clamped)

@@ -16,8 +16,9 @@ from typing import TYPE_CHECKING, Any
 
 from vault import exports
 from vault.bids import BidsWriter
-from vault.edf import RecordingMeta
-from vault.errors import IntegrityError, NotFound
+from vault.edf import recording_meta
+from vault.edf_header import demographics, parse_header, with_known_channels, without_demographics
+from vault.errors import IntegrityError, InvalidInput, NotFound
 
 if TYPE_CHECKING:
     from vault.api import Vault
@@ -51,11 +52,16 @@ def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
     return bytes(first[:size]), rest()
 
 
-def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None) -> dict[str, Any]:
-    grant = v._authorize_release(purpose, ["eeg-raw"], export=True, recipient=recipient)
+def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
+               with_demographics: bool = False) -> dict[str, Any]:
+    categories = ["eeg-raw", *(["demographics"] if with_demographics else [])]
+    grant = v._authorize_release(purpose, categories, export=True, recipient=recipient)
+    # Sex and age band leave only under a grant that covers demographics; otherwise the
+    # exported headers and participants.tsv carry none.
+    keep_demographics = "demographics" in grant.categories
     marks = ",".join("?" * len(v._grant_participants(grant)))
     rows = v._conn.execute(
-        f"SELECT r.blob_id, r.pid, r.meta FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
+        f"SELECT r.blob_id, r.pid, b.plain_size FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
         f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id",
         sorted(v._grant_participants(grant))).fetchall()
     if not rows:
@@ -67,14 +73,27 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None) -> d
                                      "manifest (manifest.json).")
     try:
         runs: dict[str, int] = {}
-        metas = {blob_id: meta for blob_id, _, meta in rows}
+        sizes = {blob_id: size for blob_id, _, size in rows}
+        people: dict[str, dict[str, str]] = {}
         for blob_id, pid, chunks in v._read_for_release(grant, [r[0] for r in rows]):
             runs[pid] = runs.get(pid, 0) + 1
             header, blocks = _split_header(iter(chunks))
-            writer.add_recording(labels[pid], None, runs[pid], header, blocks,
-                                 RecordingMeta(**json.loads(metas[blob_id])))
-        files = writer.finish([{"participant_id": labels[pid]} for pid in sorted(labels)],
-                              bidsignore=[MANIFEST_NAME])
+            try:  # the metadata is the stored header itself: nothing about it is kept in clear
+                parsed = parse_header(header, sizes[blob_id])
+                header = with_known_channels(header, parsed)  # files stored before labels were policed
+                parsed = parse_header(header, sizes[blob_id])
+            except InvalidInput as exc:
+                raise IntegrityError("a stored recording has no valid EDF header") from exc
+            person = people.setdefault(pid, {"participant_id": labels[pid]})
+            if keep_demographics:
+                sex, band = demographics(parsed)
+                for key, value in (("sex", sex), ("age_band", band)):
+                    if person.get(key, "n/a") == "n/a":  # the first recording that states it
+                        person[key] = value
+            else:
+                header = without_demographics(header, parsed)
+            writer.add_recording(labels[pid], None, runs[pid], header, blocks, recording_meta(parsed))
+        files = writer.finish([people[pid] for pid in sorted(labels)], bidsignore=[MANIFEST_NAME])
         export_id = exports.new_export_id()
         signed = exports.sign_and_record(
             v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,

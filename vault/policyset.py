@@ -13,17 +13,25 @@ layout and the split into files do not change it but any rule or text does.
 from __future__ import annotations
 
 import json
-import re
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from types import MappingProxyType
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    ValidationError,
+    ValidationInfo,
+    model_validator,
+)
 
 from vault import crypto
-from vault.errors import InvalidInput
+from vault.errors import InvalidInput, UsageError
+from vault.event_codes import EventCodes
 
 SCHEMA_VERSION = 1
 VERSION_LENGTH = 16
@@ -75,7 +83,22 @@ class Category(_Model):
     derived_from: Id | None = None  # derived data inherits its source's consent scope
     value_type: Literal["integer", "real"] | None = None
     value_range: tuple[Number, Number] | None = None
-    event_code_pattern: Annotated[str, StringConstraints(min_length=1, max_length=200)] | None = None
+    # recordings: the annotations kept by de-identification (vault.event_codes language)
+    event_codes: tuple[str, ...] | None = None
+    # Earlier versions' regular expression: accepted only in policy snapshots stored in a
+    # vault (so that vault still opens, with an unchanged version), never used: a policy
+    # set without event_codes keeps no annotation. Files may not set it.
+    event_code_pattern: str | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _no_free_patterns(cls, data: Any, info: ValidationInfo) -> Any:
+        stored = isinstance(info.context, dict) and info.context.get("stored_snapshot")
+        if isinstance(data, dict) and data.get("event_code_pattern") is not None and not stored:
+            raise ValueError("event_code_pattern is no longer accepted (a regular expression can "
+                             "keep free text): list the codes in event_codes, e.g. "
+                             "['stim/\\d{1,3}', 'block/start']")
+        return data
 
 
 class Role(_Model):
@@ -252,6 +275,11 @@ class PolicySet:
             if p.special_category and p.special_category_basis is None:
                 out.append(f"purposes.{pid}: processes special-category data but names no "
                            "GDPR Art. 9(2) condition: every request for it is refused")
+        for cid, c in sorted(self.categories.items()):
+            if c.event_code_pattern is not None:
+                out.append(f"categories.{cid}: event_code_pattern (an earlier version's regular "
+                           "expression) is ignored: every annotation is relabelled until a policy "
+                           "set with event_codes is applied")
         return out
 
     def canonical_json(self) -> bytes:
@@ -259,8 +287,16 @@ class PolicySet:
 
 
 def canonical_json(model: BaseModel) -> bytes:
-    """Sorted keys, no whitespace, UTF-8, field names as in the files."""
+    """Sorted keys, no whitespace, UTF-8, field names as in the files.
+
+    A category without `event_codes` is dumped without that key, exactly as before the
+    field existed, so the versions of earlier policy sets (and the vaults pinned to them)
+    stay what they were.
+    """
     data = model.model_dump(mode="json", by_alias=True)
+    for category in data.get("categories", {}).values() if isinstance(model, PolicyDocument) else ():
+        if category.get("event_codes") is None:
+            category.pop("event_codes", None)
     return json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
                       allow_nan=False).encode("utf-8")
 
@@ -306,13 +342,13 @@ def _check_categories(doc: PolicyDocument) -> None:
                 raise _fail(f"{path}.value_range", "the lower bound must be below the upper")
             if cat.value_type == "integer" and not (low.is_integer() and high.is_integer()):
                 raise _fail(f"{path}.value_range", "integer scores need integer bounds")
-        if cat.event_code_pattern is not None:
+        if cat.event_codes is not None:
             if cat.kind != "recording":
-                raise _fail(f"{path}.event_code_pattern", "only recordings carry event codes")
+                raise _fail(f"{path}.event_codes", "only recordings carry event codes")
             try:
-                re.compile(cat.event_code_pattern)
-            except (re.error, RecursionError, OverflowError):
-                raise _fail(f"{path}.event_code_pattern", "not a valid regular expression") from None
+                EventCodes(cat.event_codes)
+            except UsageError as exc:
+                raise _fail(f"{path}.event_codes", exc.message) from None
 
 
 def _check_purpose(doc: PolicyDocument, pid: str, p: Purpose) -> None:
@@ -445,7 +481,7 @@ def parse_policy_tables(tables: Mapping[str, Mapping[str, Any]]) -> PolicySet:
 def parse_policy_json(raw: bytes) -> PolicySet:
     """Rebuild a policy set from `PolicySet.canonical_json()` (e.g. a stored snapshot)."""
     try:
-        document = PolicyDocument.model_validate_json(raw)
+        document = PolicyDocument.model_validate_json(raw, context={"stored_snapshot": True})
     except ValidationError as exc:
         raise invalid_from_validation("policy snapshot", exc) from None
     return PolicySet(document)
@@ -498,6 +534,9 @@ def describe_policy(policy: PolicySet) -> list[str]:
             flags.append(f"derived from {c.derived_from}")
         if c.value_range is not None:
             flags.append(f"{c.value_type} in [{c.value_range[0]:g}, {c.value_range[1]:g}]")
+        if c.kind == "recording":
+            kept = ", ".join(c.event_codes) if c.event_codes else "none"
+            flags.append(f"event codes kept: {kept} (every other annotation is relabelled)")
         lines.append(f"  {cid}: {c.title} [{'; '.join(flags)}]")
     lines.append(f"roles ({len(policy.roles)}):")
     for rid, r in sorted(policy.roles.items()):

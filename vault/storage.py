@@ -48,8 +48,11 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
          "created_at": str},
         "blob_id",
     ),
-    # what exports and policies need to know about a stored recording; nothing identifying
-    "recordings": ({"blob_id": str, "pid": str, "format": str, "meta": str, "deid": str}, "blob_id"),
+    # a stored recording: its format and counts of what de-identification replaced (the
+    # channel metadata is read from the encrypted file's own header); content_tag is an HMAC
+    # of the input file under the participant's own data key (re-ingest is idempotent)
+    "recordings": ({"blob_id": str, "pid": str, "format": str, "meta": str, "deid": str,
+                    "content_tag": str}, "blob_id"),
     # one encrypted batch of scores or ratings per participant per ingested file;
     # tags are HMACs under the participant's own data key (gone when they are erased)
     "score_batches": (
@@ -139,10 +142,31 @@ def create_schema(conn: sqlite3.Connection) -> None:
     db["participants"].create_index(["lab_code_tag"], unique=True)  # type: ignore[union-attr]
     db["score_batches"].create_index(["pid", "category", "batch_tag"], unique=True)  # type: ignore[union-attr]
     db["recordings"].create_index(["pid"])  # type: ignore[union-attr]
+    _additive_indexes(conn)
     db["export_members"].create_index(["pid"])  # type: ignore[union-attr]
     db["withdrawals"].create_index(["pid"])  # type: ignore[union-attr]
     for table in ("audit_log", "tree_heads", "consents", "policy_versions"):
         conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
+
+
+def _additive_indexes(conn: sqlite3.Connection) -> None:
+    conn.execute("CREATE UNIQUE INDEX IF NOT EXISTS idx_recordings_pid_content_tag "
+                 "ON recordings (pid, content_tag)")
+
+
+def add_missing_columns(conn: sqlite3.Connection) -> list[str]:
+    """Add columns (nullable) and indexes that this version's schema has and the database
+    lacks: additive changes within one SCHEMA_VERSION. Returns "table.column" names added."""
+    added = []
+    types = {str: "TEXT", int: "INTEGER", bytes: "BLOB", float: "FLOAT"}
+    for table, (columns, _) in _TABLES.items():
+        have = {row[1] for row in conn.execute(f"PRAGMA table_info({table})")}
+        for column, kind in columns.items():
+            if have and column not in have:
+                conn.execute(f"ALTER TABLE {table} ADD COLUMN {column} {types[kind]}")
+                added.append(f"{table}.{column}")
+    _additive_indexes(conn)
+    return added
 
 
 @contextmanager
