@@ -221,6 +221,9 @@ class Vault:
         self._store.create_dirs()
         self._store.recover(known)
         finish_interrupted(self)  # an erasure killed between its commit and its clean-up
+        from vault.export_runs import recover
+
+        recover(self)  # an export killed before it was in place: finished, refunded or voided
 
     def close(self, now: datetime | None = None) -> None:
         """Sign a tree head over any new entries, then release the vault."""

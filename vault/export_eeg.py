@@ -10,15 +10,14 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import shutil
 from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from vault import exports
+from vault import export_runs, exports
 from vault.bids import BidsWriter
 from vault.edf import RecordingMeta
-from vault.errors import IntegrityError, NotFound
+from vault.errors import Conflict, IntegrityError, NotFound
 
 if TYPE_CHECKING:
     from vault.api import Vault
@@ -64,10 +63,18 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
         raise NotFound("the granted participants hold no recordings")
     labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})
     out = Path(out)
-    writer = BidsWriter(out, dataset_name=f"mindward export for {purpose}", task=TASK,
-                        readme_intro="De-identified EEG released by mindward under a signed "
-                                     "manifest (manifest.json).")
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
+    export_id = exports.new_export_id()
+    # recorded before any file exists, written into a staging folder, renamed into place at
+    # the end; a killed run is finished or cleaned up at the next open (vault.export_runs)
+    staging = export_runs.begin(v, export_id=export_id, kind="eeg-bids", purpose=purpose, out=out,
+                                at=exports._at(now))
     try:
+        export_runs.writing(v, export_id)
+        writer = BidsWriter(staging, dataset_name=f"mindward export for {purpose}", task=TASK,
+                            readme_intro="De-identified EEG released by mindward under a signed "
+                                         "manifest (manifest.json).")
         runs: dict[str, int] = {}
         metas = {blob_id: meta for blob_id, _, meta in rows}
         for blob_id, pid, chunks in v.read_blobs(grant, [r[0] for r in rows], now=now):
@@ -77,16 +84,15 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                                  RecordingMeta(**json.loads(metas[blob_id])))
         files = writer.finish([{"participant_id": labels[pid]} for pid in sorted(labels)],
                               bidsignore=[MANIFEST_NAME])
-        export_id = exports.new_export_id()
         signed = exports.sign_and_record(
             v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels, now=now,
             body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
                   "privacy": "no differential-privacy noise: de-identified recordings, which can "
                              "still identify a person"})
-        (out / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
+        export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
     except BaseException:
-        shutil.rmtree(out, ignore_errors=True)
+        export_runs.abandon(v, export_id, exports._at(now))
         raise
     return {"export_id": export_id, "out": str(out), "participants": len(labels),
             "recordings": len(rows), "manifest": str(out / MANIFEST_NAME)}
