@@ -27,7 +27,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from tests.clock import ManualClock
-from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent
+from tests.conftest import TEST_PASSPHRASE, assert_absent
 from tests.test_export_matrix import CATALOGUE, EXAMPLES, MENU, RATINGS, REC, make_policy
 from vault import InvalidInput, PolicyRefusal, Vault
 from vault.export_matrix import PSEUDONYM_COLUMN
@@ -311,4 +311,62 @@ def test_budget_refund_credits_back_exactly(tmp_path: Path, policy_dir: Path) ->
                                          export_id="x-b", at="2026-06-15T12:00:00Z")
         for purpose in (MENU, REC):
             assert spent(v, purpose) == dict.fromkeys(pids, ("1/10", "0", 1))
-        assert ROOT.is_dir()
+
+
+def test_an_eeg_export_is_private_whatever_the_umask(tmp_path: Path) -> None:
+    from tests.test_export_eeg import SOURCE
+
+    clock = ManualClock(NOW)
+    with Vault.init(tmp_path / "vault", TEST_PASSPHRASE, clock=clock) as v:
+        for i in range(5):  # the primary analysis' minimum cohort
+            v.ingest_eeg(v.enrol(form(f"e{i}"))["participant_id"], SOURCE)
+        old = os.umask(0)
+        try:
+            v.export_eeg("primary-analysis", tmp_path / "bids")
+        finally:
+            os.umask(old)
+    paths = [tmp_path / "bids", *(tmp_path / "bids").rglob("*")]
+    assert any(p.suffix == ".edf" for p in paths)
+    for path in paths:
+        mode = stat.S_IMODE(path.stat().st_mode)
+        assert mode == (0o700 if path.is_dir() else 0o600), (path, oct(mode))
+
+
+# --------------------------------------------------------------------------- failures in-process
+
+
+def test_a_failure_before_any_file_is_refunded_and_after_is_not(tmp_path: Path, policy_dir: Path,
+                                                                monkeypatch: pytest.MonkeyPatch
+                                                                ) -> None:
+    import vault.export_matrix as em
+    from vault import Conflict, export_runs
+
+    v, pids, _ = build(tmp_path, policy_dir, EVERYONE)
+    with v:
+        (tmp_path / "a-file").write_text("x")
+        with pytest.raises(Conflict, match="not a folder"):  # checked before anything is charged
+            v.export_matrix(REC, RATINGS, tmp_path / "a-file" / "out", epsilon=0.5)
+        assert not spent(v, REC)
+
+        def broken(*_: object) -> None:
+            raise OSError("disk went away")
+
+        before = v._audit.size
+        with monkeypatch.context() as patch:  # charged, nothing written yet: credited back
+            patch.setattr(export_runs, "writing", broken)
+            with pytest.raises(OSError):
+                v.export_matrix(REC, RATINGS, tmp_path / "o", epsilon=0.5)
+        assert not spent(v, REC) and not (tmp_path / "o").exists()
+        settled = [e["details"] for e in v.audit_entries(before) if e["action"] == "export.settle"]
+        assert [(d["state_found"], d["outcome"]) for d in settled] == [("staged", "refunded")]
+        assert any(e["action"] == "budget.refund" for e in v.audit_entries(before))
+        before = v._audit.size
+        with monkeypatch.context() as patch:  # files were being written: the charge stands
+            patch.setattr(em, "write_table", broken)
+            with pytest.raises(OSError):
+                v.export_matrix(REC, RATINGS, tmp_path / "o", epsilon=0.5)
+        assert spent(v, REC) == dict.fromkeys(pids, ("1/2", "0", 1))
+        settled = [e["details"] for e in v.audit_entries(before) if e["action"] == "export.settle"]
+        assert [(d["state_found"], d["outcome"]) for d in settled] == [
+            ("writing", "charged-not-released")]
+        assert sorted(p.name for p in tmp_path.iterdir()) == ["a-file", "vault"]  # no debris

@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 from vault import export_runs, exports
 from vault.bids import BidsWriter
 from vault.edf import RecordingMeta
-from vault.errors import Conflict, IntegrityError, NotFound
+from vault.errors import IntegrityError, NotFound
 
 if TYPE_CHECKING:
     from vault.api import Vault
@@ -62,9 +62,7 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
     if not rows:
         raise NotFound("the granted participants hold no recordings")
     labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})
-    out = Path(out)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
+    out = export_runs.check_out(out)
     export_id = exports.new_export_id()
     # recorded before any file exists, written into a staging folder, renamed into place at
     # the end; a killed run is finished or cleaned up at the next open (vault.export_runs)

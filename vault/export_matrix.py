@@ -41,7 +41,6 @@ import numpy as np
 
 from vault import budget, crypto, export_runs, exports, manifest, scores
 from vault.errors import (
-    Conflict,
     IntegrityError,
     InvalidInput,
     NotFound,
@@ -88,13 +87,6 @@ EXPORT_CAUTIONS = (
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-def _check_out(out: Path) -> Path:
-    out = Path(out)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
-    return out
 
 
 def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
@@ -397,7 +389,7 @@ def export_matrix(
     mech, amount = choose_mechanism(epsilon, rho, MECHANISMS[mechanism] if mechanism else None)
     if not formats or any(f not in FORMATS for f in formats):
         raise UsageError("formats are 'parquet' and/or 'csv'")
-    out = _check_out(out)
+    out = export_runs.check_out(out)
     if purpose in v.policy.purposes and not budget.budgets(v.policy, purpose):
         _audit_refusal(v, purpose, "no-privacy-budget", now)
         raise PolicyRefusal(f"refused: purpose {purpose} sets no per-participant privacy budget "

@@ -29,6 +29,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from vault import budget, storage
+from vault.errors import Conflict
 from vault.fsutil import fsync_path
 from vault.privacy import Cost
 
@@ -41,6 +42,19 @@ OPEN_STATES = (STAGED, WRITING, SIGNED)
 STAGING_MARK = ".mindward-staging-"
 MANIFEST_NAME = "manifest.json"
 DIR_MODE, FILE_MODE = 0o700, 0o600
+
+
+def check_out(out: Path) -> Path:
+    """`out` must be a new or empty folder under folders (checked before anything is charged)."""
+    out = Path(out)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
+    parent = out.absolute().parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        raise Conflict(f"{parent} is not a folder; refusing to write an export below it")
+    return out
 
 
 def staging_path(out: Path, export_id: str) -> Path:
@@ -151,8 +165,9 @@ def _settle(v: Vault, row: tuple[Any, ...], state: str, at: str,
                                          **report}}, at)
 
 
-def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str) -> str:
-    """Finish or undo one unsettled run: files first, then one transaction."""
+def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str, *, retry: bool = True) -> str:
+    """Finish or undo one unsettled run: files first, then one transaction. `retry`: a signed
+    run whose folder is not in place yet is put in place (at open), else voided."""
     export_id, _, _, staging_text, out_text, state, _, signed = row
     staging, out = Path(staging_text), Path(out_text)
     outcome = None
@@ -161,14 +176,16 @@ def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str) -> str:
             placed = json.loads((out / MANIFEST_NAME).read_text())["body"]["export_id"] == export_id
         except (OSError, ValueError, KeyError, TypeError):
             placed = False
-        if not placed and staging.is_dir() and signed is not None and (
+        if not placed and retry and staging.is_dir() and signed is not None and (
                 not out.exists() or (out.is_dir() and not any(out.iterdir()))):
             _place(staging, out, json.dumps(json.loads(signed), indent=2, sort_keys=True) + "\n")
             placed = True
         if placed:
             outcome, final = "finished", DONE
     if outcome is None:
-        shutil.rmtree(staging, ignore_errors=True)
+        # only ever a folder this module named (a damaged row must not aim rmtree elsewhere)
+        if staging == staging_path(out, export_id):
+            shutil.rmtree(staging, ignore_errors=True)
         if staging.parent.is_dir():
             fsync_path(staging.parent)
         outcome, final = (("refunded", REFUNDED) if state == STAGED else
@@ -184,9 +201,9 @@ def abandon(v: Vault, export_id: str, at: str) -> str:
         "FROM export_runs WHERE export_id = ?", (export_id,)).fetchone()
     if row is None or row[5] not in OPEN_STATES:
         return "none"
-    if row[5] == SIGNED:  # a failure here is ours (disk full...): do not retry it in-process
-        row = (*row[:5], WRITING, *row[6:])
-    return _outcome(v, row, at, "failed")
+    # a signed run already in place is finished; one not in place is not retried here (the
+    # failure was ours: disk full...) but voided, its files having been written
+    return _outcome(v, row, at, "failed", retry=False)
 
 
 def recover(v: Vault) -> list[dict[str, str]]:
