@@ -370,3 +370,20 @@ def test_a_failure_before_any_file_is_refunded_and_after_is_not(tmp_path: Path, 
         assert [(d["state_found"], d["outcome"]) for d in settled] == [
             ("writing", "charged-not-released")]
         assert sorted(p.name for p in tmp_path.iterdir()) == ["a-file", "vault"]  # no debris
+
+
+def test_the_cli_refuses_in_one_line(capsys, monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+    from vault.cli import main
+
+    monkeypatch.setenv("MINDWARD_PASSPHRASE", TEST_PASSPHRASE)
+    monkeypatch.setenv("MINDWARD_VAULT", str(tmp_path / "vault"))
+    assert main(["init"]) == 0
+    capsys.readouterr()
+    code = main(["export", "matrix", "--purpose", REC, "--category", RATINGS, "--epsilon", "0.5",
+                 "--out", str(tmp_path / "o")])
+    _, err = capsys.readouterr()
+    assert code == 4 and err.count("\n") == 1 and "item catalogue" in err
+    code = main(["export", "utility", "--purpose", REC, "--category", RATINGS, "--plot",
+                 str(tmp_path / "u.png"), "--seed", "7"])
+    capsys.readouterr()
+    assert code == 2  # there is no seed to choose
