@@ -11,7 +11,8 @@ States of an `export_runs` row:
   folder is removed and the charge stands (`void`).
 - `signed`: every file is complete, the manifest is signed and the lineage recorded;
   an interrupted run is finished (manifest written, folder renamed into place).
-- `done`, `refunded`, `void`: settled.
+- `done`, `refunded`, `void`: settled. An export that charges no budget (EEG) is
+  finished from `signed` and otherwise removed (`void`).
 
 The staging folder is `.<name of --out>.mindward-staging-<export id>` beside `--out`
 (same file system, so the final rename is atomic). Export folders are 0700 and files
@@ -188,8 +189,11 @@ def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str, *, retry: bool =
             shutil.rmtree(staging, ignore_errors=True)
         if staging.parent.is_dir():
             fsync_path(staging.parent)
-        outcome, final = (("refunded", REFUNDED) if state == STAGED else
-                          ("charged-not-released", VOID))
+        if not json.loads(row[6]):  # nothing was charged (an EEG export): nothing to credit
+            outcome, final = "removed", VOID
+        else:
+            outcome, final = (("refunded", REFUNDED) if state == STAGED else
+                              ("charged-not-released", VOID))
     _settle(v, row, final, at, {"interrupted": how, "outcome": outcome})
     return outcome
 
