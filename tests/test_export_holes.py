@@ -387,3 +387,21 @@ def test_the_cli_refuses_in_one_line(capsys, monkeypatch: pytest.MonkeyPatch, tm
                  str(tmp_path / "u.png"), "--seed", "7"])
     capsys.readouterr()
     assert code == 2  # there is no seed to choose
+
+
+def test_an_items_file_is_bounded(tmp_path: Path) -> None:
+    from vault import UsageError
+    from vault.export_matrix import MAX_ITEMS_FILE, read_items
+
+    big = tmp_path / "big.txt"
+    big.write_bytes(b"dish-00\n" * (MAX_ITEMS_FILE // 8 + 1))
+    with pytest.raises(InvalidInput, match="larger than"):
+        read_items(big)
+    many = tmp_path / "many.txt"
+    many.write_text("".join(f"d{j}\n" for j in range(100_001)))
+    with pytest.raises(UsageError, match="more than 100000"):
+        read_items(many)
+    bad = tmp_path / "bad.txt"
+    bad.write_bytes(b"dish-00\n\xff\n")
+    with pytest.raises(InvalidInput, match="not UTF-8"):
+        read_items(bad)

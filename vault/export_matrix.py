@@ -47,7 +47,7 @@ from vault.errors import (
     PolicyRefusal,
     UsageError,
 )
-from vault.policyset import ITEM_ID_PATTERN
+from vault.policyset import ITEM_ID_PATTERN, MAX_CATALOGUE
 from vault.privacy import (
     GAUSSIAN,
     LAPLACE,
@@ -69,6 +69,7 @@ if TYPE_CHECKING:
 MANIFEST_NAME = "manifest.json"
 PSEUDONYM_COLUMN = "_pseudonym"  # item ids start with a letter or digit: no clash possible
 ITEM_ID = re.compile(ITEM_ID_PATTERN)  # as vault.scores accepts them
+MAX_ITEMS_FILE = 8 << 20  # an --items file: 100,000 ids of up to 64 characters fit
 FORMATS = ("parquet", "csv")
 RELEASES = ("matrix", "aggregate")
 MECHANISMS: Mapping[str, Mechanism] = {"laplace": LAPLACE, "gaussian": GAUSSIAN,
@@ -104,13 +105,15 @@ def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
 def _check_items(items: Sequence[str]) -> list[str]:
     if isinstance(items, str | bytes):
         raise UsageError("the item catalogue is a list of item ids")
-    chosen = sorted(set(items))
-    if not chosen:
+    listed = list(items)
+    if not listed:
         raise UsageError("the item catalogue is empty")
-    for item in chosen:
+    if len(listed) > MAX_CATALOGUE:
+        raise UsageError(f"the item catalogue lists more than {MAX_CATALOGUE} items")
+    for item in listed:
         if not isinstance(item, str) or not ITEM_ID.fullmatch(item):
             raise UsageError("item ids are 1-64 letters, digits or . _ : / - (first a letter or digit)")
-    return chosen
+    return sorted(set(listed))
 
 
 def declared_items(v: Vault, category: str) -> list[str] | None:
@@ -145,9 +148,16 @@ def release_items(v: Vault, category: str, items: Sequence[str] | None) -> tuple
 def read_items(path: Path) -> list[str]:
     """A public item catalogue file: one item id per line; blank lines and '#' comments skipped."""
     try:
-        text = Path(path).read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_ITEMS_FILE + 1)
+    except OSError as exc:
         raise NotFound(f"cannot read {path}") from exc
+    if len(raw) > MAX_ITEMS_FILE:
+        raise InvalidInput(f"{path}: larger than {MAX_ITEMS_FILE} bytes")
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise InvalidInput(f"{path}: not UTF-8 text") from None
     items = [line.strip() for line in text.splitlines()]
     return _check_items([i for i in items if i and not i.startswith("#")])
 
