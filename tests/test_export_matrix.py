@@ -51,6 +51,7 @@ MENU = "recommender-training/canteen-menu"
 RATINGS = "ratings-explicit"
 FORMS = {"all": "consent-all-granted.toml", "norec": "consent-no-recommender.toml",
          "expired": "consent-expired.toml", "withdrawn": "consent-all-granted.toml"}
+CATALOGUE = [f"dish-{j:02d}" for j in range(40)] + [f"late-{j}" for j in range(5)]
 REASON = {"norec": "consent-refused", "expired": "consent-expired", "withdrawn": "consent-withdrawn"}
 
 
@@ -72,6 +73,13 @@ def make_policy(root: Path) -> Path:
         "min_cohort = 20", "min_cohort = 3")
     assert text.count("min_cohort = 3") == 3 and 'on_budget_exceeded = "refuse"' in child
     path.write_text(text)
+    categories = target / "categories.toml"  # the public item catalogue noised releases list
+    listed = ", ".join(f'"{item}"' for item in CATALOGUE)
+    text = categories.read_text()
+    for line in ("value_range = [0, 3]\n", "value_range = [-1.0, 1.0]\n"):
+        assert line in text
+        text = text.replace(line, f"{line}items = [{listed}]\n", 1)
+    categories.write_text(text)
     return target
 
 
@@ -385,7 +393,8 @@ def test_below_the_minimum_cohort_nothing_is_exported(tmp_path: Path) -> None:
     v, groups, _ = make_lab(tmp_path, ROOT / "policies", {"all": 6, "norec": 2})  # default: 20
     with v:
         with pytest.raises(PolicyRefusal) as err:
-            export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
+            export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o",
+                          items=CATALOGUE)
         assert "cohort-too-small" in str(err.value) and "[6 eligible]" in str(err.value)
         assert "consent-refused: 2" in str(err.value)
         assert not any(p in str(err.value) for ps in groups.values() for p in ps)
@@ -518,7 +527,7 @@ def test_utility_releases_rmse_figures_only(tmp_path: Path, policy_dir: Path) ->
     with v:
         before = v._audit.size
         result = export_utility(at(v, NOW), purpose=REC, category=RATINGS, epsilons=[0.5, 4.0],
-                                out_png=tmp_path / "u.png", seed=7)
+                                out_png=tmp_path / "u.png")
         assert not spent(v, REC)  # nothing released but the figures: no budget, no lineage
         assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
         assert any(e["action"] == "export.utility" for e in v.audit_entries(before))

@@ -445,12 +445,12 @@ def test_budget_split_sums_to_the_request() -> None:
     _, g = release_aggregate(values, low=0, high=4, grid_k=2, max_items_per_participant=2,
                              epsilon=0.3, split=(1, 2, 3, 4), source=seeded(52))
     parts = [c.epsilon for c in g.components]
-    assert sum(parts) == F(3, 10) == g.epsilon
+    assert sum(parts) == F(3, 10) and g.epsilon == 2 * F(3, 10)  # replace-one: twice add/remove
     assert parts == [F(3, 100), F(6, 100), F(9, 100), F(12, 100)]
     _, g = release_aggregate(values, low=0, high=4, grid_k=2, max_items_per_participant=2,
                              rho=F(1, 7), source=seeded(53))
     assert sum(c.rho for c in g.components) == F(1, 7) and all(c.epsilon is None for c in g.components)
-    assert "Budget split" in g.notes[0] and g.neighbours.startswith("add or remove one participant")
+    assert "Budget split" in g.notes[0] and g.neighbours.startswith("replace-one")
 
 
 # --------------------------------------------------------------------------- accountant
@@ -666,11 +666,17 @@ def test_aggregate_components_and_composition_match_opendp(dp: ModuleType) -> No
                 scale = math.sqrt(c.noise / c.l2_sensitivity_squared)
                 normalised.append(dp.m.make_gaussian(dp.atom_domain(T="f64", nan=False),
                                                      dp.absolute_distance(T="f64"), scale))
-        # OpenDP's composition of the four adds epsilons (rho), as our guarantee and ledger do
+        # OpenDP's composition of the four adds epsilons (rho) for add/remove neighbours (a
+        # contribution of sensitivity 1), as our components do
         total = dp.c.make_composition(normalised).map(1.0)
+        assert total == pytest.approx(float(sum((c.epsilon or c.rho) for c in g.components)),
+                                      rel=1e-9)
+        # replace-one (the cohort size is public) moves each contribution by up to twice that:
+        # OpenDP's map at distance 2 gives 2 epsilon (Laplace) or 4 rho (zCDP), what is stated
+        swapped = dp.c.make_composition(normalised).map(2.0)
         stated = g.epsilon if g.epsilon is not None else g.rho
-        assert total == pytest.approx(float(stated), rel=1e-9)
-        assert sum((c.epsilon or c.rho) for c in g.components) == stated
+        assert swapped == pytest.approx(float(stated), rel=1e-9)
+        assert "replace-one" in g.neighbours
 
 
 @pytest.mark.parametrize(("rho", "delta"),

@@ -261,6 +261,9 @@ class Vault:
         self._store.create_dirs()
         self._store.recover(known)
         finish_interrupted(self)  # an erasure killed between its commit and its clean-up
+        from vault.export_runs import recover
+
+        recover(self)  # an export killed before it was in place: finished, refunded or voided
         entries = notes.fold(self._conn, self.vault_id, self._keys.member_key)
         if upgraded:
             entries.append({"actor": self.member, "action": "member.slot-bound", "decision": "done",

@@ -160,42 +160,82 @@ def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str)
     Every call spends again: the same request twice is charged twice.
     """
     now = v.now()
+    at = now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    with storage.transaction(v._conn):
+        charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+
+
+def charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
+                          at: str) -> list[str]:
+    """`charge` inside the caller's open transaction; returns the purposes charged."""
     plan = budgets(v.policy, purpose)
     if not plan:
         raise PolicyRefusal(f"purpose {purpose} sets no per-participant privacy budget")
     pids = list(costs)
-    at = now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    with storage.transaction(v._conn):
-        updates: list[tuple[str, str, str, str, int]] = []
-        memo = _Memo()
-        after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
-        empty = Ledger()
-        for name, budget in plan.items():
-            held = ledgers(v, name, pids, memo)
-            for pid in pids:
-                old, cost = held.get(pid, empty), costs[pid]
-                if not memo.within(old, cost, budget):
-                    raise PolicyRefusal("the release would exceed a participant's privacy budget; "
-                                        "nothing was charged")
-                known = after.get((id(old), id(cost)))
-                if known is None:
-                    spent = old.spend(cost)
-                    known = after[(id(old), id(cost))] = (
-                        (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
-                updates.append((pid, name, *known[0]))
-        v._conn.executemany(
-            "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
-            "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
-            "rho = excluded.rho, releases = excluded.releases", updates)
-        entries, ordered = [], sorted(pids)
-        for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
-            chunk = ordered[start : start + _AUDIT_CHUNK]
-            distinct = {(c.epsilon, c.rho) for c in (costs[p] for p in chunk)}
-            entries.append({"actor": v.member, "action": "budget.charge", "purpose": purpose,
-                            "subjects": chunk, "decision": "done",
-                            "details": {"export": export_id, "charged_purposes": list(plan),
-                                        "costs": sorted([str(e), str(r)] for e, r in distinct)}})
-        v._audit.append_many(entries, at)
+    updates: list[tuple[str, str, str, str, int]] = []
+    memo = _Memo()
+    after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
+    empty = Ledger()
+    for name, budget in plan.items():
+        held = ledgers(v, name, pids, memo)
+        for pid in pids:
+            old, cost = held.get(pid, empty), costs[pid]
+            if not memo.within(old, cost, budget):
+                raise PolicyRefusal("the release would exceed a participant's privacy budget; "
+                                    "nothing was charged")
+            known = after.get((id(old), id(cost)))
+            if known is None:
+                spent = old.spend(cost)
+                known = after[(id(old), id(cost))] = (
+                    (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
+            updates.append((pid, name, *known[0]))
+    v._conn.executemany(
+        "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
+        "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
+        "rho = excluded.rho, releases = excluded.releases", updates)
+    entries, ordered = [], sorted(pids)
+    for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
+        chunk = ordered[start : start + _AUDIT_CHUNK]
+        distinct = {(c.epsilon, c.rho) for c in (costs[p] for p in chunk)}
+        entries.append({"actor": v.member, "action": "budget.charge", "purpose": purpose,
+                        "subjects": chunk, "decision": "done",
+                        "details": {"export": export_id, "charged_purposes": list(plan),
+                                    "costs": sorted([str(e), str(r)] for e, r in distinct)}})
+    v._audit.append_many(entries, at)
+    return list(plan)
+
+
+def refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
+                          costs: Mapping[str, Cost], *, export_id: str, at: str) -> None:
+    """Credit back exactly what `charge_in_transaction` spent for a release that never left the
+    vault (one release fewer; a ledger back at zero releases is removed). Audited."""
+    memo = _Memo()
+    updates: list[tuple[str, str, int, str, str]] = []
+    gone: list[tuple[str, str]] = []
+    for name in purposes:
+        held = ledgers(v, name, list(costs), memo)
+        for pid, cost in costs.items():
+            old = held.get(pid)
+            if old is None:  # erased since (withdrawal deletes ledger rows): nothing to credit
+                continue
+            epsilon, rho = old.epsilon - cost.epsilon, old.rho - cost.rho
+            releases = old.releases - 1
+            if epsilon < 0 or rho < 0 or releases < 0:  # the ledger was altered: credit nothing
+                continue
+            if releases == 0 and epsilon == 0 and rho == 0:
+                gone.append((pid, name))
+            else:
+                updates.append((str(epsilon), str(rho), releases, pid, name))
+    v._conn.executemany("UPDATE budget_ledger SET epsilon = ?, rho = ?, releases = ? "
+                        "WHERE pid = ? AND purpose = ?", updates)
+    v._conn.executemany("DELETE FROM budget_ledger WHERE pid = ? AND purpose = ?", gone)
+    ordered = sorted(costs)
+    v._audit.append_many([
+        {"actor": v.member, "action": "budget.refund", "purpose": purpose,
+         "subjects": ordered[start : start + _AUDIT_CHUNK], "decision": "done",
+         "details": {"export": export_id, "refunded_purposes": list(purposes),
+                     "reason": "the release never left the vault"}}
+        for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK)], at)
 
 
 def budget_report(v: Vault, purpose: str | None = None, *,

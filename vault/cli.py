@@ -448,7 +448,8 @@ def export_utility(
     unit: Annotated[str, typer.Option(help="participant or rating.")] = "participant",
     member: MemberOpt = "steward", as_json: JsonOpt = False,
 ) -> None:
-    """What DP noise costs in recommender accuracy, per epsilon (only RMSE figures leave)."""
+    """What DP noise costs in recommender accuracy, per epsilon. Stewards only: the figures are
+    computed without noise from the real ratings and are NOT differentially private."""
     try:
         values = [float(e) for e in epsilons.split(",") if e.strip()]
     except ValueError as exc:
@@ -456,7 +457,7 @@ def export_utility(
     with _open(path, member) as v:
         result = v.export_utility(purpose, category, values, plot, unit=unit)
     _emit(as_json, result, lambda: result.get("table", json.dumps(result, indent=2, default=str))
-          + f"\nplot: {result.get('png', plot)}")
+          + f"\nplot: {result.get('png', plot)}\n{result.get('caution', '')}")
 
 
 @app.command()

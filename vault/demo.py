@@ -108,10 +108,12 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         say(f"   released for {released['cohort_size']} participants x {released['items']} dishes "
             f"under pseudonyms (refused: {refused}); Parquet, CSV and a signed manifest in {export_dir}")
     with Vault.open(vault_dir, DEMO_PASSPHRASE) as v:  # the utility figures are not DP: stewards only
-        utility = v.export_utility("recommender-training", "ratings-explicit", UTILITY_EPSILONS, plot)
+        utility = v.export_utility("recommender-training", "ratings-explicit", UTILITY_EPSILONS, plot,
+                                   items=_items(files.stimuli))
     base = utility["report"]
     curve = dict(zip(base["epsilons"], base["noisy_rmse"], strict=True))
-    say(f"8. A plain recommender (soft-impute matrix completion) trained inside the vault on noised "
+    say(f"8. The steward checks what the noise costs: a plain recommender (soft-impute matrix "
+        f"completion) trained inside the vault on noised "
         f"ratings: held-out RMSE {curve.get(EPSILON, float('nan')):.2f} at epsilon {EPSILON:g}, "
         f"{curve.get(UTILITY_EPSILONS[-1], float('nan')):.2f} at epsilon {UTILITY_EPSILONS[-1]:g}; "
         f"no noise {base['no_noise_rmse']:.2f}, random baseline {base['random_baseline_rmse']:.2f} "

@@ -254,7 +254,8 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
             figures.update(build_s=t_build, ratings=int(data["rating_value"].size),
                            granted=data["granted"])
             request = {"purpose": "recommender-training", "category": CATEGORY, "epsilon": epsilon,
-                       "unit": unit, "formats": ("parquet",)}
+                       "unit": unit, "formats": ("parquet",),
+                       "items": data["item_ids"]}  # the public catalogue: a release needs one
             bases, exports, cohorts = [], [], set()
             for i in range(repeats):  # interleaved; the fastest of each (a shared machine's noise)
                 bases.append(_baseline(data, workdir))

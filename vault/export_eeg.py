@@ -8,13 +8,11 @@ and the export is recorded in the lineage.
 
 from __future__ import annotations
 
-import json
-import shutil
 from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from vault import exports
+from vault import export_runs, exports
 from vault.bids import BidsWriter
 from vault.edf import recording_meta
 from vault.edf_header import demographics, parse_header, with_known_channels, without_demographics
@@ -54,6 +52,7 @@ def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
 
 def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                with_demographics: bool = False) -> dict[str, Any]:
+    now = v.now()
     categories = ["eeg-raw", *(["demographics"] if with_demographics else [])]
     grant = v._authorize_release(purpose, categories, export=True, recipient=recipient)
     # Sex and age band leave only under a grant that covers demographics; otherwise the
@@ -67,11 +66,17 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
     if not rows:
         raise NotFound("the granted participants hold no recordings")
     labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})
-    out = Path(out)
-    writer = BidsWriter(out, dataset_name=f"mindward export for {purpose}", task=TASK,
-                        readme_intro="De-identified EEG released by mindward under a signed "
-                                     "manifest (manifest.json).")
+    out = export_runs.check_out(out)
+    export_id = exports.new_export_id()
+    # recorded before any file exists, written into a staging folder, renamed into place at
+    # the end; a killed run is finished or cleaned up at the next open (vault.export_runs)
+    staging = export_runs.begin(v, export_id=export_id, kind="eeg-bids", purpose=purpose, out=out,
+                                at=exports._at(now))
     try:
+        export_runs.writing(v, export_id)
+        writer = BidsWriter(staging, dataset_name=f"mindward export for {purpose}", task=TASK,
+                            readme_intro="De-identified EEG released by mindward under a signed "
+                                         "manifest (manifest.json).")
         runs: dict[str, int] = {}
         sizes = {blob_id: size for blob_id, _, size in rows}
         people: dict[str, dict[str, str]] = {}
@@ -94,16 +99,15 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                 header = without_demographics(header, parsed)
             writer.add_recording(labels[pid], None, runs[pid], header, blocks, recording_meta(parsed))
         files = writer.finish([people[pid] for pid in sorted(labels)], bidsignore=[MANIFEST_NAME])
-        export_id = exports.new_export_id()
         signed = exports.sign_and_record(
             v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,
             body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
                   "privacy": "no differential-privacy noise: de-identified recordings, which can "
                              "still identify a person"})
-        (out / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
+        export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
     except BaseException:
-        shutil.rmtree(out, ignore_errors=True)
+        export_runs.abandon(v, export_id, exports._at(now))
         raise
     return {"export_id": export_id, "out": str(out), "participants": len(labels),
             "recordings": len(rows), "manifest": str(out / MANIFEST_NAME)}

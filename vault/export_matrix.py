@@ -11,26 +11,26 @@ The flow of one export (every step audited):
 4. The matrix (participants x items) is released with exact discrete Laplace
    or Gaussian noise (`vault.privacy.release_matrix`), or as participant-level
    DP statistics (`vault.privacy_aggregate.release_aggregate`).
-5. The budget is charged (its own transaction, before any file exists: a crash
-   can over-charge, never release uncharged), the files are written into a
-   staging folder, the manifest is signed and the lineage recorded
-   (`vault.exports.sign_and_record`), and the folder is renamed into place.
+5. The run is recorded and the budget charged in one transaction before any
+   file exists, the files are written into a staging folder, the manifest is
+   signed and the lineage recorded (`vault.exports.sign_and_record`), and the
+   folder is renamed into place (`vault.export_runs`: a run killed before any
+   file was written is refunded at the next open, one killed after the files
+   were signed is finished, one killed in between keeps its charge).
 
-Items are public dish ids. The item list is part of the release: with
-`items` (the public catalogue) it does not depend on anyone's data; without it
-the list is the union of the items the cohort rated, and an item only one
-person rated then reveals that somebody in the cohort rated it. The manifest
-says which was used.
+Items are public dish ids. The item list is part of the release, so it never
+comes from the data (the union of what the cohort rated would say that someone
+rated an item): it is the policy set's catalogue for the category, or the
+`items` given with the request (inside that catalogue when one is declared);
+with neither the release is refused.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import json
 import math
 import os
 import re
-import shutil
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from fractions import Fraction
@@ -39,9 +39,15 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from vault import budget, crypto, exports, manifest, scores
-from vault.errors import Conflict, IntegrityError, NotFound, PolicyRefusal, UsageError
-from vault.fsutil import fsync_path
+from vault import budget, crypto, export_runs, exports, manifest, scores
+from vault.errors import (
+    IntegrityError,
+    InvalidInput,
+    NotFound,
+    PolicyRefusal,
+    UsageError,
+)
+from vault.policyset import ITEM_ID_PATTERN, MAX_CATALOGUE
 from vault.privacy import (
     GAUSSIAN,
     LAPLACE,
@@ -62,13 +68,17 @@ if TYPE_CHECKING:
 
 MANIFEST_NAME = "manifest.json"
 PSEUDONYM_COLUMN = "_pseudonym"  # item ids start with a letter or digit: no clash possible
-ITEM_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}")  # as vault.scores accepts them
+ITEM_ID = re.compile(ITEM_ID_PATTERN)  # as vault.scores accepts them
+MAX_ITEMS_FILE = 8 << 20  # an --items file: 100,000 ids of up to 64 characters fit
 FORMATS = ("parquet", "csv")
 RELEASES = ("matrix", "aggregate")
 MECHANISMS: Mapping[str, Mechanism] = {"laplace": LAPLACE, "gaussian": GAUSSIAN,
                                        LAPLACE: LAPLACE, GAUSSIAN: GAUSSIAN}
 SCORE_KINDS = ("scores", "ratings")
 DEFAULT_REAL_GRID = 100  # real-valued scores are released on a grid of step 1/100
+UTILITY_CAUTION = (
+    "These RMSE figures come from the raw ratings without noise and are NOT differentially "
+    "private: they are for the steward only; do not pass them on.")
 EXPORT_CAUTIONS = (
     "The exact cohort size and, for matrix releases, one row per included participant are "
     "released: that someone is in the cohort is not protected.",
@@ -78,13 +88,6 @@ EXPORT_CAUTIONS = (
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-def _check_out(out: Path) -> Path:
-    out = Path(out)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
-    return out
 
 
 def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
@@ -102,21 +105,59 @@ def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
 def _check_items(items: Sequence[str]) -> list[str]:
     if isinstance(items, str | bytes):
         raise UsageError("the item catalogue is a list of item ids")
-    chosen = sorted(set(items))
-    if not chosen:
+    listed = list(items)
+    if not listed:
         raise UsageError("the item catalogue is empty")
-    for item in chosen:
+    if len(listed) > MAX_CATALOGUE:
+        raise UsageError(f"the item catalogue lists more than {MAX_CATALOGUE} items")
+    for item in listed:
         if not isinstance(item, str) or not ITEM_ID.fullmatch(item):
             raise UsageError("item ids are 1-64 letters, digits or . _ : / - (first a letter or digit)")
-    return chosen
+    return sorted(set(listed))
+
+
+def declared_items(v: Vault, category: str) -> list[str] | None:
+    """The category's public item catalogue from the policy set (sorted), or None."""
+    spec = v.policy.categories.get(category)
+    return sorted(spec.items) if spec is not None and spec.items is not None else None
+
+
+def release_items(v: Vault, category: str, items: Sequence[str] | None) -> tuple[list[str], str]:
+    """The columns of a noised release and where they come from; never from the data.
+
+    The policy set's catalogue, or `items` (which must lie inside it when one is
+    declared); neither: PolicyRefusal, since the union of what the cohort rated
+    would say that someone rated an item.
+    """
+    spec = v.policy.categories.get(category)
+    if spec is None or spec.kind not in SCORE_KINDS:
+        return [], "none"  # not a scores category: the policy engine and _scale_of refuse it
+    declared = declared_items(v, category)
+    if items is None:
+        if declared is None:
+            raise PolicyRefusal(
+                f"refused: a noised release needs a public item catalogue: declare 'items' for "
+                f"category {category} in the policy set or give --items")
+        return declared, f"the policy set's catalogue for {category} (version {v.policy.version})"
+    chosen = _check_items(items)
+    if declared is not None and not set(chosen) <= set(declared):
+        raise InvalidInput(f"--items names an item outside the policy set's catalogue for {category}")
+    return chosen, "the public item catalogue given with the request"
 
 
 def read_items(path: Path) -> list[str]:
     """A public item catalogue file: one item id per line; blank lines and '#' comments skipped."""
     try:
-        text = Path(path).read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_ITEMS_FILE + 1)
+    except OSError as exc:
         raise NotFound(f"cannot read {path}") from exc
+    if len(raw) > MAX_ITEMS_FILE:
+        raise InvalidInput(f"{path}: larger than {MAX_ITEMS_FILE} bytes")
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise InvalidInput(f"{path}: not UTF-8 text") from None
     items = [line.strip() for line in text.splitlines()]
     return _check_items([i for i in items if i and not i.startswith("#")])
 
@@ -358,22 +399,29 @@ def export_matrix(
     mech, amount = choose_mechanism(epsilon, rho, MECHANISMS[mechanism] if mechanism else None)
     if not formats or any(f not in FORMATS for f in formats):
         raise UsageError("formats are 'parquet' and/or 'csv'")
-    out = _check_out(out)
-    catalogue = _check_items(items) if items is not None else None
+    out = export_runs.check_out(out)
     if purpose in v.policy.purposes and not budget.budgets(v.policy, purpose):
         _audit_refusal(v, purpose, "no-privacy-budget", now)
         raise PolicyRefusal(f"refused: purpose {purpose} sets no per-participant privacy budget "
                             "(epsilon_per_participant); differentially private exports need one")
+    try:
+        item_list, item_source = release_items(v, category, items)
+    except PolicyRefusal:
+        _audit_refusal(v, purpose, "no-item-catalogue", now)
+        raise
 
     # 1-2. candidates, their remaining budgets, the decision
     batches = _candidates(v, category)
-    unit_cost = Cost(epsilon=amount) if mech == LAPLACE else Cost(rho=amount)
+    # the aggregate publishes the exact cohort size: what holds is replace-one neighbouring,
+    # twice epsilon (four times rho) of its add/remove mechanism, and that is what is charged
+    stated = amount * (1 if release == "matrix" else 2 if mech == LAPLACE else 4)
+    unit_cost = Cost(epsilon=stated) if mech == LAPLACE else Cost(rho=stated)
     n_rows = {pid: sum(n for _, n in b) for pid, b in batches.items()}
     per_rating = privacy_unit is PrivacyUnit.RATING
     scaled = {n: unit_cost.times(n) for n in set(n_rows.values())} if per_rating else {}
     bound = {pid: scaled[n_rows[pid]] if per_rating else unit_cost for pid in batches}
-    request_eps = float(amount) if mech == LAPLACE else _float_above(
-        zcdp_epsilon(amount, budget.ZCDP_DELTA))
+    request_eps = _float_above(stated) if mech == LAPLACE else _float_above(
+        zcdp_epsilon(stated, budget.ZCDP_DELTA))
     remaining = (budget.remaining_for_decide(v, purpose, bound, request_eps,
                                              scale=n_rows if per_rating else None)
                  if purpose in v.policy.purposes else {})
@@ -385,9 +433,6 @@ def export_matrix(
 
     # 3. read through the one door
     cohort = _read_cohort(v, grant, batches, now)
-    item_list = catalogue if catalogue is not None else cohort.items
-    if not item_list:
-        raise NotFound("the granted participants hold no ratings")
     labels = exports.pseudonyms(v, purpose, cohort.pids)
     order = sorted(cohort.pids, key=labels.__getitem__)  # row order reveals nothing internal
     rows, cols, values = cohort.cells(order, item_list)
@@ -414,12 +459,13 @@ def export_matrix(
     by_count = {int(n): guarantee.cost_for(int(n)) for n in np.unique(kept)}
     costs = {pid: by_count[int(n)] for pid, n in zip(order, kept, strict=True)}
 
-    # 5. charge, write, sign, record, move into place
+    # 5. record the run and charge (one transaction, before any file exists), write into the
+    # staging folder, sign and record the lineage, rename into place (vault.export_runs)
     export_id = exports.new_export_id()
-    budget.charge(v, purpose, costs, export_id=export_id)
-    staging = out.parent / f".{out.name}.export-{crypto.random_id(6)}"
-    staging.mkdir(mode=0o700, parents=True)
+    staging = export_runs.begin(v, export_id=export_id, kind=f"preference-{release}",
+                                purpose=purpose, out=out, at=exports._at(now), costs=costs)
     try:
+        export_runs.writing(v, export_id)
         files: list[dict[str, Any]] = []
         for stem, columns in tables.items():
             files += write_table(staging, stem, columns, formats)
@@ -428,33 +474,26 @@ def export_matrix(
             members = labels
         else:  # nothing per participant is released: names unlinkable to any other export
             members = exports.pseudonyms(v, f"{purpose}#aggregate:{export_id}", order)
-        body = _manifest_body(release, category, guarantee, files, item_list, catalogue is not None,
+        body = _manifest_body(release, category, guarantee, files, item_list, item_source,
                               budget.budgets(v.policy, purpose), k, mech, formats)
         signed = exports.sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
                                          grant=grant, members=members, body=body,
                                          list_pseudonyms=release == "matrix")
-        (staging / MANIFEST_NAME).write_text(json.dumps(signed, indent=2, sort_keys=True) + "\n")
-        fsync_path(staging / MANIFEST_NAME)
-        fsync_path(staging)
-        if out.exists():
-            out.rmdir()
-        os.replace(staging, out)
-        fsync_path(out.parent)
+        export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
     except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
+        export_runs.abandon(v, export_id, exports._at(now))
         raise
     return {
         "export_id": export_id, "out": str(out), "release": release, "category": category,
         "purpose": purpose, "recipient": signed["body"]["recipient"],
         "cohort_size": len(order), "refused_by_reason": refused, "items": len(item_list),
-        "item_source": "catalogue" if catalogue is not None else "data",
-        "guarantee": guarantee.as_dict(), "files": [f["path"] for f in files],
-        "manifest": str(out / MANIFEST_NAME),
+        "item_source": item_source, "guarantee": guarantee.as_dict(),
+        "files": [f["path"] for f in files], "manifest": str(out / MANIFEST_NAME),
     }
 
 
 def _manifest_body(release: str, category: str, g: Guarantee, files: list[dict[str, Any]],
-                   items: Sequence[str], from_catalogue: bool, plan: Mapping[str, Any], k: int,
+                   items: Sequence[str], item_source: str, plan: Mapping[str, Any], k: int,
                    mech: Mechanism, formats: Sequence[str]) -> dict[str, Any]:
     per_rating = g.unit is PrivacyUnit.RATING
     body: dict[str, Any] = {
@@ -475,10 +514,7 @@ def _manifest_body(release: str, category: str, g: Guarantee, files: list[dict[s
                                      "(admission was judged on all their stored ratings)"
                                      if per_rating else "the stated epsilon or rho"),
         },
-        "items": {"count": len(items), "ids": list(items),
-                  "source": "the public item catalogue given with the request" if from_catalogue
-                  else "the union of the items the cohort rated (data-dependent: an item rated "
-                       "by one participant reveals that someone in the cohort rated it)"},
+        "items": {"count": len(items), "ids": list(items), "source": item_source},
         "grid_k": k, "pseudonym_column": PSEUDONYM_COLUMN if release == "matrix" else None,
         "files": files, "export_cautions": list(EXPORT_CAUTIONS),
     }
@@ -557,26 +593,34 @@ def export_utility(
     repeats: int = 1,
     items: Sequence[str] | None = None,
     grid_k: int | None = None,
-    seed: int | None = None,
 ) -> dict[str, Any]:
     """Held-out RMSE of a recommender trained on DP-noised data, per epsilon, inside the vault.
 
-    The noise is the real matrix release (`release_matrix`, the same unit and
-    grid as an export). Only RMSE figures leave: a table, a PNG plot and the
-    report's numbers; no budget is charged because no data is released, but the
-    figures are computed from raw ratings and are not themselves DP.
+    Stewards only (others: PolicyRefusal, audited). The noise is the real
+    matrix release (`release_matrix`, the same unit and grid as an export),
+    but the model is scored on raw held-out ratings: the figures are NOT
+    differentially private (two vaults that differ in one rating give
+    different figures), so no budget is charged and they are for the steward
+    only. Every random choice (split, baseline, noise) starts from the
+    CSPRNG; no caller picks a seed, so nobody can replay a split to difference
+    two runs.
     """
     now = v.now()
     from vault.recommend import utility_curve
     from vault.utility_plot import plot_utility
 
+    if v.role != "steward":
+        v._audit_batch([{"actor": v.member, "action": "export.utility", "purpose": purpose,
+                         "decision": "refuse", "subjects": [], "reasons": ["role-not-allowed"],
+                         "details": {"category": category, "role": v.role}}], now)
+        v._require_steward()
     try:
         privacy_unit = PrivacyUnit(unit)
     except ValueError:
         raise UsageError("--unit is 'participant' or 'rating'") from None
     if Path(out_png).suffix.lower() != ".png":
         raise UsageError("the utility plot is written as PNG: give a path ending in .png")
-    catalogue = _check_items(items) if items is not None else None
+    catalogue = _check_items(items) if items is not None else declared_items(v, category)
     batches = _candidates(v, category)
     grant = v._authorize_release(purpose, [category], privacy_unit=privacy_unit.value,
                         participants=tuple(batches))
@@ -592,7 +636,8 @@ def export_utility(
     def noise_fn(train: np.ndarray, eps: float) -> np.ndarray:
         return release_matrix(train, low=low, high=high, grid_k=k, unit=privacy_unit, epsilon=eps)[0]
 
-    start = seed if seed is not None else int.from_bytes(crypto.random_bytes(16), "big")
+    # the split and the baseline draw from a generator keyed with 128 bits of the CSPRNG
+    start = int.from_bytes(crypto.random_bytes(16), "big")
     report: UtilityReport = utility_curve(
         values, epsilons, noise_fn, rng=np.random.default_rng(start),
         value_range=(float(low), float(high)), rank=rank, test_fraction=test_fraction,
@@ -604,6 +649,8 @@ def export_utility(
                      "decision": "done", "subjects": [],
                      "details": {"grant": grant.grant_id, "category": category,
                                  "privacy_unit": privacy_unit.value, "epsilons": figures["epsilons"],
-                                 "released": "held-out RMSE figures only"}}], now)
+                                 "released": "held-out RMSE figures only, to the steward; "
+                                             "not differentially private"}}], now)
     return {"purpose": purpose, "category": category, "privacy_unit": privacy_unit.value,
-            "report": figures, "table": report.table(), "png": str(png)}
+            "report": figures, "table": report.table(), "png": str(png),
+            "caution": UTILITY_CAUTION}

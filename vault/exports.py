@@ -14,7 +14,7 @@ import datetime as dt
 from collections.abc import Iterable, Mapping
 from typing import TYPE_CHECKING, Any
 
-from vault import crypto, manifest, registry, storage
+from vault import crypto, export_runs, manifest, registry, storage
 from vault.errors import IntegrityError, NotFound
 
 if TYPE_CHECKING:
@@ -83,15 +83,28 @@ def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, member
             "audit_tree_head": head.to_dict(), "cautions": list(CAUTIONS),
         }
         signed = manifest.sign(v._signing, manifest.MANIFEST, full)
-        raw = storage_json(signed)
         v._conn.execute(
             "INSERT INTO exports (export_id, kind, purpose, recipient, created_at, expires_at, "
             "manifest, manifest_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-            (export_id, kind, grant.purpose, recipient, at, expires, raw, manifest.digest(full)))
+            (export_id, kind, grant.purpose, recipient, at, expires,
+             storage_json(kept_copy(signed)), manifest.digest(full)))
+        export_runs.mark_signed(v, export_id, storage_json(signed))
         v._conn.executemany(
             "INSERT INTO export_members (export_id, pid, pseudonym) VALUES (?, ?, ?)",
             [(export_id, pid, alias) for pid, alias in members.items()])
     return signed
+
+
+def kept_copy(signed: Mapping[str, Any]) -> dict[str, Any]:
+    """The manifest as the vault keeps it: an item list only as its SHA-256 (policies never
+    need it; `manifest_digest` still covers the signed body with the list)."""
+    body = dict(signed["body"])
+    items = body.get("items")
+    if isinstance(items, dict) and "ids" in items:
+        ids = "\n".join(items["ids"]).encode()
+        body["items"] = {**{k: x for k, x in items.items() if k != "ids"},
+                         "ids_sha256": crypto.sha256_hex(ids)}
+    return {**signed, "body": body}
 
 
 _STANDARD_FIELDS = frozenset({

@@ -53,6 +53,10 @@ Flag = Annotated[bool, Field(strict=True)]
 Count = Annotated[int, Field(strict=True)]
 Number = Annotated[float, Field(strict=True, allow_inf_nan=False)]
 Epsilon = Annotated[float, Field(strict=True, gt=0, allow_inf_nan=False)]
+# item ids of scores and ratings (as vault.scores accepts them): ASCII, no spaces, 1-64 characters
+ITEM_ID_PATTERN = r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}"
+ItemId = Annotated[str, StringConstraints(pattern=rf"^{ITEM_ID_PATTERN}$", max_length=64)]
+MAX_CATALOGUE = 100_000
 
 
 class _Model(BaseModel):
@@ -99,6 +103,9 @@ class Category(_Model):
                              "keep free text): list the codes in event_codes, e.g. "
                              "['stim/\\d{1,3}', 'block/start']")
         return data
+    # the public item catalogue of a scores/ratings category: what noised releases list as
+    # columns (never the items the data happens to hold) and all that ingest accepts
+    items: Annotated[tuple[ItemId, ...], Field(min_length=1, max_length=MAX_CATALOGUE)] | None = None
 
 
 class Role(_Model):
@@ -342,6 +349,11 @@ def _check_categories(doc: PolicyDocument) -> None:
                 raise _fail(f"{path}.value_range", "the lower bound must be below the upper")
             if cat.value_type == "integer" and not (low.is_integer() and high.is_integer()):
                 raise _fail(f"{path}.value_range", "integer scores need integer bounds")
+        if cat.items is not None:
+            if not scored:
+                raise _fail(f"{path}.items", "only scores and ratings categories list items")
+            if len(set(cat.items)) != len(cat.items):
+                raise _fail(f"{path}.items", "an item is listed twice")
         if cat.event_codes is not None:
             if cat.kind != "recording":
                 raise _fail(f"{path}.event_codes", "only recordings carry event codes")
@@ -537,6 +549,9 @@ def describe_policy(policy: PolicySet) -> list[str]:
         if c.kind == "recording":
             kept = ", ".join(c.event_codes) if c.event_codes else "none"
             flags.append(f"event codes kept: {kept} (every other annotation is relabelled)")
+        if c.kind in ("scores", "ratings"):
+            flags.append(f"catalogue of {len(c.items)} items" if c.items else
+                         "no item catalogue: noised releases need --items")
         lines.append(f"  {cid}: {c.title} [{'; '.join(flags)}]")
     lines.append(f"roles ({len(policy.roles)}):")
     for rid, r in sorted(policy.roles.items()):

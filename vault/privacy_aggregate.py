@@ -7,7 +7,16 @@ item-item covariance of weighted, centred ratings and its noisy co-rating
 weights give a covariance estimate. The weights, grids and bounds below are
 our own choices and derivations.
 
-Neighbouring datasets add or remove one participant with all their ratings.
+Neighbouring datasets. Each statistic's noise is calibrated to adding or
+removing one participant with all their ratings (epsilon, rho below). The
+release also publishes the exact cohort size, and add/remove neighbours have
+different sizes, so that claim would not hold for the release as a whole. What
+holds is replace-one neighbouring (same size, one participant's ratings swapped
+for any other's): by group privacy (a swap is a removal and an addition) at
+2 epsilon for discrete Laplace and 4 rho for discrete Gaussian (zCDP: k^2 rho for
+groups of k; Bun and Steinke 2016, from memory). `Guarantee` states that, and
+that is what the vault charges. (Noising the cohort size instead would cost a
+budget share too and leave every other statistic's scale tied to it.)
 
 Contribution bound and weights. A participant who rated more than
 `max_items_per_participant` (m) items keeps a uniformly random m of them.
@@ -42,7 +51,10 @@ and the bound becomes floor(bound / D) (L1) or floor(bound / D^2) (L2^2).
 D is the smallest that fits, so most releases use D = 1.
 
 Everything after the noise (shrinkage, clipping, PSD projection, prediction)
-is post-processing of released values.
+is post-processing of released values, which keeps the guarantee. Released
+means lie in [low, high]; the covariance estimate is positive semi-definite
+with variances in [0, ((high - low)/2)^2] (Popoviciu's bound for a variable in
+[low, high], common practice) and correlations in [-1, 1].
 """
 
 from __future__ import annotations
@@ -291,7 +303,9 @@ def release_aggregate(
     `epsilon` (discrete Laplace, pure DP) or `rho` (discrete Gaussian, zCDP)
     is split over the four statistics in proportion to `split` (exactly:
     the shares add up to the total). `delta` is only for the displayed
-    (epsilon, delta) conversion of rho.
+    (epsilon, delta) conversion of rho. The noise is calibrated to add/remove
+    neighbours at `epsilon` (`rho`); the returned guarantee is replace-one at
+    2 epsilon (4 rho), since the cohort size is released exactly.
     """
     mech, budget = choose_mechanism(epsilon, rho, None)
     grid = make_grid(low, high, grid_k)
@@ -329,7 +343,7 @@ def release_aggregate(
     cov_sums = _symmetric(noisy("covariance", cov_sum), n_items)
     co_weights = _symmetric(noisy("co_weights", co_sum), n_items)
     covariance = _covariance(cov_sums, co_weights, _noise_std(st["co_weights"]),
-                             (plan.deviation / grid.k) ** 2)
+                             ((hi - lo) / 2) ** 2)
     release = AggregateRelease(
         item_ids=None if item_ids is None else tuple(item_ids),
         weights=weights, sums=sums, means=means, co_weights=co_weights,
@@ -348,9 +362,25 @@ def _covariance(cov_sums: np.ndarray, co_weights: np.ndarray, beta: float,
     prior_var = float(np.clip(np.diag(cov_sums).sum() / diag_w, 0, max_var))
     prior = np.diag(np.full(cov_sums.shape[0], prior_var))
     ratio = (cov_sums + beta * prior) / (pos + beta)
-    ratio = (ratio + ratio.T) / 2
-    vals, vecs = np.linalg.eigh(ratio)
-    return (vecs * np.clip(vals, 0, None)) @ vecs.T
+    return feasible_covariance(ratio, max_var)
+
+
+def feasible_covariance(matrix: np.ndarray, max_var: float) -> np.ndarray:
+    """The nearest-in-spirit valid covariance of variables bounded to a range of half-width
+    sqrt(max_var): positive semi-definite (negative eigenvalues clipped), variances clamped to
+    [0, max_var], correlations kept (so |c_jk| <= sqrt(c_jj c_kk)). Post-processing only."""
+    sym = (np.asarray(matrix, float) + np.asarray(matrix, float).T) / 2
+    vals, vecs = np.linalg.eigh(sym)
+    psd = (vecs * np.clip(vals, 0, None)) @ vecs.T
+    sd = np.sqrt(np.clip(np.diag(psd), 0, None))
+    scale = np.outer(sd, sd)
+    corr = np.divide(psd, scale, out=np.zeros_like(psd), where=scale > 0)
+    np.fill_diagonal(corr, 1.0)
+    corr = np.clip((corr + corr.T) / 2, -1.0, 1.0)
+    target = np.sqrt(np.clip(np.diag(psd), 0, max_var))
+    out = corr * np.outer(target, target)
+    np.fill_diagonal(out, target**2)
+    return out
 
 
 def _guarantee(plan: AggregatePlan, mech: Mechanism, budget: Fraction, delta: Exact,
@@ -371,22 +401,31 @@ def _guarantee(plan: AggregatePlan, mech: Mechanism, budget: Fraction, delta: Ex
              f"each clipped to the range, with {norm} on the grid 1/{plan.weight_units}; "
              f"deviations from the item means clamped to +-{Fraction(plan.deviation, plan.grid.k)}")
     lost = (
-        "Replacing one participant by another (rather than adding or removing one) is bounded by "
-        "twice the stated epsilon (four times rho, by group privacy).",
+        "That a participant took part: the exact cohort size is released, so adding or removing "
+        "one participant is not what is bounded; the stated epsilon (rho) is for replacing one "
+        "participant's ratings by another's.",
         "Predictions made from a participant's own ratings (AggregateRelease.predict) read those raw "
         "ratings and are not private with respect to that participant.",
     )
     notes = (
-        "Budget split over weights, sums, covariance, co_weights: "
+        "Budget split over weights, sums, covariance, co_weights (add/remove shares): "
         + ", ".join(str(s.budget) for s in plan.stats.values()) + ".",
+        "Each statistic's noise is calibrated to adding or removing one participant at its share "
+        f"of {budget} ({'epsilon' if mech == LAPLACE else 'rho'}); replacing one participant is "
+        f"bounded by {'twice' if mech == LAPLACE else 'four times'} that, by group privacy, "
+        "which is the stated and charged guarantee.",
         "Item means are shrunk towards the global mean with a pseudo-weight equal to the noise's "
-        "standard deviation; the covariance estimate is shrunk likewise and made positive "
-        "semi-definite (post-processing).",
+        "standard deviation and clipped to the range; the covariance estimate is shrunk likewise, "
+        "made positive semi-definite, its variances clamped to [0, ((high - low)/2)^2] and its "
+        "correlations to [-1, 1] (post-processing).",
     )
+    replace_one = budget * (2 if mech == LAPLACE else 4)  # group privacy for a swap
     return Guarantee(
         release="aggregate", mechanism=mech, unit=PrivacyUnit.PARTICIPANT,
-        neighbours="add or remove one participant with all their ratings",
-        epsilon=budget if mech == LAPLACE else None, rho=budget if mech == GAUSSIAN else None,
+        neighbours="replace-one: one participant's ratings replaced by any other's (the cohort "
+                   "size is public)",
+        epsilon=replace_one if mech == LAPLACE else None,
+        rho=replace_one if mech == GAUSSIAN else None,
         delta=check_delta(delta) if mech == GAUSSIAN else None,
         grid_step=Fraction(1, plan.grid.k), value_range=(plan.grid.low, plan.grid.high),
         contribution_bound=bound, components=components,

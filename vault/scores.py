@@ -20,12 +20,12 @@ from pathlib import Path
 import numpy as np
 
 from vault.errors import IntegrityError, InvalidInput, NotFound
-from vault.policyset import Category
+from vault.policyset import ITEM_ID_PATTERN, Category
 
 COLUMNS = ("participant_id", "item_id", "value")
 MAX_BYTES = 256 << 20
 _PID = re.compile(r"[0-9a-f]{32}")
-_ITEM = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}")
+_ITEM = re.compile(ITEM_ID_PATTERN)
 
 
 @dataclass(frozen=True)
@@ -55,6 +55,7 @@ def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
                            "participant_id, item_id and value")
     index = {h.strip(): i for i, h in enumerate(header)}
     low, high = spec.value_range or (-math.inf, math.inf)
+    catalogue = frozenset(spec.items) if spec.items is not None else None
     rows: list[ScoreRow] = []
     seen: set[tuple[str, str]] = set()
     for number, cells in enumerate(reader, start=2):
@@ -69,6 +70,9 @@ def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
         if not _ITEM.fullmatch(item):
             raise InvalidInput(f"scores file: row {number}: item_id must be 1-64 letters, digits "
                                "or . _ : / -")
+        if catalogue is not None and item not in catalogue:
+            raise InvalidInput(f"scores file: row {number}: item_id is not in {category}'s item "
+                               "catalogue (policy set); nothing was stored")
         value = _number(text_value, number, category, spec)
         if not low <= value <= high:
             raise InvalidInput(f"scores file: row {number}: value outside {category}'s range "

@@ -64,6 +64,15 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
                  "created_at": str, "expires_at": str, "manifest": bytes, "manifest_digest": str},
                 "export_id"),
     "export_members": ({"export_id": str, "pid": str, "pseudonym": str}, ("export_id", "pid")),
+    # an export in progress (state staged -> writing -> signed -> done; or refunded / void), so
+    # the next open can finish or undo one that was killed; `signed` holds the signed manifest
+    # until the folder is in place (then NULL)
+    "export_runs": ({"export_id": str, "kind": str, "purpose": str, "staging": str, "out": str,
+                     "state": str, "charged_purposes": str, "signed": bytes, "started_at": str,
+                     "ended_at": str}, "export_id"),
+    # what a staged release charged each participant, until it is done or refunded (then deleted)
+    "export_charges": ({"export_id": str, "pid": str, "epsilon": str, "rho": str},
+                       ("export_id", "pid")),
     # privacy budget spent per participant and purpose (exact fractions as text)
     "budget_ledger": ({"pid": str, "purpose": str, "epsilon": str, "rho": str, "releases": int},
                       ("pid", "purpose")),
@@ -88,6 +97,9 @@ _NOT_NULL: dict[str, set[str]] = {
     "score_items": {"blob_id"},
     "exports": {"kind", "purpose", "created_at", "manifest", "manifest_digest"},
     "export_members": {"pseudonym"},
+    "export_runs": {"kind", "purpose", "staging", "out", "state", "charged_purposes",
+                    "started_at"},
+    "export_charges": {"epsilon", "rho"},
     "budget_ledger": {"epsilon", "rho", "releases"},
     "withdrawals": {"pid", "scope", "received", "deadline", "status"},
     "audit_log": {"entry", "leaf_hash"},
@@ -124,12 +136,6 @@ def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
     return conn
 
 
-def add_missing_tables(conn: sqlite3.Connection) -> None:
-    """Tables added since schema 1 (additive; existing vaults gain them at open)."""
-    db = sqlite_utils.Database(conn)
-    for name, (columns, pk) in _TABLES.items():
-        if not db[name].exists():
-            db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
 
 
 def create_schema(conn: sqlite3.Connection) -> None:
@@ -167,6 +173,18 @@ def add_missing_columns(conn: sqlite3.Connection) -> list[str]:
                 added.append(f"{table}.{column}")
     _additive_indexes(conn)
     return added
+
+
+def add_missing_tables(conn: sqlite3.Connection) -> None:
+    """Create the tables added within schema 1 in a vault made before them (additive only)."""
+    db = sqlite_utils.Database(conn)
+    missing = [name for name in _TABLES if not db[name].exists()]
+    if not missing:
+        return
+    with transaction(conn):
+        for name in missing:
+            columns, pk = _TABLES[name]
+            db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
 
 
 @contextmanager
