@@ -102,7 +102,9 @@ class Vault:
         self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
         keys.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
         self._store = BlobStore(path, self.vault_id)
-        self._audit = audit.AuditLog(conn, self.vault_id)
+        self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing)
+        # rows this open found written without the key, now flagged (None: none found)
+        self.audit_flagged: dict[str, Any] | None = None
         self._closed = False
         self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
 
@@ -185,7 +187,7 @@ class Vault:
                     storage.set_meta(conn, key, value)
                 registry.store_policy(conn, policy, at)
                 ring.add_slot(conn, member, "steward", passphrase, at)
-                log = audit.AuditLog(conn, vault_id)
+                log = audit.AuditLog(conn, vault_id, signer=signing)
                 log.append({"actor": member, "action": "vault.init", "decision": "done",
                             "details": {"fingerprint": crypto.fingerprint(signing.public_key),
                                         "policy_version": policy.version}}, at)
@@ -206,6 +208,7 @@ class Vault:
             vault_id = _check_schema(conn)
             keys, role = KeyRing.unlock(conn, vault_id, member, passphrase)
             vault = cls(path, conn, keys, member, role, lock_fd, clock)
+            vault._check_audit()
         except BaseException:
             if conn is not None:
                 conn.close()
@@ -213,6 +216,12 @@ class Vault:
             raise
         vault._recover()
         return vault
+
+    def _check_audit(self) -> None:
+        """Never sign over rows written without the key: flag them first, for good, so the
+        vault keeps working (a withdrawal cannot wait) and `audit verify` keeps failing."""
+        with storage.transaction(self._conn):
+            self.audit_flagged = self._audit.flag_unsigned(self._stamp())
 
     def _recover(self) -> None:
         from vault.withdraw import finish_interrupted
