@@ -114,6 +114,20 @@ def test_open_flags_forged_rows_for_good_and_the_vault_keeps_working(vault_path:
     assert not again.ok and again.problem == report.problem  # forever
 
 
+def test_the_cli_cautions_when_an_open_flags_rows(vault_path: Path, capsys, monkeypatch) -> None:
+    _closed_vault(vault_path, 1)
+    conn = _db(vault_path)
+    seq = _forge(conn)
+    conn.close()
+    monkeypatch.setenv("MINDWARD_PASSPHRASE", TEST_PASSPHRASE)
+    assert main(["audit", "show", "--vault", str(vault_path), "--json"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"entries {seq}..{seq} were written without" in err
+    assert main(["audit", "verify", "--vault", str(vault_path)]) == 5
+    out = capsys.readouterr().out
+    assert f"flagged at entry {seq + 1}" in out
+
+
 def test_forged_row_during_a_session_is_flagged_before_the_next_append(vault_path: Path) -> None:
     public = _closed_vault(vault_path)
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
@@ -203,6 +217,22 @@ def test_a_forged_flag_counts_for_nothing(vault_path: Path) -> None:
     conn.close()
     report = vault.verify_audit(vault_path, public_key=public)
     assert report.unauthenticated == [{"first": seq, "last": seq, "flagged_at": None}]
+
+
+def test_a_garbled_forged_row_is_flagged_by_its_stored_bytes(vault_path: Path) -> None:
+    """A forger controls column types too: a text entry and a bogus leaf hash still get flagged."""
+    public = _closed_vault(vault_path)
+    conn = _db(vault_path)
+    seq = conn.execute("SELECT MAX(seq) + 1 FROM audit_log").fetchone()[0]
+    conn.execute("INSERT INTO audit_log VALUES (?, ?, ?)", (seq, f'{{"seq":{seq}}}', "zz"))
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:
+        flag = v.audit_flagged
+        assert flag is not None and flag["first"] == seq
+        assert flag["leaf_hashes"] == [crypto.merkle_leaf_hash(b'{"seq":%d}' % seq).hex()]
+        v.new_participant()
+    report = vault.verify_audit(vault_path, public_key=public)
+    assert not report.ok and report.first_bad_entry == seq
 
 
 def test_appends_need_the_signer_and_a_transaction(fresh_vault: Vault) -> None:

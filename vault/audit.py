@@ -46,6 +46,13 @@ def decode_entry(raw: bytes) -> dict[str, Any]:
     return value
 
 
+def _stored_bytes(value: object) -> bytes:
+    """A row's entry as the bytes SQLite holds (a forger may store text or numbers)."""
+    if isinstance(value, bytes):
+        return value
+    return str(value).encode("utf-8", "surrogatepass")
+
+
 @dataclass(frozen=True)
 class TreeHead:
     vault_id: str
@@ -201,12 +208,12 @@ class AuditLog:
         top = max(roots, default=0)
         for seq, leaf in self.conn.execute(
                 "SELECT seq, leaf_hash FROM audit_log WHERE seq < ? ORDER BY seq", (top,)):
-            if seq != frontier.size:
+            if seq != frontier.size or type(leaf) is not bytes or len(leaf) != merkle.HASH_SIZE:
                 break
             frontier.append(leaf)
             root = roots.get(frontier.size)
             if root is not None and crypto.constant_time_equal(frontier.root(), root):
-                best = (frontier.size, merkle.CompactRange.from_bytes(frontier.to_bytes()))
+                best = (frontier.size, frontier.copy())
         return best
 
     def _reconcile(self, at: str) -> None:
@@ -223,8 +230,9 @@ class AuditLog:
         self._cache, self._head_text = frontier, None if head_row is None else head_row[0]
         if covered == size:
             return
-        leaves = [r[0] for r in self.conn.execute(
-            "SELECT leaf_hash FROM audit_log WHERE seq >= ? ORDER BY seq", (covered,))]
+        # the tree commits to the rows as stored, whatever their leaf_hash column claims
+        leaves = [crypto.merkle_leaf_hash(_stored_bytes(r[0])) for r in self.conn.execute(
+            "SELECT entry FROM audit_log WHERE seq >= ? ORDER BY seq", (covered,))]
         if len(leaves) != size - covered:
             raise IntegrityError("the audit log has gaps; run 'mindward audit verify'")
         frontier.extend(leaves)
@@ -258,7 +266,7 @@ class AuditLog:
 
     def _write(self, entries: Iterable[Mapping[str, Any]], at: str) -> list[int]:
         assert self._cache is not None and self._signer is not None
-        frontier = merkle.CompactRange.from_bytes(self._cache.to_bytes())  # a working copy
+        frontier = self._cache.copy()  # a working copy
         rows: list[tuple[int, bytes, bytes]] = []
         for fields in entries:
             seq = frontier.size
@@ -466,6 +474,9 @@ def verify_log(conn: sqlite3.Connection, public_key: bytes,
     for seq, raw, stored in conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq"):
         if seq != expected:
             report.first_bad_entry, report.problem = expected, f"entry {expected} is missing"
+            return report
+        if type(raw) is not bytes:
+            report.first_bad_entry, report.problem = seq, f"entry {seq} was altered"
             return report
         if not raw.startswith(b'{"seq":%d,' % seq) and raw != b'{"seq":%d}' % seq:
             report.first_bad_entry, report.problem = seq, f"entry {seq} is out of place"
