@@ -128,6 +128,38 @@ def test_the_cli_cautions_when_an_open_flags_rows(vault_path: Path, capsys, monk
     assert f"flagged at entry {seq + 1}" in out
 
 
+def test_no_inclusion_proof_vouches_for_a_flagged_entry(vault_path: Path) -> None:
+    """Flagged rows sit under signed heads, so those heads name them: neither `audit prove`
+    nor a proof the forger builds from the leaf hashes passes the offline check."""
+    from vault import merkle
+
+    public = _closed_vault(vault_path)
+    conn = _db(vault_path)
+    seq = _forge(conn)
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:
+        v.new_participant()
+    head = TreeHead.from_dict(vault.describe(vault_path)["latest_tree_head"])
+    assert head.unauthenticated == ((seq, seq),) and head.verify(public)
+    with pytest.raises(vault.IntegrityError, match=f"entry {seq} was written without"):
+        vault.prove(vault_path, seq)
+    conn = _db(vault_path)
+    raw, = conn.execute("SELECT entry FROM audit_log WHERE seq = ?", (seq,)).fetchone()
+    leaves = [r[0] for r in conn.execute(
+        "SELECT leaf_hash FROM audit_log WHERE seq < ? ORDER BY seq", (head.tree_size,))]
+    conn.close()
+    built = {"entry": raw.decode(), "leaf_index": seq, "tree_head": head.to_dict(),
+             "proof": [h.hex() for h in merkle.inclusion_proof(leaves, seq)]}
+    assert merkle.verify_inclusion(leaves[seq], seq, head.tree_size,
+                                   merkle.inclusion_proof(leaves, seq), head.root_hash)
+    assert not verify_inclusion_bundle(built, public)  # the signed head names it
+    stripped = dict(built, tree_head={k: x for k, x in head.to_dict().items()
+                                      if k != "unauthenticated"})
+    assert not verify_inclusion_bundle(stripped, public)  # and the signature covers the list
+    for other in (0, seq + 1):
+        assert verify_inclusion_bundle(vault.prove(vault_path, other), public)
+
+
 def test_forged_row_during_a_session_is_flagged_before_the_next_append(vault_path: Path) -> None:
     public = _closed_vault(vault_path)
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
@@ -235,6 +267,29 @@ def test_a_garbled_forged_row_is_flagged_by_its_stored_bytes(vault_path: Path) -
     assert not report.ok and report.first_bad_entry == seq
 
 
+def test_rows_out_of_sequence_fail_verify_and_open_refuses(vault_path: Path) -> None:
+    """A forged row past a gap, or below zero, cannot join the tree: verify names it, and open
+    refuses (exit 5) rather than extend a log with holes."""
+    public = _closed_vault(vault_path)
+    conn = _db(vault_path)
+    raw = encode_entry(-1, {"actor": "steward", "action": "x", "at": AT})
+    conn.execute("INSERT INTO audit_log VALUES (-1, ?, ?)", (raw, crypto.merkle_leaf_hash(raw)))
+    conn.close()
+    report = vault.verify_audit(vault_path, public_key=public)
+    assert not report.ok and "sequence number -1" in report.problem
+    conn = _db(vault_path)
+    conn.execute("DROP TRIGGER audit_log_no_delete")
+    conn.execute("DELETE FROM audit_log WHERE seq = -1")
+    seq = conn.execute("SELECT MAX(seq) + 3 FROM audit_log").fetchone()[0]
+    raw = encode_entry(seq, {"actor": "steward", "action": "x", "at": AT})
+    conn.execute("INSERT INTO audit_log VALUES (?, ?, ?)", (seq, raw, crypto.merkle_leaf_hash(raw)))
+    conn.close()
+    report = vault.verify_audit(vault_path, public_key=public)
+    assert not report.ok and f"entry {seq - 2} is missing" in report.problem
+    with pytest.raises(vault.IntegrityError, match=f"gap before entry {seq}"):
+        Vault.open(vault_path, TEST_PASSPHRASE)
+
+
 def test_appends_need_the_signer_and_a_transaction(fresh_vault: Vault) -> None:
     reader = AuditLog(fresh_vault._conn, fresh_vault.vault_id)
     with storage.transaction(fresh_vault._conn), pytest.raises(vault.UsageError, match="signing key"):
@@ -322,7 +377,10 @@ def test_property_one_forged_insert_is_always_named(ops: list[tuple[str, int]],
         report = verify_log(conn, key.public_key)
         actions = [json.loads(r[0])["action"] for r in conn.execute(
             "SELECT entry FROM audit_log ORDER BY seq")]
+        current = log.current_head()
         conn.close()
+    assert current is not None and current.tree_size == len(actions)
+    assert current.unauthenticated == (() if forged is None else ((forged, forged),))
     assert actions.count("a") == honest and "r" not in actions
     if forged is None:
         assert report.ok and not report.unauthenticated, report.problem
@@ -342,4 +400,5 @@ def test_current_head_is_the_documented_record(fresh_vault: Vault) -> None:
         "SELECT value FROM meta WHERE key = 'audit_head'").fetchone()[0]
     head = TreeHead.from_dict(json.loads(text))
     assert text.encode() == audit.canonical_json(head.to_dict())
+    assert sorted(json.loads(head.body())) == ["root_hash", "signed_at", "tree_size", "vault_id"]
     assert head.tree_size == fresh_vault._audit.size and head.verify(fresh_vault.public_key)

@@ -53,6 +53,22 @@ def _stored_bytes(value: object) -> bytes:
     return str(value).encode("utf-8", "surrogatepass")
 
 
+Ranges = tuple[tuple[int, int], ...]
+
+
+def _ranges(value: object) -> Ranges:
+    """`[[first, last], ...]` as stored in a head; IntegrityError for anything else."""
+    if not isinstance(value, list):
+        raise IntegrityError("malformed tree head")
+    out = []
+    for item in value:
+        if (not isinstance(item, list) or len(item) != 2
+                or not all(type(x) is int and x >= 0 for x in item) or item[0] > item[1]):
+            raise IntegrityError("malformed tree head")
+        out.append((item[0], item[1]))
+    return tuple(out)
+
+
 @dataclass(frozen=True)
 class TreeHead:
     vault_id: str
@@ -60,22 +76,31 @@ class TreeHead:
     root_hash: bytes
     signed_at: str
     signature: bytes
+    # entries under this head that were written without the key (first, last), signed with it;
+    # absent from the body when empty, so such heads keep the original four-field format
+    unauthenticated: Ranges = ()
 
-    def body(self) -> bytes:
-        return canonical_json({
+    def _fields(self) -> dict[str, Any]:
+        fields: dict[str, Any] = {
             "vault_id": self.vault_id, "tree_size": self.tree_size,
             "root_hash": self.root_hash.hex(), "signed_at": self.signed_at,
-        })
+        }
+        if self.unauthenticated:
+            fields["unauthenticated"] = [list(r) for r in self.unauthenticated]
+        return fields
+
+    def body(self) -> bytes:
+        return canonical_json(self._fields())
 
     def verify(self, public_key: bytes) -> bool:
         return crypto.verify_signature(public_key, HEAD_DOMAIN, self.body(), self.signature)
 
+    def vouches_for(self, seq: int) -> bool:
+        """Is entry `seq` under this head and not one it names as written without the key?"""
+        return 0 <= seq < self.tree_size and not any(a <= seq <= b for a, b in self.unauthenticated)
+
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "vault_id": self.vault_id, "tree_size": self.tree_size,
-            "root_hash": self.root_hash.hex(), "signed_at": self.signed_at,
-            "signature": self.signature.hex(),
-        }
+        return {**self._fields(), "signature": self.signature.hex()}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> TreeHead:
@@ -84,8 +109,9 @@ class TreeHead:
                 vault_id=str(d["vault_id"]), tree_size=int(d["tree_size"]),
                 root_hash=bytes.fromhex(d["root_hash"]), signed_at=str(d["signed_at"]),
                 signature=bytes.fromhex(d["signature"]),
+                unauthenticated=_ranges(d.get("unauthenticated", [])),
             )
-        except (KeyError, TypeError, ValueError) as exc:
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
             raise IntegrityError("malformed tree head") from exc
 
     @classmethod
@@ -133,6 +159,7 @@ class AuditLog:
         self._cache: merkle.CompactRange | None = None  # the frontier the current head signs
         self._head_text: str | None = None  # the stored current head that frontier matches
         self._flagged: dict[str, Any] | None = None  # the flag the last reconcile wrote
+        self._ranges: Ranges = ()  # the flagged ranges every new head names
 
     # -- state --------------------------------------------------------------------------------
 
@@ -194,26 +221,27 @@ class AuditLog:
         except (IntegrityError, ValueError):
             return None
 
-    def _signed_prefix(self, heads: list[TreeHead]) -> tuple[int, merkle.CompactRange]:
-        """The longest prefix of the log whose root a signed head vouches for, and its frontier."""
+    def _signed_prefix(self, heads: list[TreeHead]) -> tuple[merkle.CompactRange, Ranges]:
+        """The frontier of the longest prefix of the log whose root a signed head vouches for,
+        and the flagged ranges that head names."""
         stored = self._stored_frontier()
         for head in heads:
             if (stored is not None and stored.size == head.tree_size
                     and crypto.constant_time_equal(stored.root(), head.root_hash)):
-                return head.tree_size, stored
+                return stored, head.unauthenticated
         # the slow path (a tampered or legacy state): one pass over the stored leaf hashes
-        roots = {h.tree_size: h.root_hash for h in heads}
-        best: tuple[int, merkle.CompactRange] = (0, merkle.CompactRange())
+        by_size = {h.tree_size: h for h in heads}
+        best: tuple[merkle.CompactRange, Ranges] = (merkle.CompactRange(), ())
         frontier = merkle.CompactRange()
-        top = max(roots, default=0)
+        top = max(by_size, default=0)
         for seq, leaf in self.conn.execute(
                 "SELECT seq, leaf_hash FROM audit_log WHERE seq < ? ORDER BY seq", (top,)):
             if seq != frontier.size or type(leaf) is not bytes or len(leaf) != merkle.HASH_SIZE:
                 break
             frontier.append(leaf)
-            root = roots.get(frontier.size)
-            if root is not None and crypto.constant_time_equal(frontier.root(), root):
-                best = (frontier.size, frontier.copy())
+            head = by_size.get(frontier.size)
+            if head is not None and crypto.constant_time_equal(frontier.root(), head.root_hash):
+                best = (frontier.copy(), head.unauthenticated)
         return best
 
     def _reconcile(self, at: str) -> None:
@@ -221,7 +249,8 @@ class AuditLog:
         head_row = self.conn.execute(
             "SELECT value FROM meta WHERE key = ?", (_HEAD_KEY,)).fetchone()
         size = self._db_size()
-        covered, frontier = self._signed_prefix(self._signed_heads())
+        frontier, self._ranges = self._signed_prefix(self._signed_heads())
+        covered = frontier.size
         if covered > size:
             raise IntegrityError(
                 f"audit entries {size}..{covered - 1} are missing although a signed tree head "
@@ -234,8 +263,10 @@ class AuditLog:
         leaves = [crypto.merkle_leaf_hash(_stored_bytes(r[0])) for r in self.conn.execute(
             "SELECT entry FROM audit_log WHERE seq >= ? ORDER BY seq", (covered,))]
         if len(leaves) != size - covered:
-            raise IntegrityError("the audit log has gaps; run 'mindward audit verify'")
+            raise IntegrityError(f"the audit log has a gap before entry {size - 1} (rows out of "
+                                 "sequence): it cannot be extended; run 'mindward audit verify'")
         frontier.extend(leaves)
+        self._ranges = (*self._ranges, (covered, size - 1))
         flag = {"first": covered, "last": size - 1, "count": size - covered,
                 "signed_size": covered, "range_root": merkle.root_from_leaf_hashes(leaves).hex(),
                 "leaf_hashes": [h.hex() for h in leaves[:FLAG_LEAVES_LISTED]]}
@@ -284,7 +315,7 @@ class AuditLog:
         return [r[0] for r in rows]
 
     def _sign(self, frontier: merkle.CompactRange, key: crypto.SigningKey, at: str) -> TreeHead:
-        unsigned = TreeHead(self.vault_id, frontier.size, frontier.root(), at, b"")
+        unsigned = TreeHead(self.vault_id, frontier.size, frontier.root(), at, b"", self._ranges)
         return TreeHead(**{**unsigned.__dict__, "signature": key.sign(HEAD_DOMAIN, unsigned.body())})
 
     def _store_current(self, frontier: merkle.CompactRange, head: TreeHead) -> None:
@@ -333,6 +364,9 @@ class AuditLog:
         head = self.latest_head()
         if head is None or seq < 0 or seq >= head.tree_size:
             raise NotFound(f"no audit entry {seq} under a signed tree head")
+        if not head.vouches_for(seq):
+            raise IntegrityError(f"audit entry {seq} was written without the vault's key "
+                                 "(flagged): there is no proof to give")
         row = self.conn.execute("SELECT entry FROM audit_log WHERE seq = ?", (seq,)).fetchone()
         proof = merkle.inclusion_proof(self._leaf_hashes(head.tree_size), seq)
         return {
@@ -378,7 +412,7 @@ def verify_inclusion_bundle(bundle: Mapping[str, Any], public_key: bytes) -> boo
         index = int(bundle["leaf_index"])
     except (KeyError, TypeError, ValueError, UnicodeEncodeError, IntegrityError):
         return False
-    if not head.verify(public_key):
+    if not head.verify(public_key) or not head.vouches_for(index):
         return False
     try:
         if decode_entry(entry).get("seq") != index:
@@ -472,6 +506,10 @@ def verify_log(conn: sqlite3.Connection, public_key: bytes,
             return report
         next_check = pending.pop(0) if pending else -1
     for seq, raw, stored in conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq"):
+        if seq < 0:
+            report.first_bad_entry = seq
+            report.problem = f"a row with sequence number {seq} lies outside the log"
+            return report
         if seq != expected:
             report.first_bad_entry, report.problem = expected, f"entry {expected} is missing"
             return report
