@@ -434,10 +434,11 @@ def _stored_current_head(conn: sqlite3.Connection) -> TreeHead | None:
 
 
 def _flag_of(seq: int, raw: bytes) -> dict[str, Any] | None:
-    """The range an `audit.unauthenticated` entry flags (cheap byte test first)."""
-    if _FLAG_MARK not in raw:
+    """The range an `audit.unauthenticated` entry flags (callers test for `_FLAG_MARK` first)."""
+    try:
+        entry = decode_entry(raw)
+    except (ValueError, IntegrityError):
         return None
-    entry = decode_entry(raw)
     details = entry.get("details")
     if entry.get("action") != FLAG_ACTION or not isinstance(details, dict):
         return None
@@ -505,37 +506,38 @@ def verify_log(conn: sqlite3.Connection, public_key: bytes,
             report.problem = problem
             return report
         next_check = pending.pop(0) if pending else -1
-    for seq, raw, stored in conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq"):
-        if seq < 0:
-            report.first_bad_entry = seq
-            report.problem = f"a row with sequence number {seq} lies outside the log"
-            return report
-        if seq != expected:
-            report.first_bad_entry, report.problem = expected, f"entry {expected} is missing"
-            return report
-        if type(raw) is not bytes:
-            report.first_bad_entry, report.problem = seq, f"entry {seq} was altered"
-            return report
-        if not raw.startswith(b'{"seq":%d,' % seq) and raw != b'{"seq":%d}' % seq:
-            report.first_bad_entry, report.problem = seq, f"entry {seq} is out of place"
-            return report
-        leaf = leaf_hash(raw)
-        if leaf != stored:
-            report.first_bad_entry, report.problem = seq, f"entry {seq} was altered"
-            return report
-        try:
-            if (flag := _flag_of(seq, raw)) is not None:
-                flags.append(flag)
-        except (ValueError, IntegrityError):
-            pass  # not JSON: covered or not, the checks below decide
-        frontier.append(leaf)
-        expected += 1
-        if expected == next_check:
-            if (problem := check_heads()) is not None:
-                report.first_bad_entry, report.problem = last_good, problem
+    mark = _FLAG_MARK
+    rows = conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq")
+    try:
+        for seq, raw, stored in rows:
+            if seq != expected:
+                report.first_bad_entry, report.problem = expected, f"entry {expected} is missing"
+                if seq < 0:
+                    report.first_bad_entry = seq
+                    report.problem = f"a row with sequence number {seq} lies outside the log"
                 return report
-            last_good = expected
-            next_check = pending.pop(0) if pending else -1
+            start = b'{"seq":%d,' % seq
+            if not raw.startswith(start) and raw != b'{"seq":%d}' % seq:
+                report.first_bad_entry, report.problem = seq, f"entry {seq} is out of place"
+                return report
+            leaf = leaf_hash(raw)
+            if leaf != stored:
+                report.first_bad_entry, report.problem = seq, f"entry {seq} was altered"
+                return report
+            # the vault writes flags with "action" as the first key after seq (keys sorted)
+            if raw.startswith(mark, len(start)) and (flag := _flag_of(seq, raw)) is not None:
+                flags.append(flag)
+            frontier.append(leaf)
+            expected += 1
+            if expected == next_check:
+                if (problem := check_heads()) is not None:
+                    report.first_bad_entry, report.problem = last_good, problem
+                    return report
+                last_good = expected
+                next_check = pending.pop(0) if pending else -1
+    except TypeError:  # an entry or leaf stored as text or a number: not what the vault wrote
+        report.first_bad_entry, report.problem = expected, f"entry {expected} was altered"
+        return report
     report.entries = expected
     if next_check != -1:
         report.first_bad_entry = expected
