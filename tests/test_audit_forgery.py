@@ -160,6 +160,28 @@ def test_no_inclusion_proof_vouches_for_a_flagged_entry(vault_path: Path) -> Non
         assert verify_inclusion_bundle(vault.prove(vault_path, other), public)
 
 
+def test_a_withdrawal_still_gets_a_verifiable_receipt_after_a_forgery(vault_path: Path) -> None:
+    """The legal deadline does not wait for the forensics: erasure and its receipt still work."""
+    import datetime as dt
+
+    from vault import receipt
+
+    with Vault.init(vault_path, TEST_PASSPHRASE) as v:
+        pid = v.new_participant()
+        public = v.public_key
+    conn = _db(vault_path)
+    seq = _forge(conn)
+    conn.close()
+    with Vault.open(vault_path, TEST_PASSPHRASE) as v:
+        assert v.audit_flagged is not None
+        v.withdraw_request(pid, received=v.now().date() - dt.timedelta(days=1))
+        result = v.withdraw_process(pid)
+    assert receipt.verify_receipt(result["receipt"], public) == (True, [])
+    audit_part = result["receipt"]["body"]["audit"]
+    assert audit_part["leaf_index"] > seq + 1
+    assert audit_part["tree_head"]["unauthenticated"] == [[seq, seq]]
+
+
 def test_forged_row_during_a_session_is_flagged_before_the_next_append(vault_path: Path) -> None:
     public = _closed_vault(vault_path)
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:

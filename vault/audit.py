@@ -571,7 +571,8 @@ def _describe_unauthenticated(flag: Mapping[str, Any]) -> str:
     if at is None:
         return (f"entries {first}..{last} ({last - first + 1}) are not covered by any signed "
                 "tree head: they were written without the vault's key (or the current head "
-                "was removed)")
+                "was removed, or a mindward older than per-transaction heads was killed before "
+                "it closed)")
     if first is None:
         return f"entry {at} flags entries written without the vault's key but is malformed"
     return f"entries {first}..{last} were written without the vault's key; flagged at entry {at}"
