@@ -18,7 +18,7 @@ from typing import Any
 
 from vault import crypto, merkle
 from vault.errors import IntegrityError, NotFound, UsageError
-from vault.storage import get_meta, set_meta
+from vault.storage import get_meta
 
 HEAD_DOMAIN = "tree-head"
 FLAG_ACTION = "audit.unauthenticated"
@@ -315,13 +315,17 @@ class AuditLog:
         return [r[0] for r in rows]
 
     def _sign(self, frontier: merkle.CompactRange, key: crypto.SigningKey, at: str) -> TreeHead:
-        unsigned = TreeHead(self.vault_id, frontier.size, frontier.root(), at, b"", self._ranges)
-        return TreeHead(**{**unsigned.__dict__, "signature": key.sign(HEAD_DOMAIN, unsigned.body())})
+        root = frontier.root()
+        body = TreeHead(self.vault_id, frontier.size, root, at, b"", self._ranges).body()
+        return TreeHead(self.vault_id, frontier.size, root, at, key.sign(HEAD_DOMAIN, body),
+                        self._ranges)
 
     def _store_current(self, frontier: merkle.CompactRange, head: TreeHead) -> None:
         text = canonical_json(head.to_dict()).decode("ascii")
-        set_meta(self.conn, _FRONTIER_KEY, frontier.to_bytes().hex())
-        set_meta(self.conn, _HEAD_KEY, text)
+        self.conn.execute(  # both rows in one statement: this runs in every write transaction
+            "INSERT INTO meta (key, value) VALUES (?, ?), (?, ?) "
+            "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+            (_FRONTIER_KEY, frontier.to_bytes().hex(), _HEAD_KEY, text))
         self._cache, self._head_text = frontier, text
 
     def sign_head(self, key: crypto.SigningKey, at: str) -> TreeHead:
