@@ -1,8 +1,9 @@
 """`mindward bench`: the vault's speed and memory against limits measured in the same run.
 
 Each figure is a ratio to a baseline this machine achieves in the same run
-(raw AES-256-GCM to an fsynced file, a bare durable SQLite transaction, bare
-SHA-256 over the same Merkle hashes), so the targets hold on any machine.
+(raw AES-256-GCM to an fsynced file, a bare durable SQLite transaction, the same
+rows inserted in one bare transaction, bare SHA-256 over the same Merkle hashes),
+so the targets hold on any machine.
 Nothing here is participant data: the bench writes random bytes to a
 throw-away vault in the system's temporary directory and deletes it.
 """
