@@ -85,14 +85,34 @@ def test_reordered_entries_are_named(vault_path: Path) -> None:
     assert not report.ok and report.first_bad_entry == 2 and "out of place" in report.problem
 
 
+def _current_head_text(path: Path) -> str:
+    conn = sqlite3.connect(path / "vault.db")
+    try:
+        return conn.execute("SELECT value FROM meta WHERE key = 'audit_head'").fetchone()[0]
+    finally:
+        conn.close()
+
+
 def test_truncation_with_heads_removed_is_caught_by_an_earlier_head(vault_path: Path) -> None:
-    public, _ = _vault_with_entries(vault_path, 5)
+    """Truncation to an older consistent state (rows, durable heads and a current head the
+    attacker copied back then) passes on its own: only a head kept outside catches it."""
+    with Vault.init(vault_path, TEST_PASSPHRASE) as v:
+        for _ in range(3):
+            v.new_participant()
+        old_current = _current_head_text(vault_path)  # copied by the attacker at size 4
+        for _ in range(2):
+            v.new_participant()
+        v.sign_head()
+        public = v.public_key
     earlier = json.loads(json.dumps(vault.describe(vault_path)["latest_tree_head"]))
+    size = earlier["tree_size"]
+    assert json.loads(old_current)["tree_size"] == size - 2
     conn = _raw(vault_path)
     conn.execute("DROP TRIGGER tree_heads_no_delete")
-    size = earlier["tree_size"]
     conn.execute("DELETE FROM audit_log WHERE seq >= ?", (size - 2,))
     conn.execute("DELETE FROM tree_heads WHERE tree_size > ?", (size - 2,))
+    assert not vault.verify_audit(vault_path, public_key=public).ok  # the current head covers 6
+    conn.execute("UPDATE meta SET value = ? WHERE key = 'audit_head'", (old_current,))
     assert vault.verify_audit(vault_path, public_key=public).ok  # internally consistent now
     report = vault.verify_audit(vault_path, public_key=public, trusted=[TreeHead.from_dict(earlier)])
     assert not report.ok and "removed" in report.problem
@@ -153,7 +173,9 @@ def test_batch_and_single_appends_build_the_rfc9162_tree(fresh_vault: Vault) -> 
     rows = fresh_vault._conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq").fetchall()
     assert [r[0] for r in rows] == list(range(len(rows)))
     assert all(merkle_leaf_hash(r[1]) == r[2] for r in rows)
-    assert log._frontier().root() == merkle.root_from_leaf_hashes([r[2] for r in rows])
+    current = log.current_head()  # signed by the transaction itself
+    assert current.root_hash == merkle.root_from_leaf_hashes([r[2] for r in rows])
+    assert current.tree_size == len(rows) and current.verify(fresh_vault.public_key)
     head = fresh_vault.sign_head()
     assert head.tree_size == len(rows) and head.verify(fresh_vault.public_key)
 
@@ -186,12 +208,31 @@ def test_consistency_proofs_against_an_earlier_head(vault_path: Path) -> None:
     conn.execute("UPDATE audit_log SET entry = ?, leaf_hash = ? WHERE seq = 1",
                  (forged, merkle_leaf_hash(forged)))
     conn.execute("DELETE FROM tree_heads")
-    conn.execute("DELETE FROM meta WHERE key = 'audit_frontier'")  # rebuilt from the forged leaves
     conn.close()
     with Vault.open(vault_path, TEST_PASSPHRASE) as v:
-        v.sign_head()  # a fresh head over the rewritten log, validly signed
+        _resign(vault_path, v._signing)  # fresh heads over the rewritten log, validly signed
     assert vault.verify_audit(vault_path, public_key=public).ok  # consistent on its own terms
     assert not vault.check_consistency(vault_path, earlier, public)["ok"]
+
+
+def _resign(path: Path, signing: vault.crypto.SigningKey) -> None:
+    """What a key holder can do: sign the log as it now stands (durable and current head)."""
+    from vault import merkle
+
+    conn = sqlite3.connect(path / "vault.db", isolation_level=None)
+    leaves = [r[0] for r in conn.execute("SELECT leaf_hash FROM audit_log ORDER BY seq")]
+    frontier = merkle.CompactRange()
+    frontier.extend(leaves)
+    vault_id = conn.execute("SELECT value FROM meta WHERE key = 'vault_id'").fetchone()[0]
+    body = TreeHead(vault_id, len(leaves), frontier.root(), "2026-12-03T00:00:00Z", b"")
+    head = TreeHead(**{**body.__dict__, "signature": signing.sign("tree-head", body.body())})
+    conn.execute("INSERT INTO tree_heads VALUES (?, ?, ?)", (head.tree_size, head.body(),
+                                                            head.signature))
+    conn.execute("UPDATE meta SET value = ? WHERE key = 'audit_head'",
+                 (json.dumps(head.to_dict()),))
+    conn.execute("UPDATE meta SET value = ? WHERE key = 'audit_frontier'",
+                 (frontier.to_bytes().hex(),))
+    conn.close()
 
 
 def test_consistency_reports_truncation(vault_path: Path) -> None:

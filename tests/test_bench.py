@@ -14,7 +14,7 @@ def test_quick_bench_reports_every_target(capsys) -> None:
     assert main(["bench", "--quick", "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert set(report["targets"]) >= {"store_vs_raw", "read_vs_raw", "store_1gib_peak_mib",
-                                      "audit_single_vs_sqlite", "audit_batch_per_s",
+                                      "audit_single_vs_sqlite", "audit_batch_vs_sqlite",
                                       "audit_verify_vs_hashlib", "decisions_per_s",
                                       "ingest_vs_read_aes", "ingest_peak_mib"}
     for target in report["targets"].values():

@@ -564,9 +564,13 @@ def test_serialisation_round_trip(seed: int, n: int, more: int) -> None:
     assert restored == frontier
     assert restored.size == n and restored.root() == frontier.root()
     assert CompactRange.from_bytes(bytearray(data)) == frontier
-    # a restored frontier keeps growing exactly like the original
+    # a restored frontier keeps growing exactly like the original; a copy grows on its own
+    twin = frontier.copy()
     restored.extend(leaves, n, n + more)
     assert restored.root() == root_from_leaf_hashes(leaves)
+    assert twin == frontier and twin.size == n
+    twin.extend(leaves, n, n + more)
+    assert twin == restored and frontier.size == n
 
 
 @settings(max_examples=100, deadline=None)

@@ -114,7 +114,9 @@ class Vault:
         self.vault_id = keys.vault_id
         self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
         self._store = BlobStore(path, self.vault_id)
-        self._audit = audit.AuditLog(conn, self.vault_id)
+        self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing)
+        # rows this open found written without the key, now flagged (None: none found)
+        self.audit_flagged: dict[str, Any] | None = None
         self._closed = False
         self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
 
@@ -209,7 +211,7 @@ class Vault:
                 ring.load_secret(ring.wrap_secret(secret))
                 registry.store_policy(conn, policy, at)
                 ring.add_slot(conn, member, "steward", passphrase, at)
-                log = audit.AuditLog(conn, vault_id)
+                log = audit.AuditLog(conn, vault_id, signer=signing)
                 log.append({"actor": member, "action": "vault.init", "decision": "done",
                             "details": {"fingerprint": crypto.fingerprint(signing.public_key),
                                         "policy_version": policy.version,
@@ -243,6 +245,7 @@ class Vault:
                     f"member '{member}' ({unlocked.role}) holds no key to participant data; "
                     "use 'mindward audit show', 'audit verify' and the other key-free checks")
             vault = cls(path, conn, unlocked, member, lock_fd, clock)
+            vault._check_audit()
         except BaseException:
             if conn is not None:
                 conn.close()
@@ -250,6 +253,12 @@ class Vault:
             raise
         vault._recover(upgraded=unlocked.upgraded)
         return vault
+
+    def _check_audit(self) -> None:
+        """Never sign over rows written without the key: flag them first, for good, so the
+        vault keeps working (a withdrawal cannot wait) and `audit verify` keeps failing."""
+        with storage.transaction(self._conn):
+            self.audit_flagged = self._audit.flag_unsigned(self._stamp())
 
     def _recover(self, *, upgraded: bool = False) -> None:
         from vault.ingest import scrub_clear_metadata

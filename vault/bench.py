@@ -1,8 +1,9 @@
 """`mindward bench`: the vault's speed and memory against limits measured in the same run.
 
 Each figure is a ratio to a baseline this machine achieves in the same run
-(raw AES-256-GCM to an fsynced file, a bare durable SQLite transaction, bare
-SHA-256 over the same Merkle hashes), so the targets hold on any machine.
+(raw AES-256-GCM to an fsynced file, a bare durable SQLite transaction, the same
+rows inserted in one bare transaction, bare SHA-256 over the same Merkle hashes),
+so the targets hold on any machine.
 Nothing here is participant data: the bench writes random bytes to a
 throw-away vault in the system's temporary directory and deletes it.
 """
@@ -28,7 +29,7 @@ MIB = 1 << 20
 _PASSPHRASE = "benchmark passphrase, not a secret"  # noqa: S105 (throw-away vault)
 _TARGETS = {
     "store_vs_raw": (">=", 0.6), "read_vs_raw": (">=", 0.6), "store_1gib_peak_mib": ("<", 100.0),
-    "audit_single_vs_sqlite": (">=", 0.7), "audit_batch_per_s": (">=", 50_000.0),
+    "audit_single_vs_sqlite": (">=", 0.7), "audit_batch_vs_sqlite": (">=", 0.1),
     "audit_verify_vs_hashlib": ("<=", 5.0), "decisions_per_s": (">=", 100_000.0),
     "ingest_vs_read_aes": (">=", 0.5), "ingest_peak_mib": ("<", 200.0),
     "withdraw_1gib_vs_1mib": ("<=", 2.0), "receipt_verify_ms": ("<", 50.0),
@@ -142,7 +143,27 @@ def _bare_sqlite_rate(workdir: Path, n: int) -> float:
     return rate
 
 
+def _bare_batch_rate(workdir: Path, n: int) -> float:
+    """`n` rows like audit rows (seq, 160-byte entry, 32-byte leaf) in one durable transaction."""
+    conn = sqlite3.connect(workdir / "bare-batch.db", isolation_level=None)
+    conn.execute("PRAGMA journal_mode = WAL")
+    conn.execute("PRAGMA synchronous = FULL")
+    conn.execute("DROP TABLE IF EXISTS t")
+    conn.execute("CREATE TABLE t (seq INTEGER PRIMARY KEY, entry BLOB, leaf BLOB)")
+    row = b"x" * 160
+
+    def run() -> None:
+        conn.execute("BEGIN IMMEDIATE")
+        conn.executemany("INSERT INTO t VALUES (?, ?, ?)", ((i, row, row[:32]) for i in range(n)))
+        conn.execute("COMMIT")
+
+    rate = n / _timed(run)
+    conn.close()
+    return rate
+
+
 def _audit_single_rate(v: Vault, n: int) -> float:
+    """Durable single-entry transactions; each signs the current tree head (Ed25519)."""
     def run() -> None:
         for i in range(n):
             with storage.transaction(v._conn):
@@ -302,8 +323,11 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
             bare = _bare_sqlite_rate(workdir, singles)
             ours = _audit_single_rate(v, singles)
             figures.update(sqlite_single_per_s=bare, audit_single_per_s=ours,
-                           audit_single_vs_sqlite=ours / bare,
-                           audit_batch_per_s=_audit_batch_rate(v, batch))
+                           audit_single_vs_sqlite=ours / bare)
+            bare_batch = max(_bare_batch_rate(workdir, batch) for _ in range(2))
+            ours_batch = _audit_batch_rate(v, batch)
+            figures.update(sqlite_batch_per_s=bare_batch, audit_batch_per_s=ours_batch,
+                           audit_batch_vs_sqlite=ours_batch / bare_batch)
             figures.update(_decide_cohort(v, decide_n))
             figures.update(_verify_ratio(v, verify_n))
         finally:
@@ -345,7 +369,8 @@ def format_report(figures: dict[str, Any]) -> str:
     lines.append("  raw AES-GCM write {raw_write_mib_s:.0f} MiB/s, read {raw_read_mib_s:.0f} MiB/s; "
                  "vault store {store_mib_s:.0f} MiB/s, read {read_mib_s:.0f} MiB/s".format(**figures))
     lines.append("  durable appends: bare SQLite {sqlite_single_per_s:.0f}/s, audit "
-                 "{audit_single_per_s:.0f}/s; verify {audit_verify_entries} entries in "
+                 "{audit_single_per_s:.0f}/s; in one batch: bare SQLite {sqlite_batch_per_s:.0f}/s, "
+                 "audit {audit_batch_per_s:.0f}/s; verify {audit_verify_entries} entries in "
                  "{audit_verify_s:.2f} s (bare hashlib {hashlib_s:.2f} s)".format(**figures))
     lines.append("  ingest of a {ingest_edf_mib:.0f} MiB EDF: {ingest_s:.2f} s (edfio read + raw AES-GCM "
                  "{edfio_read_aes_s:.2f} s), peak memory growth {ingest_peak_mib:.0f} MiB; "

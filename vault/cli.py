@@ -63,7 +63,12 @@ def _passphrase(prompt: str = "Passphrase: ", *, env: str = "MINDWARD_PASSPHRASE
 
 
 def _open(path: Path, member: str) -> vault.Vault:
-    return vault.Vault.open(path, _passphrase(), member=member)
+    v = vault.Vault.open(path, _passphrase(), member=member)
+    if (flag := v.audit_flagged) is not None:
+        typer.echo(f"mindward: caution: audit entries {flag['first']}..{flag['last']} were written "
+                   f"without the vault's key; flagged at entry {flag['flagged_at']} "
+                   "('mindward audit verify' reports them from now on)", err=True)
+    return v
 
 
 @app.command()

@@ -138,6 +138,11 @@ class CompactRange:
         frontier._hashes = [body[i : i + HASH_SIZE] for i in range(0, len(body), HASH_SIZE)]
         return frontier
 
+    def copy(self) -> CompactRange:
+        twin = CompactRange()
+        twin._size, twin._hashes = self._size, list(self._hashes)
+        return twin
+
     def __eq__(self, other: object) -> bool:
         if not isinstance(other, CompactRange):
             return NotImplemented
