@@ -17,6 +17,7 @@ from vault import InvalidInput, PolicyRefusal, Vault
 PYEDFLIB_DATA = Path(pyedflib.__file__).parent / "tests" / "data"  # real files shipped in the wheel
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 
 
 def _form(name: str, code: str) -> bytes:
@@ -25,7 +26,8 @@ def _form(name: str, code: str) -> bytes:
 
 @pytest.fixture
 def lab(fresh_vault: Vault) -> tuple[Vault, dict[str, str]]:
-    pids = {name: fresh_vault.enrol(_form(f"consent-{name}.toml", name), now=NOW)["participant_id"]
+    pids = {name: fresh_vault.enrol(_form(f"consent-{name}.toml", name),
+                                    now=ENTERED if name == "expired" else NOW)["participant_id"]
             for name in ("all-granted", "no-recommender", "expired")}
     return fresh_vault, pids
 

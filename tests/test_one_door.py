@@ -16,6 +16,7 @@ from vault.policy import Grant
 
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 
 
 def form(name: str, code: str) -> bytes:
@@ -30,7 +31,8 @@ def _enrol_cohort(v: Vault, n_all: int, n_no_rec: int = 0, n_expired: int = 0) -
             ("expired", "consent-expired.toml", n_expired)]
     for group, name, n in plan:
         for i in range(n):
-            groups[group].append(v.enrol(form(name, f"{group}{i}"), now=NOW)["participant_id"])
+            when = ENTERED if group == "expired" else NOW
+            groups[group].append(v.enrol(form(name, f"{group}{i}"), now=when)["participant_id"])
     return groups
 
 

@@ -16,7 +16,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from vault import crypto, registry, scores, storage
+from vault import crypto, registry, scores, storage, strictjson
 from vault.consent import ConsentVersion
 from vault.edf import DeidOptions, deidentified_blocks, npy_deidentified_blocks
 from vault.edf_header import choose_date_offset, read_header, uniform_below
@@ -67,9 +67,11 @@ def start_date(path: Path, sidecar: Path | None) -> dt.date:
     """The recording's start date as its header (or sidecar) states it, before any shift."""
     if sidecar is not None:
         try:
-            doc = json.loads(Path(sidecar).read_text())
+            doc = strictjson.loads(Path(sidecar).read_bytes())
+            if not isinstance(doc, dict):
+                raise ValueError("not an object")
             return dt.date.fromisoformat(str(doc.get("start_date") or OFFSET_REFERENCE))
-        except (OSError, ValueError, UnicodeDecodeError) as exc:
+        except (OSError, ValueError) as exc:
             raise InvalidInput("sidecar: not readable JSON with a YYYY-MM-DD start_date") from exc
     try:
         with open(path, "rb") as fh:
