@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import errno
 import os
+import tempfile
 from pathlib import Path
+
+from vault.errors import NotFound, StorageFull, UsageError
 
 
 def fsync_path(path: Path) -> None:
@@ -21,8 +25,6 @@ def check_output_path(path: Path, option: str) -> Path:
     The folder must exist and be writable, and the path must not be a folder
     (NotFound / UsageError); then `write_output` can only fail for lack of space.
     """
-    from vault.errors import NotFound, UsageError
-
     path = Path(path)
     parent = path.parent
     if path.is_dir():
@@ -39,11 +41,6 @@ def check_output_path(path: Path, option: str) -> Path:
 def write_output(path: Path, data: bytes, option: str) -> None:
     """Write `data` to `path` atomically (temp file in the same folder, fsync, rename,
     fsync the folder), mode 0600 whatever the umask. Checks `path` first."""
-    import errno
-    import tempfile
-
-    from vault.errors import StorageFull, UsageError
-
     path = check_output_path(path, option)
     try:
         fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")

@@ -295,10 +295,13 @@ UNFLUSHED = ("erasure recorded (receipt stored) but not yet flushed from the fil
 
 
 def _flush_note(done: dict[str, Any]) -> str:
+    """What a repeated `process` says about an earlier erasure's flush."""
     if done.get("finished_earlier_erasure"):
         return "; an earlier erasure is now flushed from the file"
-    return "" if done["flushed"] else "; an earlier erasure is still not flushed from the " \
-        "file: close other programs holding the database and run again"
+    if not done["erasure_unflushed"]:
+        return ""
+    return ("; an earlier erasure is still not flushed from the file: close other programs "
+            "holding the database and run again")
 
 
 def _blob_rows(v: Vault, pid: str) -> list[tuple[str, str, int]]:
@@ -628,14 +631,17 @@ def finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite
     flushed = not busy and truncated and not any(storage.file_holds(v.path, k) for k in keys)
     noted = v._conn.execute("SELECT 1 FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,)).fetchone()
     out: dict[str, Any] = {"wal_truncated": truncated, "flushed": flushed}
-    if not flushed and not noted and (keys or blob_ids):  # only after an erasure of ours
+    if not flushed and not noted and keys:  # a key destroyed by this call is still in the file
         with storage.transaction(v._conn):
             storage.set_meta(v._conn, _UNFLUSHED_NOTE, "1")
+        noted = True
     elif flushed and noted:
         with storage.transaction(v._conn):
             v._conn.execute("DELETE FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,))
         storage.checkpoint(v._conn)
         out["finished_earlier_erasure"] = True
+        noted = False
+    out["erasure_unflushed"] = bool(noted)
     if not flushed:
         out["warning"] = UNFLUSHED
     if reclaim_space:
