@@ -111,7 +111,7 @@ def _private_files(path: Path) -> None:
         try:
             if (path.parent / name).stat().st_mode & 0o077:
                 os.chmod(path.parent / name, 0o600)
-        except FileNotFoundError:
+        except (FileNotFoundError, PermissionError):  # gone, or another user's file: leave it
             continue
 
 
