@@ -524,8 +524,8 @@ ARGV_COMMANDS = [["consent", "show"], ["withdraw", "process"], ["withdraw", "rec
 
 @fast(15)
 @given(command=st.sampled_from(ARGV_COMMANDS),
-       value=st.one_of(st.text(max_size=40), st.just("x" * 100_000), st.just("-1"),
-                       st.just("w-" + "0" * 16)))
+       value=st.one_of(st.text(max_size=40), st.sampled_from(
+           ["x" * 100_000, "-1", "w-" + "0" * 16, "a\nb", "\x1b[31m", "b-\r\n"])))
 def test_cli_arguments(world, command: list[str], value: str) -> None:
     if "\x00" in value:
         value = value.replace("\x00", "")  # the OS cannot pass a NUL in argv

@@ -322,6 +322,15 @@ def test_bad_rows_and_sidecars_are_malformed_input_not_bugs(env: Path) -> None:
     assert status == 8 and "sidecar" in err and err.count("\n") == 1
 
 
+def test_an_id_with_a_newline_or_a_huge_id_still_gives_one_line(env: Path) -> None:
+    assert cli("init")[0] == 0
+    for value in ("a\nb", "\x1b[2J", "x" * 100_000):  # found by tests/test_fuzz_inputs.py
+        status, out, err = cli("consent", "show", value)
+        assert status == 6 and err.count("\n") == 1 and len(err) < 600 and "\x1b" not in err
+        status, out, _ = cli("consent", "show", value, "--json")
+        assert json.loads(out)["exit_code"] == 6
+
+
 # --------------------------------------------------------------------------- blob layout
 
 

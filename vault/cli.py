@@ -726,10 +726,17 @@ def _parser_error(exc: Any, args: list[str]) -> int:
     message = " ".join(str(exc.format_message()).split())
     ctx = getattr(exc, "ctx", None)
     where = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
-    return _error(message[:300] + where, int(exc.exit_code), "--json" in args)
+    return _error(_one_line(message, 300) + where, int(exc.exit_code), "--json" in args)
+
+
+def _one_line(message: str, limit: int = 500) -> str:
+    """Control characters (a newline in an id someone typed) escaped, long values cut."""
+    text = "".join(c if c.isprintable() else repr(c)[1:-1] for c in message)
+    return text if len(text) <= limit else text[:limit] + "..."
 
 
 def _error(message: str, code: int, as_json: bool) -> int:
+    message = _one_line(message)
     if as_json:
         typer.echo(json.dumps({"error": message, "exit_code": code}))
     typer.echo(f"mindward: error: {message}", err=True)
