@@ -48,6 +48,7 @@ FORMS = {
     "TL-004": "consent-expired.toml",
 }
 PARTNER = "Westbrook Institute of Food Design"
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 # Identity values planted in forms: no error message may ever contain them.
 SECRETS = {"code": "TL-987", "name": "Quorvina Secretname",
            "email": "quorvina.secret@mail.northfield.example", "phone": "+44 7700 900987"}
@@ -104,7 +105,7 @@ EXPECTED = {
 
 def test_example_forms_decide_as_documented() -> None:
     policy = load_default_policy()
-    consents = {code: enrol_example(policy, code, i)[1] for i, code in enumerate(FORMS)}
+    consents = {code: enrol_example(policy, code, i, ENTERED)[1] for i, code in enumerate(FORMS)}
     by_pid = {v.participant_id: v for v in consents.values()}
     for (purpose, category), expected in EXPECTED.items():
         d = decide(policy, request(purpose, {category}), by_pid, now=NOW)

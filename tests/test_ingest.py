@@ -19,6 +19,7 @@ from vault import InvalidInput, PolicyRefusal, UsageError, Vault
 PYEDFLIB_DATA = Path(pyedflib.__file__).parent / "tests" / "data"  # real files shipped in the wheel
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 
 
 def _form(name: str, code: str) -> bytes:
@@ -27,7 +28,8 @@ def _form(name: str, code: str) -> bytes:
 
 @pytest.fixture
 def lab(fresh_vault: Vault) -> tuple[Vault, dict[str, str]]:
-    pids = {name: at(fresh_vault, NOW).enrol(_form(f"consent-{name}.toml", name))["participant_id"]
+    pids = {name: at(fresh_vault, ENTERED if name == "expired" else NOW).enrol(
+                _form(f"consent-{name}.toml", name))["participant_id"]
             for name in ("all-granted", "no-recommender", "expired")}
     return fresh_vault, pids
 

@@ -17,6 +17,7 @@ from vault.policy import Admission, Grant
 
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 
 
 def form(name: str, code: str) -> bytes:
@@ -31,7 +32,8 @@ def _enrol_cohort(v: Vault, n_all: int, n_no_rec: int = 0, n_expired: int = 0) -
             ("expired", "consent-expired.toml", n_expired)]
     for group, name, n in plan:
         for i in range(n):
-            groups[group].append(at(v, NOW).enrol(form(name, f"{group}{i}"))["participant_id"])
+            when = ENTERED if group == "expired" else NOW
+            groups[group].append(at(v, when).enrol(form(name, f"{group}{i}"))["participant_id"])
     return groups
 
 

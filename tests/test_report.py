@@ -12,12 +12,14 @@ from vault.report import to_markdown
 
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 
 
 def test_record_counts_consent_and_names_nobody(fresh_vault: Vault) -> None:
     pids = []
     for name in ("all-granted", "no-recommender", "expired", "no-external"):
-        pids.append(at(fresh_vault, NOW).enrol((EXAMPLES / f"consent-{name}.toml").read_bytes())
+        when = ENTERED if name == "expired" else NOW
+        pids.append(at(fresh_vault, when).enrol((EXAMPLES / f"consent-{name}.toml").read_bytes())
                     ["participant_id"])
     record = at(fresh_vault, NOW).report()
     purposes = {p["purpose"]: p for p in record["purposes"]}

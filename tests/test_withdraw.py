@@ -58,6 +58,7 @@ EXAMPLES = ROOT / "docs" / "examples"
 PYEDFLIB_DATA = Path(pyedflib.__file__).parent / "tests" / "data"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
 RECEIVED = dt.date(2026, 6, 10)
+ENTERED = dt.datetime(2026, 5, 1, 9, 0, tzinfo=dt.UTC)  # before the expired form lapsed: it can be entered
 RECIPIENT = "Westbrook Institute of Food Design"  # the invented partner of the default policy
 # The withdrawing participant (invented, like every person in the examples).
 T_NAME, T_MAIL, T_PHONE, T_CODE = (b"Odalys Fernhollow", b"odalys.fernhollow@mail.northfield.example",
@@ -107,7 +108,7 @@ def _build_lab(path: Path) -> dict[str, Any]:
                                         b"+44 7700 9001%02d" % i)))["participant_id"]
                   for i in range(20)]
         no_rec = at(v, NOW).enrol(_form("consent-no-recommender.toml", "NR"))["participant_id"]
-        expired = at(v, NOW).enrol(_form("consent-expired.toml", "EX"))["participant_id"]
+        expired = at(v, ENTERED).enrol(_form("consent-expired.toml", "EX"))["participant_id"]
         at(v, NOW).ingest_eeg(t, PYEDFLIB_DATA / "test_subsecond.edf")
         at(v, NOW).put_blob(t, "eeg-raw", [MARKER * 300, os.urandom(20000), MARKER])
         for pid in [*others, no_rec, expired]:
@@ -308,7 +309,7 @@ def test_only_stewards_withdraw(lab) -> None:
 
 
 def test_a_participant_without_consent_or_data_can_be_erased(fresh_vault: Vault) -> None:
-    pid = at(fresh_vault, NOW).new_participant()
+    pid = at(fresh_vault, ENTERED).new_participant()  # a request cannot predate the enrolment
     result = _withdraw(fresh_vault, pid)
     assert result["blobs_deleted"] == 0 and result["stage"] == "nothing-stored"
     assert result["receipt"]["body"]["consent"] is None
@@ -494,11 +495,12 @@ def test_a_wal_that_cannot_be_emptied_is_reported_not_hidden(lab) -> None:
     try:
         reader.execute("BEGIN")
         reader.execute("SELECT COUNT(*) FROM participants").fetchone()  # holds a snapshot
-        result = _withdraw(v, facts["t"])
-        assert result["wal_truncated"] is False and "warning" in result
+        with pytest.raises(Conflict, match="not yet flushed from the file"):  # no longer exit 0
+            _withdraw(v, facts["t"])
     finally:
         reader.close()
-    assert withdraw.finish_interrupted(v)["wal_truncated"] is True
+    done = withdraw.finish_interrupted(v)
+    assert done["wal_truncated"] is True and done["flushed"] and done["finished_earlier_erasure"]
     assert (v.path / "vault.db-wal").stat().st_size == 0
 
 

@@ -35,7 +35,9 @@ from vault.errors import (
     UsageError,
     VaultError,
 )
+from vault.fsutil import check_output_path, write_output
 from vault.policyset import describe_policy, load_policy_dir
+from vault.strictjson import loads as load_json
 
 __all__ = [
     "EXIT_CODES",
@@ -50,10 +52,12 @@ __all__ = [
     "Vault",
     "VaultError",
     "check_consistency",
+    "check_output_path",
     "describe",
     "describe_policy",
     "format_budget",
     "format_decision",
+    "load_json",
     "load_policy_dir",
     "parse_public_key",
     "prove",
@@ -67,4 +71,5 @@ __all__ = [
     "verify_export",
     "verify_proof",
     "verify_receipt_file",
+    "write_output",
 ]

@@ -16,7 +16,7 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Protocol
 
-from vault import audit, crypto, notes, registry, storage
+from vault import audit, crypto, notes, registry, storage, strictjson
 from vault.consent import parse_consent_form, record_consent, split_identity
 from vault.decide import CohortDecision, Request
 from vault.errors import (
@@ -870,9 +870,9 @@ def verify_audit(path: Path, *, public_key: bytes | None = None,
 
 def read_tree_head(text: str) -> audit.TreeHead:
     try:
-        return audit.TreeHead.from_dict(json.loads(text))
+        return audit.TreeHead.from_dict(strictjson.loads(text))
     except (ValueError, TypeError) as exc:
-        raise IntegrityError("the tree head file is not valid JSON") from exc
+        raise IntegrityError("the tree head file is not valid strict JSON") from exc
 
 
 def prove(path: Path, seq: int) -> dict[str, Any]:

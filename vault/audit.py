@@ -16,7 +16,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from vault import crypto, merkle
+from vault import crypto, merkle, strictjson
 from vault.errors import IntegrityError, NotFound, UsageError
 from vault.storage import get_meta
 
@@ -40,7 +40,7 @@ def encode_entry(seq: int, fields: Mapping[str, Any]) -> bytes:
 
 
 def decode_entry(raw: bytes) -> dict[str, Any]:
-    value = json.loads(raw)
+    value = strictjson.loads(raw)  # a duplicated key in an entry is refused (ValueError)
     if not isinstance(value, dict):
         raise IntegrityError("an audit entry is not a JSON object")
     return value

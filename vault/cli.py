@@ -167,7 +167,7 @@ def audit_check_proof(
 ) -> None:
     """Check an inclusion proof offline with the vault's public key alone."""
     try:
-        bundle = json.loads(_read_text(proof))
+        bundle = vault.load_json(_read_text(proof))
     except ValueError as exc:
         raise vault.InvalidInput(f"{proof} is not a JSON proof") from exc
     ok = isinstance(bundle, dict) and vault.verify_proof(bundle, vault.parse_public_key(key))
@@ -497,7 +497,7 @@ def export_check(
 ) -> None:
     """Does an export you hold now contain withdrawn or expired participants? (counts only)"""
     try:
-        document = json.loads(_read_text(manifest_file))
+        document = vault.load_json(_read_text(manifest_file))
     except ValueError as exc:
         raise vault.InvalidInput(f"{manifest_file} is not JSON") from exc
     with _open(path, member) as v:
@@ -558,18 +558,31 @@ def withdraw_process(
     receipt: Annotated[Path | None, typer.Option("--receipt", help="Write the signed receipt here.")] = None,
 ) -> None:
     """Carry out a withdrawal: cryptographic erase (full) or narrowing (purpose), with a receipt."""
+    if receipt is not None:  # refuse a path that cannot be written before erasing anything
+        vault.check_output_path(receipt, "--receipt")
     with _open(path, member) as v:
         result = v.withdraw_process(target)
     if receipt is not None:
-        receipt.write_text(json.dumps(result["receipt"], indent=2, sort_keys=True) + "\n")
+        try:
+            vault.write_output(receipt, _receipt_bytes(result["receipt"]), "--receipt")
+        except vault.VaultError as exc:
+            raise type(exc)(f"{exc.message}; the withdrawal WAS processed: get its receipt with "
+                            f"'mindward withdraw receipt {result['request_id']} --out FILE'"
+                            ) from exc
     _emit(as_json, result, lambda: _withdrawal_text(result, receipt))
+
+
+def _kept_text(kept: list[dict[str, Any]]) -> str:
+    """The categories a purpose withdrawal kept, each with the purposes that still grant it."""
+    return "; ".join(f"{k['category']} ({k['blobs']} blobs, still granted for "
+                     f"{', '.join(k['still_granted_for'])})" for k in kept) or "nothing"
 
 
 def _withdrawal_text(result: dict[str, Any], receipt: Path | None) -> str:
     lines = [f"{result['scope']} withdrawal of {result['participant_id']} processed at "
              f"{result['processed_at']} ({'on time' if result['on_time'] else 'LATE'})",
              f"  data key destroyed: {'yes' if result['data_key_destroyed'] else 'no'}; "
-             f"blobs deleted: {result['blobs_deleted']}; kept: {', '.join(result['kept']) or 'nothing'}",
+             f"blobs deleted: {result['blobs_deleted']}; kept: {_kept_text(result['kept'])}",
              f"  stage the data had reached: {result['stage']}"]
     if result["notify"]:
         lines.append("  Notify (GDPR Art. 19): " + ", ".join(result["recipients_to_notify"] or
@@ -591,12 +604,17 @@ def withdraw_receipt(
     out: Annotated[Path | None, typer.Option("--out", help="Write the receipt here.")] = None,
 ) -> None:
     """The signed deletion receipt of a processed withdrawal (JSON)."""
+    if out is not None:
+        vault.check_output_path(out, "--out")
     with _open(path, member) as v:
         doc = v.withdraw_receipt(target)
-    text = json.dumps(doc, indent=2, sort_keys=True) + "\n"
     if out is not None:
-        out.write_text(text)
-    typer.echo(text if out is None else f"wrote {out}")
+        vault.write_output(out, _receipt_bytes(doc), "--out")
+    typer.echo(_receipt_bytes(doc).decode("ascii") if out is None else f"wrote {out}")
+
+
+def _receipt_bytes(document: dict[str, Any]) -> bytes:
+    return (json.dumps(document, indent=2, sort_keys=True) + "\n").encode("ascii")
 
 
 @receipt_app.command("verify")
@@ -630,11 +648,13 @@ def report(
     out: Annotated[Path | None, typer.Option("--out", help="Write Markdown here.")] = None,
 ) -> None:
     """A record of processing (GDPR Art. 30 style) from the vault's state; counts only."""
+    if out is not None:
+        vault.check_output_path(out, "--out")
     with _open(path, member) as v:
         record = v.report()
     text = vault.report_markdown(record)
     if out is not None:
-        out.write_text(text, encoding="utf-8")
+        vault.write_output(out, text.encode("utf-8"), "--out")
     _emit(as_json, record, text if out is None else f"wrote {out}")
 
 
@@ -705,8 +725,7 @@ def main(argv: list[str] | None = None) -> int:
         return _error("aborted", 130, "--json" in args)
     except Exception as exc:
         if callable(getattr(exc, "show", None)) and isinstance(getattr(exc, "exit_code", None), int):
-            exc.show()  # a usage error found by the parser: its message and exit code 2
-            return int(exc.exit_code)
+            return _parser_error(exc, args)  # a usage error found by the parser: exit code 2
         if os.environ.get("MINDWARD_DEBUG"):  # a bug: one line, never with data values
             raise
         return _error(f"internal error ({type(exc).__name__}); rerun with MINDWARD_DEBUG=1 "
@@ -714,7 +733,25 @@ def main(argv: list[str] | None = None) -> int:
     return result if isinstance(result, int) else 0
 
 
+def _parser_error(exc: Any, args: list[str]) -> int:
+    """The parser's own complaint as one line (a bare group name still shows its help)."""
+    if type(exc).__name__ == "NoArgsIsHelpError" or not callable(getattr(exc, "format_message", None)):
+        exc.show()
+        return int(exc.exit_code)
+    message = " ".join(str(exc.format_message()).split())
+    ctx = getattr(exc, "ctx", None)
+    where = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
+    return _error(_one_line(message, 300) + where, int(exc.exit_code), "--json" in args)
+
+
+def _one_line(message: str, limit: int = 500) -> str:
+    """Control characters (a newline in an id someone typed) escaped, long values cut."""
+    text = "".join(c if c.isprintable() else repr(c)[1:-1] for c in message)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
 def _error(message: str, code: int, as_json: bool) -> int:
+    message = _one_line(message)
     if as_json:
         typer.echo(json.dumps({"error": message, "exit_code": code}))
     typer.echo(f"mindward: error: {message}", err=True)

@@ -54,6 +54,10 @@ from vault.policyset import (
 RECORD_SCHEMA = 1
 DIGEST_DOMAIN = b"mindward/v1/consent-version\n"
 FORM_SOURCE = "consent form"
+# Plausible dates (docs/examples/README.md): nothing was signed before this tool's era,
+# and no consent is meant to last longer than a lifetime.
+EARLIEST_SIGNED = dt.date(2000, 1, 1)
+LONGEST_TERM = dt.timedelta(days=36525)  # 100 years after today
 
 
 class ConsentStatus(StrEnum):
@@ -184,7 +188,24 @@ def parse_consent_form(raw: bytes, policy: PolicySet, *, now: dt.datetime,
     except ValidationError as exc:
         raise invalid_from_validation(source, exc) from None
     check_terms(form, policy, now=now, source=source)
+    check_plausible(form, now=now, source=source)
     return form
+
+
+def check_plausible(terms: ConsentTerms, *, now: dt.datetime, source: str = FORM_SOURCE) -> None:
+    """Refuse a form's dates no real form has (docs/examples/README.md): signed before
+    2000, running more than 100 years, or ended already when it is entered."""
+    utc = _aware(now, "now").astimezone(dt.UTC).date()
+    latest = utc + LONGEST_TERM
+    if terms.signed < EARLIEST_SIGNED:
+        raise InvalidInput(f"{source}: signed: lies before {EARLIEST_SIGNED.isoformat()}: "
+                           "check the year")
+    if terms.expires <= utc:
+        raise InvalidInput(f"{source}: expires: this consent has ended already (it ends at the "
+                           "start of that day, UTC); a form can only be entered while it runs")
+    for name, day in (("expires", terms.expires), ("retention_end", terms.retention_end)):
+        if day is not None and day > latest:
+            raise InvalidInput(f"{source}: {name}: lies more than 100 years ahead: check the year")
 
 
 _Fail = Callable[[str, str], InvalidInput]

@@ -17,7 +17,7 @@ from typing import Any
 
 from vault import crypto
 from vault.api import Vault, prove, verify_audit, verify_proof, verify_receipt_file
-from vault.errors import Conflict, PolicyRefusal, VaultError
+from vault.errors import Conflict, InvalidInput, PolicyRefusal, VaultError
 
 DEMO_PASSPHRASE = "tasting lab demo passphrase (demo only)"  # noqa: S105 (invented data)
 ANALYST_PASSPHRASE = "tasting lab analyst passphrase (demo only)"  # noqa: S105 (invented data)
@@ -60,11 +60,17 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         say("3. Enrolment: each filled consent form is checked against the policy set; identity "
             "and contact details go only into a record encrypted under the participant's own key.")
         forms = write_forms(files.root, v.policy)
-        pids = {code: v.enrol(forms[code].read_bytes())["participant_id"] for code in files.eeg}
+        pids, ended = {}, 0
+        for code in files.eeg:
+            try:
+                pids[code] = v.enrol(forms[code].read_bytes())["participant_id"]
+            except InvalidInput:
+                ended += 1  # a form whose consent had ended before enrolment: not recorded
         check = v.access_check("recommender-training", ["scores-derived"])
         refused = ", ".join(f"{n} {r}" for r, n in sorted(check.counts.items()))
-        say(f"   {len(pids)} enrolled; for recommender training {len(check.included)} would be "
-            f"included, refused: {refused}")
+        say(f"   {len(pids)} enrolled ({ended} forms refused: consent ended already); for "
+            f"recommender training {len(check.included)} would be included, refused: {refused}")
+        summary["forms_refused"] = ended
         summary["recommender_cohort"] = len(check.included)
         summary["recommender_refused"] = dict(check.counts)
         say("4. Ingest: headers and free-text annotations are scrubbed, dates shifted, "
@@ -72,6 +78,9 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         tick = progress("ingest", len(files.eeg)) if progress else (lambda: None)
         relabelled, refused_ingest, kept = 0, 0, {}
         for code, path in files.eeg.items():
+            if code not in pids:
+                tick()
+                continue
             try:
                 result = v.ingest_eeg(pids[code], path, keep_header_identity=True)
             except PolicyRefusal:

@@ -20,7 +20,6 @@ and law to decide.
 from __future__ import annotations
 
 import datetime as dt
-import json
 import math
 import os
 import re
@@ -33,6 +32,7 @@ from typing import Any, BinaryIO, NamedTuple
 
 import numpy as np
 
+from vault import strictjson
 from vault.channels import is_known_label, is_known_unit, neutral_label
 from vault.edf_header import (
     BLOCK,
@@ -364,9 +364,9 @@ def _sidecar(path: Path) -> dict[str, Any]:
     with _open(path, "sidecar") as f:
         data = f.read((1 << 20) + 1)
     try:
-        doc = json.loads(data)
-    except ValueError:  # includes UnicodeDecodeError
-        raise InvalidInput("sidecar is not valid JSON (or larger than 1 MiB)") from None
+        doc = strictjson.loads(data)
+    except ValueError:  # includes UnicodeDecodeError and duplicate keys
+        raise InvalidInput("sidecar is not valid strict JSON (or larger than 1 MiB)") from None
     if not isinstance(doc, dict):
         raise InvalidInput("sidecar must be a JSON object")
     if not set(doc) <= _SIDECAR_KEYS:

@@ -15,7 +15,7 @@ from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from vault import crypto, registry, scores, storage
+from vault import crypto, registry, scores, storage, strictjson
 from vault.bids import check_recording
 from vault.consent import ConsentVersion
 from vault.edf import DeidOptions, deidentified_blocks, npy_deidentified_blocks
@@ -64,9 +64,11 @@ def start_date(path: Path, sidecar: Path | None) -> dt.date:
     OFFSET_REFERENCE when it states none (EDF+ "Startdate X", a sidecar without one)."""
     if sidecar is not None:
         try:
-            doc = json.loads(Path(sidecar).read_text())
+            doc = strictjson.loads(Path(sidecar).read_bytes())
+            if not isinstance(doc, dict):
+                raise ValueError("not an object")
             return dt.date.fromisoformat(str(doc.get("start_date") or OFFSET_REFERENCE))
-        except (OSError, ValueError, UnicodeDecodeError) as exc:
+        except (OSError, ValueError) as exc:
             raise InvalidInput("sidecar: not readable JSON with a YYYY-MM-DD start_date") from exc
     try:
         with open(path, "rb") as fh:

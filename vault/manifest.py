@@ -11,7 +11,7 @@ import json
 from collections.abc import Mapping
 from typing import Any
 
-from vault import crypto
+from vault import crypto, strictjson
 from vault.audit import canonical_json
 from vault.errors import IntegrityError, InvalidInput
 
@@ -43,7 +43,9 @@ def digest(document: Mapping[str, Any]) -> str:
 
 def load(text: bytes | str, what: str) -> dict[str, Any]:
     try:
-        doc = json.loads(text)
+        doc = strictjson.loads(text)
+    except strictjson.JsonRejected as exc:
+        raise InvalidInput(f"{what} is not strict JSON: {exc}") from exc
     except ValueError as exc:
         raise InvalidInput(f"{what} is not JSON") from exc
     if not isinstance(doc, dict) or not isinstance(doc.get("body"), dict):

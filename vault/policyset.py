@@ -211,6 +211,7 @@ def parse_toml(source: str, raw: bytes) -> dict[str, Any]:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise InvalidInput(f"{source}: not UTF-8 text (byte {exc.start})") from None
+    text = text.removeprefix("\ufeff")  # a byte-order mark some editors write; not TOML
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

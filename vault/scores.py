@@ -16,6 +16,7 @@ import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -26,6 +27,10 @@ COLUMNS = ("participant_id", "item_id", "value")
 MAX_BYTES = 256 << 20
 _PID = re.compile(r"[0-9a-f]{32}")
 _ITEM = re.compile(ITEM_ID_PATTERN)
+# Plain ASCII decimal notation only: float() would also take "١٢", "1_0", "inf", " 1 ".
+_DECIMAL = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?", re.ASCII)
+_INTEGER = re.compile(r"[+-]?[0-9]+", re.ASCII)
+MAX_CELL = 4096  # characters in one cell; the csv module's own limit (128 Ki) raises otherwise
 
 
 @dataclass(frozen=True)
@@ -49,6 +54,14 @@ def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
     except UnicodeDecodeError:
         raise InvalidInput("scores file: not UTF-8 text") from None
     reader = csv.reader(io.StringIO(text, newline=""))
+    try:
+        return _rows(reader, category, spec)
+    except csv.Error:  # e.g. a cell over the csv module's field limit (128 Ki characters)
+        raise InvalidInput(f"scores file: row {reader.line_num}: not a well-formed CSV row "
+                           "(a cell too long, or broken quoting)") from None
+
+
+def _rows(reader: Any, category: str, spec: Category) -> list[ScoreRow]:
     header = next(reader, None)
     if header is None or sorted(h.strip() for h in header) != sorted(COLUMNS):
         raise InvalidInput("scores file: row 1: the header must name exactly "
@@ -63,6 +76,9 @@ def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
             continue
         if len(cells) != len(COLUMNS):
             raise InvalidInput(f"scores file: row {number}: expected 3 cells, found {len(cells)}")
+        if any(len(c) > MAX_CELL for c in cells):
+            raise InvalidInput(f"scores file: row {number}: a cell is longer than {MAX_CELL} "
+                               "characters")
         pid, item, text_value = (cells[index[c]].strip() for c in COLUMNS)
         if not _PID.fullmatch(pid):
             raise InvalidInput(f"scores file: row {number}: participant_id is not a vault "
@@ -87,13 +103,15 @@ def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
 
 
 def _number(text: str, row: int, category: str, spec: Category) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise InvalidInput(f"scores file: row {row}: value is not a number") from None
+    if text.lower().lstrip("+-") in ("nan", "inf", "infinity"):
+        raise InvalidInput(f"scores file: row {row}: value is not a finite number")
+    if not _DECIMAL.fullmatch(text):
+        raise InvalidInput(f"scores file: row {row}: value is not a number in ASCII decimal "
+                           "notation")
+    value = float(text)
     if not math.isfinite(value):
         raise InvalidInput(f"scores file: row {row}: value is not a finite number")
-    if spec.value_type == "integer" and (value != int(value) or not re.fullmatch(r"[+-]?\d+", text)):
+    if spec.value_type == "integer" and (value != int(value) or not _INTEGER.fullmatch(text)):
         raise InvalidInput(f"scores file: row {row}: {category} takes whole numbers")
     return value
 

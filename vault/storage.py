@@ -9,9 +9,11 @@ free pages back to the file system).
 
 from __future__ import annotations
 
+import mmap
+import os
 import sqlite3
 from collections.abc import Iterable, Iterator, Sequence
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from pathlib import Path
 from typing import Any
 
@@ -115,12 +117,29 @@ BEGIN SELECT RAISE(ABORT, '{table} is append-only'); END;
 """
 
 
+def _private_files(path: Path) -> None:
+    """Make the database file 0600 before SQLite opens it, whatever the umask.
+
+    SQLite gives the -wal and -shm files it creates the database file's mode, so
+    they are 0600 too. Files of an older vault that were looser are tightened.
+    """
+    with suppress(FileExistsError):
+        os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
+    for name in (DB_NAME, DB_NAME + "-wal", DB_NAME + "-shm"):
+        try:
+            if (path.parent / name).stat().st_mode & 0o077:
+                os.chmod(path.parent / name, 0o600)
+        except (FileNotFoundError, PermissionError):  # gone, or another user's file: leave it
+            continue
+
+
 def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
     """Open the vault database with the pragmas every connection must have."""
     path = directory / DB_NAME
     if readonly:
         conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True, isolation_level=None)
     else:
+        _private_files(path)
         conn = sqlite3.connect(path, isolation_level=None)
     try:
         conn.execute("PRAGMA secure_delete = ON")
@@ -231,6 +250,22 @@ def checkpoint(conn: sqlite3.Connection) -> tuple[int, int, int]:
     """
     row = conn.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()
     return int(row[0]), int(row[1]), int(row[2])
+
+
+def file_holds(directory: Path, needle: bytes) -> bool:
+    """True while the database file or its WAL still holds `needle` byte for byte
+    (a destroyed wrapped key, say: erasure checks that it left the file)."""
+    for name in (DB_NAME, DB_NAME + "-wal"):
+        try:
+            with open(directory / name, "rb") as fh:
+                if os.fstat(fh.fileno()).st_size == 0:
+                    continue
+                with mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as view:
+                    if view.find(needle) >= 0:
+                        return True
+        except FileNotFoundError:
+            continue
+    return False
 
 
 def incremental_vacuum(conn: sqlite3.Connection) -> None:

@@ -50,6 +50,11 @@ def blob_context(vault_id: str, pid: str, blob_id: str) -> bytes:
 
 
 
+def shard(blob_id: str) -> str:
+    """The sub-folder of a blob: two characters of its random part ("b-" is the same for all)."""
+    return blob_id[2:4]
+
+
 class BlobStore:
     def __init__(self, root: Path, vault_id: str) -> None:
         self.root = root
@@ -63,7 +68,7 @@ class BlobStore:
             d.mkdir(mode=0o700, exist_ok=True)
 
     def path(self, blob_id: str) -> Path:
-        return self.blob_dir / blob_id[:2] / (blob_id + _SUFFIX)
+        return self.blob_dir / shard(blob_id) / (blob_id + _SUFFIX)
 
     # -- writing --------------------------------------------------------------------------------
 
@@ -111,22 +116,38 @@ class BlobStore:
             fsync_path(path.parent)
 
     def recover(self, known_ids: set[str]) -> int:
-        """Remove temporary files and blobs with no committed row; returns how many."""
+        """Remove temporary files and blobs with no committed row; returns how many.
+
+        A blob found in another sub-folder than `shard` names (vaults written before
+        blobs were sharded by their random part all used "b-/") is moved into place.
+        """
         removed = 0
         for tmp in self.tmp_dir.glob("*.part"):
             tmp.unlink(missing_ok=True)
             removed += 1
+        moved: set[Path] = set()
         for path in self.blob_dir.glob("*/*" + _SUFFIX):
-            if path.name[: -len(_SUFFIX)] not in known_ids:
+            blob_id = path.name[: -len(_SUFFIX)]
+            if blob_id not in known_ids:
                 path.unlink(missing_ok=True)
                 removed += 1
+            elif path.parent.name != shard(blob_id):
+                target = self.path(blob_id)
+                target.parent.mkdir(mode=0o700, exist_ok=True)
+                os.replace(path, target)
+                moved |= {path.parent, target.parent}
+        for directory in sorted(moved):
+            fsync_path(directory)
+            if directory.name.endswith("-") and not any(directory.iterdir()):
+                directory.rmdir()  # the old shared folder, now empty
+                fsync_path(self.blob_dir)
         return removed
 
     # -- reading (the one door's back room: callers must hold a grant) --------------------------
 
     def _open(self, blob_id: str) -> int:
         # a plain string path and a raw descriptor: per-read costs show when an export reads 10^4 blobs
-        path = os.path.join(self._blob_dir_str, blob_id[:2], blob_id + _SUFFIX)
+        path = os.path.join(self._blob_dir_str, blob_id[2:4], blob_id + _SUFFIX)  # shard()
         try:
             return os.open(path, os.O_RDONLY)
         except FileNotFoundError as exc:

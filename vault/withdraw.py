@@ -62,6 +62,7 @@ from __future__ import annotations
 import datetime as dt
 import os
 import re
+from collections.abc import Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -85,6 +86,7 @@ _PURPOSE_ID = re.compile(r"[a-z0-9][a-z0-9-]{0,39}(/[a-z0-9][a-z0-9-]{0,39})*")
 _IDENTITY = "identity-contact"
 _CHUNK = 500
 _ZEROS = bytes(1 << 20)
+_UNFLUSHED_NOTE = "erasure_unflushed"  # meta key: an erasure's checkpoint could not finish
 TRASH_SUFFIX = ".erased.part"  # in tmp/: BlobStore.recover removes "*.part" at every open
 
 BACKUP_NOTE = (
@@ -163,7 +165,16 @@ def _named_purposes(policy: PolicySet, consent: ConsentVersion, purpose: str) ->
     raise InvalidInput(f"--scope: the consent does not answer purpose {purpose}")
 
 
-def request_withdrawal(v: Vault, pid: str, *, received: dt.date, scope: str = SCOPE_FULL) -> dict[str, Any]:
+def _earliest_request(v: Vault, pid: str, history: list[ConsentVersion]) -> dt.date:
+    """The first day a withdrawal can have been received: the first consent's signature."""
+    if history:
+        return min(version.signed for version in history)
+    row = v._conn.execute("SELECT created_at FROM participants WHERE pid = ?", (pid,)).fetchone()
+    return dt.datetime.fromisoformat(row[0]).astimezone(dt.UTC).date()
+
+
+def request_withdrawal(v: Vault, pid: str, *, received: dt.date,
+                       scope: str = SCOPE_FULL) -> dict[str, Any]:
     """Record a withdrawal request and its deadline; audited. Nothing is deleted yet."""
     now = v.now()
     v._require_steward()
@@ -173,8 +184,11 @@ def request_withdrawal(v: Vault, pid: str, *, received: dt.date, scope: str = SC
     if received > (now.astimezone(dt.UTC) + dt.timedelta(hours=14)).date():
         raise UsageError("--received lies in the future")
     _require_living(v, pid)
+    history = registry.consent_history(v._conn, pid)
+    if received < _earliest_request(v, pid, history):
+        raise UsageError("--received lies before the participant's consent was signed (or, "
+                         "with no consent on record, before their enrolment): check the date")
     if scope != SCOPE_FULL:
-        history = registry.consent_history(v._conn, pid)
         if not history:
             raise Conflict(f"participant '{pid}' has no consent on record; request a full withdrawal")
         _named_purposes(v.policy, history[-1], _purpose(scope))
@@ -256,22 +270,41 @@ def process(v: Vault, target: str, *, reclaim_space: bool = True
     v._require_steward()
     try:
         request_id, pid, scope, received, deadline, status = _resolve(v, target)
-    except Conflict:
-        finish_interrupted(v)
-        raise
+    except Conflict as exc:
+        raise Conflict(exc.message + _flush_note(finish_interrupted(v))) from None
     if status != PENDING:
-        finish_interrupted(v, _receipt_blobs(v, request_id))
+        done = finish_interrupted(v, _receipt_blobs(v, request_id))
         raise Conflict(f"request {request_id} was {status} already; nothing to do"
-                       + (" (see 'mindward withdraw receipt')" if status == PROCESSED else ""))
+                       + (" (see 'mindward withdraw receipt')" if status == PROCESSED else "")
+                       + _flush_note(done))
+    keys: list[bytes] = []
     if scope == SCOPE_FULL:
         result, blobs = _erase(v, pid, request_id=request_id, received=received,
-                               deadline=deadline, trigger=TRIGGER_REQUEST, now=now)
+                               deadline=deadline, trigger=TRIGGER_REQUEST, now=now,
+                               destroyed_keys=keys)
     else:
         result, blobs = _withdraw_purpose(v, pid, request_id=request_id, received=received,
                                           deadline=deadline, scope=scope, now=now)
     result.update(finish_interrupted(v, blobs, overwrite=scope != SCOPE_FULL,
-                                     reclaim_space=reclaim_space))
+                                     reclaim_space=reclaim_space, destroyed_keys=keys))
+    if not result["flushed"]:
+        raise Conflict(f"request {request_id}: {UNFLUSHED}")
     return result
+
+
+UNFLUSHED = ("erasure recorded (receipt stored) but not yet flushed from the file: another "
+             "process holds the database open; close it and run again (the next open of the "
+             "vault also finishes it)")
+
+
+def _flush_note(done: dict[str, Any]) -> str:
+    """What a repeated `process` says about an earlier erasure's flush."""
+    if done.get("finished_earlier_erasure"):
+        return "; an earlier erasure is now flushed from the file"
+    if not done["erasure_unflushed"]:
+        return ""
+    return ("; an earlier erasure is still not flushed from the file: close other programs "
+            "holding the database and run again")
 
 
 def _blob_rows(v: Vault, pid: str) -> list[tuple[str, str, int]]:
@@ -368,19 +401,24 @@ def _summary(body: dict[str, Any], document: dict[str, Any], superseded: list[st
 
 
 def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str, trigger: str,
-           now: dt.datetime, new_request: bool = False) -> tuple[dict[str, Any], list[str]]:
-    """Phase 1 of a full erasure: one transaction (see the module docstring)."""
+           now: dt.datetime, new_request: bool = False, destroyed_keys: list[bytes] | None = None
+           ) -> tuple[dict[str, Any], list[str]]:
+    """Phase 1 of a full erasure: one transaction (see the module docstring).
+
+    The wrapped key destroyed is appended to `destroyed_keys`, for phase 2 to check
+    that no copy of it is left in the database file or its WAL.
+    """
     at = _at(now)
     receipt_id = "r-" + crypto.random_id(8)
     with storage.transaction(v._conn):
         row = v._conn.execute(
-            "SELECT wrapped_key IS NULL, key_commitment, date_offset IS NOT NULL, "
+            "SELECT wrapped_key, key_commitment, date_offset IS NOT NULL, "
             "lab_code_tag IS NOT NULL FROM participants WHERE pid = ?", (pid,)).fetchone()
         if row is None:
             raise NotFound(f"no participant '{pid}'")
-        if row[0]:
+        if row[0] is None:
             raise Conflict(_erasure_note(v, pid))
-        _, commitment, had_offset, had_tag = row
+        wrapped, commitment, had_offset, had_tag = row
         if new_request:
             v._conn.execute(
                 "INSERT INTO withdrawals (request_id, pid, scope, received, deadline, status) "
@@ -437,6 +475,8 @@ def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str,
                  "details": {**details, "trigger": trigger, "rows": counts,
                              "exports": len(held_in), "superseded": superseded}}
         document = _sign_and_store(v, body=body, entry=entry, at=at, request_id=request_id)
+    if destroyed_keys is not None:
+        destroyed_keys.append(bytes(wrapped))
     return _summary(body, document, superseded), blob_ids
 
 
@@ -561,12 +601,18 @@ def reclaim(v: Vault) -> int:
 
 
 def finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite: bool = False,
-                       reclaim_space: bool = True) -> dict[str, Any]:
+                       reclaim_space: bool = True, destroyed_keys: Iterable[bytes] = ()
+                       ) -> dict[str, Any]:
     """Phase 2, idempotent: move `blob_ids` out of the store, vacuum free pages, checkpoint
     and empty the WAL, then (unless `reclaim_space` is False) unlink what was moved.
 
     Moving is a rename into the vault's tmp/ (constant time whatever the size; tmp/ is
     emptied at every open). Safe to call at any time (e.g. at every open).
+
+    `flushed` in the result is True only when the checkpoint was complete and no
+    byte string of `destroyed_keys` is left in the database file or its WAL. When it
+    is False the vault notes it (meta `erasure_unflushed`) and the next call, at the
+    latest at the next open, finishes the flush and clears the note.
     """
     dirs: set[Path] = set()
     for blob_id in blob_ids or ():
@@ -581,13 +627,26 @@ def finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite
     for directory in sorted(dirs):
         fsync_path(directory)
     _incremental_vacuum(v._conn)
-    storage.checkpoint(v._conn)
+    busy = storage.checkpoint(v._conn)[0]
     wal = v.path / (storage.DB_NAME + "-wal")
     truncated = not wal.exists() or wal.stat().st_size == 0
-    out: dict[str, Any] = {"wal_truncated": truncated}
-    if not truncated:
-        out["warning"] = ("the write-ahead log could not be emptied (another reader?): close "
-                          "other connections and run 'mindward withdraw process' again")
+    keys = list(destroyed_keys)
+    flushed = not busy and truncated and not any(storage.file_holds(v.path, k) for k in keys)
+    noted = v._conn.execute("SELECT 1 FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,)).fetchone()
+    out: dict[str, Any] = {"wal_truncated": truncated, "flushed": flushed}
+    if not flushed and not noted and keys:  # a key destroyed by this call is still in the file
+        with storage.transaction(v._conn):
+            storage.set_meta(v._conn, _UNFLUSHED_NOTE, "1")
+        noted = True
+    elif flushed and noted:
+        with storage.transaction(v._conn):
+            v._conn.execute("DELETE FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,))
+        storage.checkpoint(v._conn)
+        out["finished_earlier_erasure"] = True
+        noted = False
+    out["erasure_unflushed"] = bool(noted)
+    if not flushed:
+        out["warning"] = UNFLUSHED
     if reclaim_space:
         out["files_unlinked"] = reclaim(v)
     return out
@@ -652,14 +711,17 @@ def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
         report["would_erase"] = [{"participant_id": p, "trigger": r} for p, r, _ in due]
         return report
     days = v.policy.meta.withdrawal_deadline_days
+    keys: list[bytes] = []
     for pid, reason, ended_on in due:
         result, blobs = _erase(
             v, pid, request_id="w-" + crypto.random_id(8), received=ended_on.isoformat(),
             deadline=(ended_on + dt.timedelta(days=days)).isoformat(), trigger=reason, now=now,
-            new_request=True)
+            new_request=True, destroyed_keys=keys)
         finish_interrupted(v, blobs, reclaim_space=False)
         report["erased"].append({k: result[k] for k in (
             "participant_id", "request_id", "receipt_id", "trigger", "on_time", "blobs_deleted",
             "notify", "recipients_to_notify")})
-    report.update(finish_interrupted(v))
+    report.update(finish_interrupted(v, destroyed_keys=keys))
+    if not report["flushed"]:
+        raise Conflict(f"sweep: {len(report['erased'])} {UNFLUSHED}")
     return report
