@@ -301,12 +301,12 @@ def test_budget_refund_credits_back_exactly(tmp_path: Path, policy_dir: Path) ->
     with v:
         budget.charge(at(v, NOW), MENU, {p: Cost(epsilon=Fraction(1, 10)) for p in pids}, export_id="x-a")
         with storage.transaction(v._conn):
-            purposes = budget.charge_in_transaction(
+            purposes = budget._charge_in_transaction(
                 v, MENU, {p: Cost(epsilon=Fraction(1, 5)) for p in pids}, export_id="x-b",
                 at="2026-06-15T12:00:00Z")
         assert purposes == [MENU, REC] and spent(v, REC) == dict.fromkeys(pids, ("3/10", "0", 2))
         with storage.transaction(v._conn):
-            budget.refund_in_transaction(v, MENU, purposes,
+            budget._refund_in_transaction(v, MENU, purposes,
                                          {p: Cost(epsilon=Fraction(1, 5)) for p in pids},
                                          export_id="x-b", at="2026-06-15T12:00:00Z")
         for purpose in (MENU, REC):

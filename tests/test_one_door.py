@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.clock import at
+from tests.clock import ManualClock, at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
 from vault import AuthenticationFailed, Conflict, InvalidInput, PolicyRefusal, Vault, read_audit_log
 from vault.policy import Admission, Grant
@@ -169,10 +169,11 @@ def test_auditor_and_analyst_roles(cohort, vault_path: Path) -> None:
     v.close()
     with pytest.raises(PolicyRefusal, match="holds no key to participant data"):
         Vault.open(vault_path, "auditor passphrase long enough", member="ines")
-    with Vault.open(vault_path, "analyst passphrase long enough", member="omar") as analyst:
-        grant = at(analyst, NOW).authorize("primary-analysis", ["eeg-raw"])
+    with Vault.open(vault_path, "analyst passphrase long enough", member="omar",
+                    clock=ManualClock(NOW)) as analyst:
+        grant = analyst.authorize("primary-analysis", ["eeg-raw"])
         pid = groups["all"][1]
-        assert b"".join(at(analyst, NOW).read_blob(grant, blobs[pid])).startswith(b"EEG-OF-")
+        assert b"".join(analyst.read_blob(grant, blobs[pid])).startswith(b"EEG-OF-")
     with Vault.open(vault_path, TEST_PASSPHRASE) as steward:
         at(steward, NOW).remove_member("omar")
         with pytest.raises(Conflict, match="last steward"):

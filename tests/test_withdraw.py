@@ -93,7 +93,7 @@ def _export(v: Vault, purpose: str, categories: list[str], members: list[str], *
             ) -> dict[str, Any]:
     grant = at(v, NOW)._authorize_release(purpose, categories, **options)
     chosen = [p for p in members if p in grant.participants]
-    return exports.sign_and_record(at(v, NOW), export_id=exports.new_export_id(), kind="aggregate",
+    return exports._sign_and_record(at(v, NOW), export_id=exports.new_export_id(), kind="aggregate",
                                    grant=grant, members=exports.pseudonyms(v, purpose, chosen),
                                    body={})
 
@@ -499,7 +499,7 @@ def test_a_wal_that_cannot_be_emptied_is_reported_not_hidden(lab) -> None:
             _withdraw(v, facts["t"])
     finally:
         reader.close()
-    done = withdraw.finish_interrupted(v)
+    done = withdraw._finish_interrupted(v)
     assert done["wal_truncated"] is True and done["flushed"] and done["finished_earlier_erasure"]
     assert (v.path / "vault.db-wal").stat().st_size == 0
 

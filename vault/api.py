@@ -11,7 +11,7 @@ import sqlite3
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import replace
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Protocol
@@ -83,6 +83,18 @@ def _take_lock(path: Path) -> int:
             time.sleep(0.05)
 
 
+CLOCK_ALLOWANCE = timedelta(minutes=2)
+
+
+def _newest_entry_time(conn: sqlite3.Connection) -> datetime:
+    row = conn.execute("SELECT entry FROM audit_log ORDER BY seq DESC LIMIT 1").fetchone()
+    try:
+        stamp = json.loads(row[0])["at"] if row else None
+        return datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ").replace(tzinfo=UTC)
+    except (ValueError, TypeError, KeyError):
+        return datetime.min.replace(tzinfo=UTC)
+
+
 def _reads_data(policy: PolicySet) -> Callable[[str], bool]:
     """Which roles get a key slot that opens participant data (stewards always)."""
     return lambda role: role == "steward" or (role in policy.roles and policy.roles[role].reads_data)
@@ -114,11 +126,27 @@ class Vault:
         self.vault_id = keys.vault_id
         self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
         self._store = BlobStore(path, self.vault_id)
-        self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing)
+        self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing, stamp=self._stamp)
         # rows this open found written without the key, now flagged (None: none found)
         self.audit_flagged: dict[str, Any] | None = None
         self._closed = False
-        self._set_policy(registry.load_policy(conn, storage.get_meta(conn, "policy_version")))
+        self._set_policy(registry.load_policy(conn, self._pinned_policy_version()))
+        self._floor = _newest_entry_time(conn)
+
+    def _pinned_policy_version(self) -> str:
+        """The pinned policy version, checked against its keyed tag (set by init and
+        `apply_policy`; a vault from before the tag gets one now, on trust, audited at recovery)."""
+        version = storage.get_meta(self._conn, "policy_version")
+        row = self._conn.execute("SELECT value FROM meta WHERE key = 'policy_pin'").fetchone()
+        expected = self._keys.policy_pin(version)
+        if row is None:
+            self._pin_added = True
+            return version
+        self._pin_added = False
+        if not crypto.constant_time_equal(row[0].encode(), expected.encode()):
+            raise IntegrityError("the pinned policy set was changed without the vault's keys; "
+                                 "restore the database from a backup and tell your DPO")
+        return version
 
     @property
     def member(self) -> str:
@@ -136,8 +164,18 @@ class Vault:
 
     def now(self) -> datetime:
         """The vault's clock (the system's, or the one a test injected at open): decisions,
-        deadlines and audit entries all read it; no caller chooses the time of an action."""
-        return moment(None, self._clock)
+        deadlines and audit entries all read it; no caller chooses the time of an action.
+
+        For members other than stewards it never reads earlier than the newest audit entry
+        (less a small allowance for clock adjustment): a clock set back cannot reopen an
+        expired consent."""
+        value = moment(None, self._clock)
+        if self._role != "steward":
+            if value < self._floor - CLOCK_ALLOWANCE:
+                raise Conflict("this computer's clock reads earlier than the vault's newest audit "
+                               "entry; correct the clock")
+            self._floor = max(self._floor, value)
+        return value
 
     @property
     def policy(self) -> PolicySet:
@@ -152,9 +190,8 @@ class Vault:
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
             self.now, lambda purpose, pids: pseudonyms(self, purpose, pids))
 
-    def _audit_batch(self, entries: list[dict[str, Any]], _ignored: object = None) -> None:
-        """Append entries in their own transaction, stamped by the vault's clock (a second
-        argument, once the caller's time, is ignored until every caller drops it)."""
+    def _audit_batch(self, entries: list[dict[str, Any]]) -> None:
+        """Append entries in their own transaction, stamped by the vault's clock."""
         with storage.transaction(self._conn):
             self._audit.append_many(entries, self._stamp())
 
@@ -209,6 +246,7 @@ class Vault:
                 }.items():
                     storage.set_meta(conn, key, value)
                 ring.load_secret(ring.wrap_secret(secret))
+                storage.set_meta(conn, "policy_pin", ring.policy_pin(policy.version))
                 registry.store_policy(conn, policy, at)
                 ring.add_slot(conn, member, "steward", passphrase, at)
                 log = audit.AuditLog(conn, vault_id, signer=signing)
@@ -262,14 +300,14 @@ class Vault:
 
     def _recover(self, *, upgraded: bool = False) -> None:
         from vault.ingest import scrub_clear_metadata
-        from vault.withdraw import finish_interrupted
+        from vault.withdraw import _finish_interrupted
 
         storage.add_missing_columns(self._conn)  # additive schema changes of this version
         scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
-        finish_interrupted(self)  # an erasure killed between its commit and its clean-up
+        _finish_interrupted(self)  # an erasure killed between its commit and its clean-up
         from vault.export_runs import recover
 
         recover(self)  # an export killed before it was in place: finished, refunded or voided
@@ -277,10 +315,16 @@ class Vault:
         if upgraded:
             entries.append({"actor": self.member, "action": "member.slot-bound", "decision": "done",
                             "details": {"member": self.member, "role": self.role}})
+        if self._pin_added:
+            entries.append({"actor": self.member, "action": "policy.pinned", "decision": "done",
+                            "details": {"version": self.policy.version}})
         if entries:
             with storage.transaction(self._conn):
                 self._audit.append_many(entries, self._stamp())
                 notes.clear(self._conn)
+                if self._pin_added:
+                    storage.set_meta(self._conn, "policy_pin", self._keys.policy_pin(self.policy.version))
+                    self._pin_added = False
 
     def close(self) -> None:
         """Sign a tree head over any new entries, then release the vault."""
@@ -289,8 +333,12 @@ class Vault:
         try:
             head = self._audit.latest_head()
             if head is None or head.tree_size < self._audit.size:
+                try:
+                    at = self._stamp()
+                except Conflict:  # a clock set back mid-session: the session's last good time
+                    at = utc_now(self._floor)
                 with storage.transaction(self._conn):
-                    self._audit.sign_head(self._signing, self._stamp())
+                    self._audit.sign_head(self._signing, at)
         finally:
             self._closed = True
             self._conn.close()
@@ -397,6 +445,7 @@ class Vault:
         with storage.transaction(self._conn):
             new = registry.store_policy(self._conn, policy, at)
             storage.set_meta(self._conn, "policy_version", policy.version)
+            storage.set_meta(self._conn, "policy_pin", self._keys.policy_pin(policy.version))
             self._audit.append({"actor": self.member, "action": "policy.apply", "decision": "done",
                                 "details": {"version": policy.version, "previous": previous}}, at)
         self._set_policy(policy)
@@ -468,7 +517,10 @@ class Vault:
 
     def request(self, purpose: str, categories: Iterable[str], *,
                 participants: Iterable[str] | None = None) -> Request:
-        """A plain read request by this member: cohort rules apply, no export options."""
+        """A plain read request by this member: cohort rules apply, no export options. Only
+        stewards may name participants (others would learn which vault ids exist)."""
+        if participants is not None and self.role != "steward":
+            self._refuse_role("access.participants")
         return Request(actor=self.member, role=self.role, purpose=purpose,
                        categories=frozenset(categories),
                        participants=None if participants is None else tuple(participants))

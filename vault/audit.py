@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -152,10 +152,12 @@ class AuditLog:
     """
 
     def __init__(self, conn: sqlite3.Connection, vault_id: str,
-                 signer: crypto.SigningKey | None = None) -> None:
+                 signer: crypto.SigningKey | None = None,
+                 stamp: Callable[[], str] | None = None) -> None:
         self.conn = conn
         self.vault_id = vault_id
         self._signer = signer
+        self._stamp = stamp  # the vault's clock: when set, no caller's `at` reaches an entry
         self._cache: merkle.CompactRange | None = None  # the frontier the current head signs
         self._head_text: str | None = None  # the stored current head that frontier matches
         self._flagged: dict[str, Any] | None = None  # the flag the last reconcile wrote
@@ -291,7 +293,11 @@ class AuditLog:
         return self.append_many([fields], at)[0]
 
     def append_many(self, entries: Iterable[Mapping[str, Any]], at: str) -> list[int]:
-        """Append entries (inside an open transaction) and sign the current head over them."""
+        """Append entries (inside an open transaction) and sign the current head over them.
+
+        A log with a `stamp` (the vault's) dates entries by it and ignores `at`."""
+        if self._stamp is not None:
+            at = self._stamp()
         self._ready(at)
         return self._write(entries, at)
 

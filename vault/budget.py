@@ -82,7 +82,7 @@ class _Memo:
         return found[0]
 
 
-def ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
+def _ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
             memo: _Memo | None = None) -> dict[str, Ledger]:
     """Stored ledgers for `purpose` (all rows, or those of `pids`); absent means nothing spent."""
     parse = (memo or _Memo()).ledger
@@ -93,10 +93,10 @@ def ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
     return {pid: parse(e, r, n) for pid, e, r, n in rows}
 
 
-def chain_ledgers(v: Vault, purpose: str, pids: Sequence[str],
+def _chain_ledgers(v: Vault, purpose: str, pids: Sequence[str],
                   memo: _Memo | None = None) -> dict[str, dict[str, Ledger]]:
     """{budgeted purpose of the chain: {pid: ledger}} for `pids`."""
-    return {name: ledgers(v, name, pids, memo) for name in budgets(v.policy, purpose)}
+    return {name: _ledgers(v, name, pids, memo) for name in budgets(v.policy, purpose)}
 
 
 def affordable(v: Vault, purpose: str, costs: Mapping[str, Cost], memo: _Memo | None = None,
@@ -106,7 +106,7 @@ def affordable(v: Vault, purpose: str, costs: Mapping[str, Cost], memo: _Memo | 
     if not plan:
         return dict.fromkeys(costs, False)
     memo = memo or _Memo()
-    held = held if held is not None else chain_ledgers(v, purpose, list(costs), memo)
+    held = held if held is not None else _chain_ledgers(v, purpose, list(costs), memo)
     empty = Ledger()
     return {pid: all(memo.within(held[name].get(pid, empty), costs[pid], budget)
                      for name, budget in plan.items()) for pid in costs}
@@ -135,7 +135,7 @@ def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], requ
     """
     memo = _Memo()
     plan = budgets(v.policy, purpose)
-    held = chain_ledgers(v, purpose, list(costs), memo)
+    held = _chain_ledgers(v, purpose, list(costs), memo)
     verdict = affordable(v, purpose, costs, memo, held)
     below_request = math.nextafter(request_epsilon, -math.inf)
     empty = Ledger()
@@ -159,15 +159,23 @@ def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str)
     charge (PolicyRefusal, nothing written) if anyone would exceed a budget.
     Every call spends again: the same request twice is charged twice.
     """
+    v._require_steward("budget.charge")
     now = v.now()
     at = now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     with storage.transaction(v._conn):
-        charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+        _charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
 
 
-def charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
+def _require_transaction(v: Vault) -> None:
+    """Ledger writes and their audit entry commit together or not at all: never in autocommit."""
+    if not v._conn.in_transaction:
+        raise UsageError("the budget ledger is written only inside a transaction with its audit entry")
+
+
+def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
                           at: str) -> list[str]:
     """`charge` inside the caller's open transaction; returns the purposes charged."""
+    _require_transaction(v)
     plan = budgets(v.policy, purpose)
     if not plan:
         raise PolicyRefusal(f"purpose {purpose} sets no per-participant privacy budget")
@@ -177,7 +185,7 @@ def charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, 
     after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
     empty = Ledger()
     for name, budget in plan.items():
-        held = ledgers(v, name, pids, memo)
+        held = _ledgers(v, name, pids, memo)
         for pid in pids:
             old, cost = held.get(pid, empty), costs[pid]
             if not memo.within(old, cost, budget):
@@ -205,15 +213,16 @@ def charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, 
     return list(plan)
 
 
-def refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
+def _refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
                           costs: Mapping[str, Cost], *, export_id: str, at: str) -> None:
-    """Credit back exactly what `charge_in_transaction` spent for a release that never left the
+    """Credit back exactly what `_charge_in_transaction` spent for a release that never left the
     vault (one release fewer; a ledger back at zero releases is removed). Audited."""
+    _require_transaction(v)
     memo = _Memo()
     updates: list[tuple[str, str, int, str, str]] = []
     gone: list[tuple[str, str]] = []
     for name in purposes:
-        held = ledgers(v, name, list(costs), memo)
+        held = _ledgers(v, name, list(costs), memo)
         for pid, cost in costs.items():
             old = held.get(pid)
             if old is None:  # erased since (withdrawal deletes ledger rows): nothing to credit
@@ -260,7 +269,7 @@ def budget_report(v: Vault, purpose: str | None = None, *,
         if cap is None:
             continue
         budget = Budget(Fraction(str(cap)), ZCDP_DELTA)
-        held = ledgers(v, name, living)
+        held = _ledgers(v, name, living)
         spent = {pid: spent_epsilon(led, budget.delta) for pid, led in held.items()}
         left = {pid: remaining_epsilon(led, budget) for pid, led in held.items()}
         row: dict[str, Any] = {

@@ -99,7 +99,7 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                 header = without_demographics(header, parsed)
             writer.add_recording(labels[pid], None, runs[pid], header, blocks, recording_meta(parsed))
         files = writer.finish([people[pid] for pid in sorted(labels)], bidsignore=[MANIFEST_NAME])
-        signed = exports.sign_and_record(
+        signed = exports._sign_and_record(
             v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,
             body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],

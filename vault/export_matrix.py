@@ -13,7 +13,7 @@ The flow of one export (every step audited):
    DP statistics (`vault.privacy_aggregate.release_aggregate`).
 5. The run is recorded and the budget charged in one transaction before any
    file exists, the files are written into a staging folder, the manifest is
-   signed and the lineage recorded (`vault.exports.sign_and_record`), and the
+   signed and the lineage recorded (`vault.exports._sign_and_record`), and the
    folder is renamed into place (`vault.export_runs`: a run killed before any
    file was written is refunded at the next open, one killed after the files
    were signed is finished, one killed in between keeps its charge).
@@ -181,7 +181,7 @@ def _float_above(value: Fraction) -> float:
 
 def _audit_refusal(v: Vault, purpose: str, reason: str, now: dt.datetime) -> None:
     v._audit_batch([{"actor": v.member, "action": "export.matrix", "purpose": purpose,
-                     "decision": "refuse", "subjects": [], "reasons": [reason]}], now)
+                     "decision": "refuse", "subjects": [], "reasons": [reason]}])
 
 
 @dataclass(frozen=True)
@@ -476,7 +476,7 @@ def export_matrix(
             members = exports.pseudonyms(v, f"{purpose}#aggregate:{export_id}", order)
         body = _manifest_body(release, category, guarantee, files, item_list, item_source,
                               budget.budgets(v.policy, purpose), k, mech, formats)
-        signed = exports.sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
+        signed = exports._sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
                                          grant=grant, members=members, body=body,
                                          list_pseudonyms=release == "matrix")
         export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
@@ -609,11 +609,7 @@ def export_utility(
     from vault.recommend import utility_curve
     from vault.utility_plot import plot_utility
 
-    if v.role != "steward":
-        v._audit_batch([{"actor": v.member, "action": "export.utility", "purpose": purpose,
-                         "decision": "refuse", "subjects": [], "reasons": ["role-not-allowed"],
-                         "details": {"category": category, "role": v.role}}], now)
-        v._require_steward()
+    v._require_steward("export.utility")
     try:
         privacy_unit = PrivacyUnit(unit)
     except ValueError:
@@ -650,7 +646,7 @@ def export_utility(
                      "details": {"grant": grant.grant_id, "category": category,
                                  "privacy_unit": privacy_unit.value, "epsilons": figures["epsilons"],
                                  "released": "held-out RMSE figures only, to the steward; "
-                                             "not differentially private"}}], now)
+                                             "not differentially private"}}])
     return {"purpose": purpose, "category": category, "privacy_unit": privacy_unit.value,
             "report": figures, "table": report.table(), "png": str(png),
             "caution": UTILITY_CAUTION}

@@ -90,7 +90,7 @@ def begin(v: Vault, *, export_id: str, kind: str, purpose: str, out: Path, at: s
     out = Path(out).absolute()
     staging = staging_path(out, export_id)
     with storage.transaction(v._conn):
-        charged = (budget.charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+        charged = (budget._charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
                    if costs is not None else [])
         v._conn.execute(
             "INSERT INTO export_runs (export_id, kind, purpose, staging, out, state, "
@@ -114,7 +114,7 @@ def writing(v: Vault, export_id: str) -> None:
 
 
 def mark_signed(v: Vault, export_id: str, signed: bytes) -> None:
-    """Inside `exports.sign_and_record`'s transaction: the files are complete and signed."""
+    """Inside `exports._sign_and_record`'s transaction: the files are complete and signed."""
     v._conn.execute("UPDATE export_runs SET state = ?, signed = ? WHERE export_id = ?",
                     (SIGNED, signed, export_id))
 
@@ -154,7 +154,7 @@ def _settle(v: Vault, row: tuple[Any, ...], state: str, at: str,
             costs = {pid: Cost(Fraction(e), Fraction(r)) for pid, e, r in v._conn.execute(
                 "SELECT pid, epsilon, rho FROM export_charges WHERE export_id = ?", (export_id,))}
             if costs and json.loads(charged):
-                budget.refund_in_transaction(v, purpose, json.loads(charged), costs,
+                budget._refund_in_transaction(v, purpose, json.loads(charged), costs,
                                              export_id=export_id, at=at)
         v._conn.execute("UPDATE export_runs SET state = ?, ended_at = ?, signed = NULL "
                         "WHERE export_id = ?", (state, at, export_id))

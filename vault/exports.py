@@ -50,7 +50,7 @@ def new_export_id() -> str:
     return "x-" + crypto.random_id(8)
 
 
-def sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, members: Mapping[str, str],
+def _sign_and_record(v: Vault, *, export_id: str, kind: str, grant: Grant, members: Mapping[str, str],
                     body: Mapping[str, Any],
                     expires_days: int = DEFAULT_EXPORT_DAYS,
                     list_pseudonyms: bool = True) -> dict[str, Any]:
@@ -154,7 +154,7 @@ def check_export(v: Vault, document: Mapping[str, Any]) -> dict[str, Any]:
             "export_expired": expired, "must_replace": replace}
 
 
-def exports_containing(v: Vault, pid: str) -> list[dict[str, str]]:
+def _exports_containing(v: Vault, pid: str) -> list[dict[str, str]]:
     """Earlier exports that included `pid`, with their recipients (GDPR Art. 19)."""
     rows = v._conn.execute(
         "SELECT e.export_id, e.kind, e.purpose, e.recipient, e.created_at FROM exports e "

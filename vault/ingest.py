@@ -44,12 +44,12 @@ def _require_storage_consent(v: Vault, pids: list[str], category: str, now: dt.d
     refused = [pid for pid in pids if not covers_storage(consents.get(pid), category, now)]
     if refused:
         v._audit_batch([{"actor": v.member, "action": f"ingest.{category}", "decision": "refuse",
-                         "subjects": refused, "reasons": ["no-consent-for-storage"]}], now)
+                         "subjects": refused, "reasons": ["no-consent-for-storage"]}])
         raise PolicyRefusal(f"{len(refused)} participant(s) have no current consent covering "
                             f"storage of {category}; nothing was stored")
 
 
-def date_offset(v: Vault, pid: str, start: dt.date) -> tuple[int, bool]:
+def _date_offset(v: Vault, pid: str, start: dt.date) -> tuple[int, bool]:
     """The participant's secret date shift and whether it is new: chosen at their first
     recording (kept in range for it, with years of headroom), stored wrapped under their
     own key by the caller in the same transaction as that recording, reused after."""
@@ -144,6 +144,7 @@ def scrub_clear_metadata(v: Vault) -> int:
 def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
                event_codes: str | Sequence[str] | None, keep_sex: bool,
                age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
+    v._require_steward("ingest.eeg")
     now = v.now()
     registry.require_participant(v._conn, pid)
     _require_storage_consent(v, [pid], EEG, now)
@@ -158,7 +159,7 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
         tag = _content_tag(v, pid, _file_digests(inputs))
         if (row := _stored_as(v, pid, tag)) is not None:
             return _already_stored(v, pid, *row, now)
-    offset, new_offset = date_offset(v, pid, start_date(path, sidecar if numpy_input else None))
+    offset, new_offset = _date_offset(v, pid, start_date(path, sidecar if numpy_input else None))
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
                           age_band_years=age_band_years)
     seen = crypto.StreamingDigest()
@@ -235,6 +236,7 @@ def _already_stored(v: Vault, pid: str, blob_id: str, fmt: str, now: dt.datetime
 
 
 def ingest_scores(v: Vault, path: Path, kind: str) -> dict[str, Any]:
+    v._require_steward("ingest.scores")
     now = v.now()
     if kind not in SCORE_KINDS:
         raise UsageError("--kind is 'derived' or 'explicit'")

@@ -231,6 +231,12 @@ class KeyRing:
     def load_secret(self, wrapped: bytes) -> None:
         self._secret = crypto.unwrap_key(self._secret_kek(), wrapped)
 
+    def policy_pin(self, version: str) -> str:
+        """Keyed tag of the pinned policy version: a policy swapped into the database by anyone
+        without the vault's keys (say, one without DP noise) no longer matches it."""
+        key = crypto.derive_key(self._secret, "policy-pin", self.vault_id.encode())
+        return crypto.hmac_sha256(key, version.encode("ascii")).hex()
+
     def lab_code_tag(self, code: str) -> str:
         """Keyed tag of a lab participant code: finds duplicates without storing the code."""
         key = crypto.derive_key(self._secret, "lab-code-tag", self.vault_id.encode())

@@ -61,7 +61,7 @@ def fold(conn: sqlite3.Connection, vault_id: str,
         entries.append({"actor": note["member"], "action": note["action"],
                         "decision": note["decision"],
                         "details": {"role": note["role"], "noted_at": note["at"],
-                                    "recorded_by": "member-note", **note.get("details", {})}})
+                                    "recorded_by": "member-note", "note": note.get("details", {})}})
     return entries
 
 

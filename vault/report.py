@@ -34,6 +34,7 @@ def _count(v: Vault, sql: str, *args: object) -> int:
 
 
 def record_of_processing(v: Vault) -> dict[str, Any]:
+    v._require_steward("report")
     now = v.now()
     policy = v.policy
     consents = registry.latest_consents(v._conn, None)

@@ -39,7 +39,7 @@ and empties the WAL, so no key material or plaintext remains in the DB file, WAL
 or free pages. (Blocks the file system freed when the WAL was truncated are not
 overwritten: docs/erasure.md says what that means.) A kill inside phase 2 is
 completed by the next open (orphan and tmp/ removal; SQLite checkpoints when
-the last connection closes; `finish_interrupted`) or by rerunning `process`,
+the last connection closes; `_finish_interrupted`) or by rerunning `process`,
 which reports the request as done (Conflict) after finishing phase 2. Last, `reclaim` unlinks the moved
 files. Unlinking is proportional to the size on common file systems (ext4 here:
 about 0.2 s per GiB, even with a cold cache), so it is kept apart from the
@@ -177,7 +177,7 @@ def request_withdrawal(v: Vault, pid: str, *, received: dt.date,
                        scope: str = SCOPE_FULL) -> dict[str, Any]:
     """Record a withdrawal request and its deadline; audited. Nothing is deleted yet."""
     now = v.now()
-    v._require_steward()
+    v._require_steward("withdraw.request")
     scope = parse_scope(scope)
     if not isinstance(received, dt.date) or isinstance(received, dt.datetime):
         raise UsageError("--received is a date (YYYY-MM-DD)")
@@ -218,6 +218,7 @@ def request_withdrawal(v: Vault, pid: str, *, received: dt.date,
 
 def pending(v: Vault) -> list[dict[str, Any]]:
     """Open requests, overdue first (then by deadline)."""
+    v._require_steward("withdraw.pending")
     now = v.now()
     rows = v._conn.execute(
         "SELECT request_id, pid, scope, received, deadline FROM withdrawals WHERE status = ? "
@@ -267,13 +268,13 @@ def process(v: Vault, target: str, *, reclaim_space: bool = True
     next open): the erasure itself is complete either way.
     """
     now = v.now()
-    v._require_steward()
+    v._require_steward("withdraw.process")
     try:
         request_id, pid, scope, received, deadline, status = _resolve(v, target)
     except Conflict as exc:
-        raise Conflict(exc.message + _flush_note(finish_interrupted(v))) from None
+        raise Conflict(exc.message + _flush_note(_finish_interrupted(v))) from None
     if status != PENDING:
-        done = finish_interrupted(v, _receipt_blobs(v, request_id))
+        done = _finish_interrupted(v, _receipt_blobs(v, request_id))
         raise Conflict(f"request {request_id} was {status} already; nothing to do"
                        + (" (see 'mindward withdraw receipt')" if status == PROCESSED else "")
                        + _flush_note(done))
@@ -285,7 +286,7 @@ def process(v: Vault, target: str, *, reclaim_space: bool = True
     else:
         result, blobs = _withdraw_purpose(v, pid, request_id=request_id, received=received,
                                           deadline=deadline, scope=scope, now=now)
-    result.update(finish_interrupted(v, blobs, overwrite=scope != SCOPE_FULL,
+    result.update(_finish_interrupted(v, blobs, overwrite=scope != SCOPE_FULL,
                                      reclaim_space=reclaim_space, destroyed_keys=keys))
     if not result["flushed"]:
         raise Conflict(f"request {request_id}: {UNFLUSHED}")
@@ -425,7 +426,7 @@ def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str,
                 "VALUES (?, ?, ?, ?, ?, ?)", (request_id, pid, SCOPE_FULL, received, deadline, PENDING))
         blobs = _blob_rows(v, pid)
         kinds = {k for _, k, _ in blobs}
-        held_in = exports.exports_containing(v, pid)
+        held_in = exports._exports_containing(v, pid)
         history = registry.consent_history(v._conn, pid)
         consent, appended = None, None
         if history and trigger == TRIGGER_REQUEST:
@@ -523,7 +524,7 @@ def _withdraw_purpose(v: Vault, pid: str, *, request_id: str, received: str, dea
                  "still_granted_for": still[c]} for c in sorted(candidates & set(still))]
         counts = _delete_rows(v, pid, blob_ids)
         family = _family(v.policy, purpose)
-        held_in = [e for e in exports.exports_containing(v, pid) if e["purpose"] in family]
+        held_in = [e for e in exports._exports_containing(v, pid) if e["purpose"] in family]
         by_kind: dict[str, int] = {}
         for _, kind, _ in gone:
             by_kind[kind] = by_kind.get(kind, 0) + 1
@@ -586,7 +587,7 @@ def _trash(v: Vault) -> list[Path]:
 
 
 def reclaim(v: Vault) -> int:
-    """Unlink the erased blob files set aside by `finish_interrupted`; returns how many.
+    """Unlink the erased blob files set aside by `_finish_interrupted`; returns how many.
 
     Only disk space is at stake here: the files are ciphertext under a destroyed key
     (or already overwritten). Unlinking is O(size) on most file systems, which is why
@@ -600,7 +601,7 @@ def reclaim(v: Vault) -> int:
     return len(files)
 
 
-def finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite: bool = False,
+def _finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite: bool = False,
                        reclaim_space: bool = True, destroyed_keys: Iterable[bytes] = ()
                        ) -> dict[str, Any]:
     """Phase 2, idempotent: move `blob_ids` out of the store, vacuum free pages, checkpoint
@@ -662,6 +663,7 @@ def _receipt_blobs(v: Vault, request_id: str) -> list[str]:
 
 def receipt_of(v: Vault, target: str) -> dict[str, Any]:
     """The stored receipt of a processed request (by request id, or the participant's latest)."""
+    v._require_steward("withdraw.receipt")
     if target.startswith("w-"):
         rows = v._conn.execute("SELECT receipt FROM withdrawals WHERE request_id = ?",
                                (target,)).fetchall()
@@ -691,7 +693,7 @@ def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
     Idempotent (erased participants are skipped); one transaction per participant.
     """
     now = v.now()
-    v._require_steward()
+    v._require_steward("sweep")
     consents = registry.latest_consents(v._conn, None)  # living participants only
     due: list[tuple[str, str, dt.date]] = []
     no_consent, ended = 0, []
@@ -717,11 +719,11 @@ def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
             v, pid, request_id="w-" + crypto.random_id(8), received=ended_on.isoformat(),
             deadline=(ended_on + dt.timedelta(days=days)).isoformat(), trigger=reason, now=now,
             new_request=True, destroyed_keys=keys)
-        finish_interrupted(v, blobs, reclaim_space=False)
+        _finish_interrupted(v, blobs, reclaim_space=False)
         report["erased"].append({k: result[k] for k in (
             "participant_id", "request_id", "receipt_id", "trigger", "on_time", "blobs_deleted",
             "notify", "recipients_to_notify")})
-    report.update(finish_interrupted(v, destroyed_keys=keys))
+    report.update(_finish_interrupted(v, destroyed_keys=keys))
     if not report["flushed"]:
         raise Conflict(f"sweep: {len(report['erased'])} {UNFLUSHED}")
     return report
