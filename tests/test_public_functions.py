@@ -179,3 +179,45 @@ def test_a_vault_without_a_policy_pin_gets_one_on_trust(lab) -> None:
     with Vault.open(path, TEST_PASSPHRASE, clock=clock) as v:
         assert v.audit_entries()[-1]["action"] == "policy.pinned"
     Vault.open(path, TEST_PASSPHRASE, clock=clock).close()
+
+
+def _withdraw_recommender(v: Vault, pid: str, code: str) -> None:
+    amended = (EXAMPLES / "amend-withdraw-recommender.toml").read_text()
+    v.amend_consent(pid, amended.replace('code = "TL-', f'code = "{code}-', 1).encode())
+
+
+@pytest.mark.parametrize("tamper", ["delete-newest", "edit-newest"])
+def test_a_withdrawal_undone_in_the_file_stops_the_vault(lab, tamper: str) -> None:
+    # an outsider dropped the trigger and removed (or rewrote) the newest consent version: the
+    # withdrawn participant was permitted again and every check passed
+    path, clock, pids = lab
+    with Vault.open(path, TEST_PASSPHRASE, clock=clock) as v:
+        _withdraw_recommender(v, pids[0], "p0")
+    conn = sqlite3.connect(path / "vault.db")
+    with conn:
+        conn.execute("DROP TRIGGER consents_no_delete")
+        conn.execute("DROP TRIGGER consents_no_update")
+        if tamper == "delete-newest":
+            conn.execute("DELETE FROM consents WHERE pid = ? AND number = 2", (pids[0],))
+        else:
+            body = conn.execute("SELECT body FROM consents WHERE pid = ? AND number = 2",
+                                (pids[0],)).fetchone()[0]
+            conn.execute("UPDATE consents SET body = ? WHERE pid = ? AND number = 2",
+                         (body.replace(b'"withdrawn"', b'"given"'), pids[0]))
+    conn.close()
+    for passphrase, member in ((TEST_PASSPHRASE, "steward"), (ANALYST, "omar")):
+        with pytest.raises(IntegrityError, match="newest consent of 1 participant"):
+            Vault.open(path, passphrase, member=member, clock=clock)
+
+
+def test_consent_heads_of_an_older_vault_are_tagged_on_trust(lab) -> None:
+    path, clock, pids = lab
+    conn = sqlite3.connect(path / "vault.db")
+    with conn:
+        conn.execute("UPDATE participants SET consent_tag = NULL")
+    conn.close()
+    with Vault.open(path, TEST_PASSPHRASE, clock=clock) as v:
+        tagged = [e for e in v.audit_entries() if e["action"] == "consent.tagged"]
+        assert [e["details"]["participants"] for e in tagged] == [len(pids)]
+        _withdraw_recommender(v, pids[1], "p1")  # later versions are tagged as they are added
+    Vault.open(path, TEST_PASSPHRASE, clock=clock).close()

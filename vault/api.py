@@ -274,6 +274,7 @@ class Vault:
             conn = storage.connect(path)
             vault_id = _check_schema(conn)
             storage.add_missing_tables(conn)
+            storage.add_missing_columns(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
             unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
             if unlocked.ring is None:
@@ -284,6 +285,10 @@ class Vault:
                     "use 'mindward audit show', 'audit verify' and the other key-free checks")
             vault = cls(path, conn, unlocked, member, lock_fd, clock)
             vault._check_audit()
+            with storage.transaction(conn):
+                tagged = vault._check_consent_heads()
+                if tagged:
+                    vault._audit.append_many(tagged, vault._stamp())
         except BaseException:
             if conn is not None:
                 conn.close()
@@ -478,7 +483,7 @@ class Vault:
                     "created_at) VALUES (?, ?, ?, ?, ?)",
                     (pid, key.wrapped, key.commitment, tag, at))
                 self._insert_blob(info, at)
-                registry.add_consent(self._conn, version)
+                self._record_consent(version)
                 self._audit.append({"actor": self.member, "action": "participant.enrol",
                                     "subjects": [pid], "decision": "done",
                                     "details": _consent_details(version)}, at)
@@ -499,11 +504,44 @@ class Vault:
         version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when,
                                  previous=history[-1] if history else None)
         with storage.transaction(self._conn):
-            registry.add_consent(self._conn, version)
+            self._record_consent(version)
             self._audit.append({"actor": self.member, "action": "consent.amend", "subjects": [pid],
                                 "decision": "done", "details": _consent_details(version)},
                                utc_now(when))
         return {"participant_id": pid, **_consent_details(version)}
+
+    def _record_consent(self, version: Any) -> None:
+        """Add a consent version and re-tag the participant's newest one (inside a transaction)."""
+        registry.add_consent(self._conn, version)
+        registry.set_consent_tag(self._conn, version.participant_id, self._keys.consent_tag(
+            version.participant_id, version.number, version.digest))
+
+    def _check_consent_heads(self) -> list[dict[str, Any]]:
+        """Every living participant's newest consent against its keyed tag: a withdrawal deleted
+        or a status edited in the file stops the vault. Untagged heads (vaults from before the
+        tag) are tagged on trust and reported for the audit log."""
+        untagged, bad = [], []
+        for pid, tag, body in registry.consent_heads(self._conn):
+            if body is None:
+                continue
+            try:
+                head = registry.parse_consent(body)
+                expected = self._keys.consent_tag(pid, head.number, head.digest)
+            except (IntegrityError, InvalidInput, ValueError):
+                bad.append(pid)
+                continue
+            if tag is None:
+                untagged.append((pid, expected))
+            elif not crypto.constant_time_equal(tag.encode(), expected.encode()):
+                bad.append(pid)
+        if bad:
+            raise IntegrityError(f"the newest consent of {len(bad)} participant(s) was changed or "
+                                 "removed without the vault's keys (first: "
+                                 f"{sorted(bad)[0]}); restore the database from a backup")
+        for pid, expected in untagged:
+            registry.set_consent_tag(self._conn, pid, expected)
+        return ([{"actor": self.member, "action": "consent.tagged", "decision": "done",
+                  "details": {"participants": len(untagged)}}] if untagged else [])
 
     def consent_history(self, pid: str) -> list[dict[str, Any]]:
         """The consent versions, oldest first (kept after erasure: they name no one)."""

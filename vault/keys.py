@@ -237,6 +237,11 @@ class KeyRing:
         key = crypto.derive_key(self._secret, "policy-pin", self.vault_id.encode())
         return crypto.hmac_sha256(key, version.encode("ascii")).hex()
 
+    def consent_tag(self, pid: str, number: int, digest: str) -> str:
+        """Keyed tag of a participant's newest consent version (number and content digest)."""
+        key = crypto.derive_key(self._secret, "consent-head", self.vault_id.encode())
+        return crypto.hmac_sha256(key, f"{pid}\n{number}\n{digest}".encode("ascii")).hex()
+
     def lab_code_tag(self, code: str) -> str:
         """Keyed tag of a lab participant code: finds duplicates without storing the code."""
         key = crypto.derive_key(self._secret, "lab-code-tag", self.vault_id.encode())

@@ -65,10 +65,26 @@ def latest_consents(conn: sqlite3.Connection, pids: Sequence[str] | None
     return {pid: None if body is None else _parsed(body) for pid, body in rows}
 
 
+def consent_heads(conn: sqlite3.Connection) -> list[tuple[str, str | None, bytes | None]]:
+    """(pid, stored consent tag, body of the newest version or None) of living participants."""
+    return conn.execute(
+        "SELECT p.pid, p.consent_tag, c.body FROM participants p LEFT JOIN consents c "
+        "ON c.pid = p.pid AND c.number = (SELECT MAX(number) FROM consents WHERE pid = p.pid) "
+        "WHERE p.wrapped_key IS NOT NULL").fetchall()
+
+
+def set_consent_tag(conn: sqlite3.Connection, pid: str, tag: str) -> None:
+    conn.execute("UPDATE participants SET consent_tag = ? WHERE pid = ?", (tag, pid))
+
+
 @lru_cache(maxsize=262_144)
 def _parsed(body: bytes) -> ConsentVersion:
     """Stored versions are immutable, so the same bytes always parse to the same (frozen) model."""
     return ConsentVersion.from_json(body)
+
+
+def parse_consent(body: bytes) -> ConsentVersion:
+    return _parsed(body)
 
 
 def forget_parsed_consents() -> None:

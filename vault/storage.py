@@ -35,7 +35,10 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     # one row per participant; wrapped_key NULL once erased (cryptographic erase)
     "participants": (
         {"pid": str, "wrapped_key": bytes, "key_commitment": str, "lab_code_tag": str,
-         "date_offset": bytes, "created_at": str, "erased_at": str},
+         "date_offset": bytes, "created_at": str, "erased_at": str,
+         # keyed tag of the newest consent version: a version deleted or edited by anyone
+         # without the vault's keys no longer matches it (checked at open)
+         "consent_tag": str},
         "pid",
     ),
     # the policy sets this vault has applied, by content hash

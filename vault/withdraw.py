@@ -352,7 +352,7 @@ def _append_consent(v: Vault, latest: ConsentVersion, now: dt.datetime, purposes
     except Conflict:
         return {"version": latest.number, "digest": latest.digest,
                 "change": "none (consent had already ended for these purposes)"}, None
-    registry.add_consent(v._conn, version)
+    v._record_consent(version)
     return {"version": version.number, "digest": version.digest, "change": version.change}, version
 
 
