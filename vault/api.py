@@ -51,17 +51,18 @@ class SystemClock:
 SYSTEM_CLOCK = SystemClock()
 
 
-def moment(now: datetime | None = None, clock: Any = SYSTEM_CLOCK) -> datetime:
-    """`now`, or the clock: this module is the only reader of the clock."""
-    value = now if now is not None else clock.now()
+def moment(clock: Clock | None = None) -> datetime:
+    """What `clock` (the system's by default) reads, checked and in UTC: this module is the
+    only reader of the clock."""
+    value = (clock or SYSTEM_CLOCK).now()
     if not isinstance(value, datetime) or value.tzinfo is None:
         raise UsageError("timestamps must carry a time zone")
     return value.astimezone(UTC)
 
 
-def utc_now(now: datetime | None = None) -> str:
+def iso_utc(value: datetime) -> str:
     """ISO 8601 UTC to the second: the one timestamp format of the vault."""
-    return moment(now).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return value.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 def _require_vault(path: Path) -> None:
@@ -157,10 +158,7 @@ class Vault:
         return self._role
 
     def _stamp(self) -> str:
-        return utc_now(self.now())
-
-    def _engine_clock_changed(self) -> None:
-        """Tests that swap the injected clock object after open call this (tests/clock.py)."""
+        return iso_utc(self.now())
 
     def now(self) -> datetime:
         """The vault's clock (the system's, or the one a test injected at open): decisions,
@@ -169,7 +167,7 @@ class Vault:
         For members other than stewards it never reads earlier than the newest audit entry
         (less a small allowance for clock adjustment): a clock set back cannot reopen an
         expired consent."""
-        value = moment(None, self._clock)
+        value = moment(self._clock)
         if self._role != "steward":
             if value < self._floor - CLOCK_ALLOWANCE:
                 raise Conflict("this computer's clock reads earlier than the vault's newest audit "
@@ -212,7 +210,7 @@ class Vault:
         path = Path(path)
         if path.exists() and any(path.iterdir()):
             raise Conflict(f"{path} exists and is not empty; refusing to create a vault there")
-        at = utc_now(moment(None, clock or SYSTEM_CLOCK))
+        at = iso_utc(moment(clock))
         staging = path.parent / f".{path.name}.creating-{crypto.random_id(6)}"
         staging.mkdir(mode=0o700, parents=True)
         try:
@@ -279,7 +277,7 @@ class Vault:
             unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
             if unlocked.ring is None:
                 notes.add(conn, vault_id, member, unlocked, "vault.open", "refuse",
-                          utc_now(moment(None, clock or SYSTEM_CLOCK)))
+                          iso_utc(moment(clock)))
                 raise PolicyRefusal(
                     f"member '{member}' ({unlocked.role}) holds no key to participant data; "
                     "use 'mindward audit show', 'audit verify' and the other key-free checks")
@@ -307,7 +305,6 @@ class Vault:
         from vault.ingest import scrub_clear_metadata
         from vault.withdraw import _finish_interrupted
 
-        storage.add_missing_columns(self._conn)  # additive schema changes of this version
         scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
@@ -341,7 +338,7 @@ class Vault:
                 try:
                     at = self._stamp()
                 except Conflict:  # a clock set back mid-session: the session's last good time
-                    at = utc_now(self._floor)
+                    at = iso_utc(self._floor)
                 with storage.transaction(self._conn):
                     self._audit.sign_head(self._signing, at)
         finally:
@@ -475,7 +472,7 @@ class Vault:
         key = self._keys.new_participant_key(pid)
         blob_id = "b-" + crypto.random_id(12)
         info = self._store.write(key.key, pid, blob_id, "identity-contact", [identity.to_bytes()])
-        at = utc_now(when)
+        at = iso_utc(when)
         try:
             with storage.transaction(self._conn):
                 self._conn.execute(
@@ -507,7 +504,7 @@ class Vault:
             self._record_consent(version)
             self._audit.append({"actor": self.member, "action": "consent.amend", "subjects": [pid],
                                 "decision": "done", "details": _consent_details(version)},
-                               utc_now(when))
+                               iso_utc(when))
         return {"participant_id": pid, **_consent_details(version)}
 
     def _record_consent(self, version: Any) -> None:
@@ -658,7 +655,6 @@ class Vault:
         """
         from vault.ingest import ingest_eeg
 
-        self._require_steward("ingest.eeg")
         return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
                           keep_header_identity=keep_header_identity)
@@ -667,7 +663,6 @@ class Vault:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""
         from vault.ingest import ingest_scores
 
-        self._require_steward("ingest.scores")
         return ingest_scores(self, Path(path), kind)
 
     # -- exports ------------------------------------------------------------------------------------
@@ -700,7 +695,6 @@ class Vault:
         are not differentially private."""
         from vault.export_matrix import export_utility
 
-        self._require_steward("export.utility")
         return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
                               out_png=Path(out_png), **options)
 
@@ -722,7 +716,6 @@ class Vault:
 
     def withdraw_request(self, pid: str, *, received: date, scope: str = "full") -> dict[str, Any]:
         """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
-        self._require_steward("withdraw.request")
         from vault.withdraw import request_withdrawal
 
         return request_withdrawal(self, pid, received=received, scope=scope)
@@ -730,32 +723,27 @@ class Vault:
     def withdraw_pending(self) -> list[dict[str, Any]]:
         from vault.withdraw import pending
 
-        self._require_steward("withdraw.pending")
         return pending(self)
 
     def withdraw_process(self, target: str) -> dict[str, Any]:
         """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
-        self._require_steward("withdraw.process")
         from vault.withdraw import process
 
         return process(self, target)
 
     def withdraw_receipt(self, target: str) -> dict[str, Any]:
-        self._require_steward("withdraw.receipt")
         from vault.withdraw import receipt_of
 
         return receipt_of(self, target)
 
     def sweep(self, *, dry_run: bool = False) -> dict[str, Any]:
         """Erase, with receipts, everyone whose consent expired or retention ended."""
-        self._require_steward("sweep")
         from vault.withdraw import sweep
 
         return sweep(self, dry_run=dry_run)
 
     def report(self) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
-        self._require_steward("report")
         from vault.report import record_of_processing
 
         return record_of_processing(self)
@@ -913,7 +901,7 @@ def read_audit_log(path: Path, passphrase: str, *, member: str, start: int = 0,
             storage.add_missing_tables(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
             unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
-            at = utc_now(moment(None, clock or SYSTEM_CLOCK))
+            at = iso_utc(moment(clock))
             role = policy.roles.get(unlocked.role)
             allowed = role is not None and role.reads_audit
             entries = audit.AuditLog(conn, vault_id).entries(start, limit) if allowed else []

@@ -7,7 +7,8 @@ The flow of one export (every step audited):
 2. The policy engine decides the cohort (consent, roles, expiry, minimum
    cohort, budget, recipient, per-rating units); a refusal names counts per
    reason, never who.
-3. Every granted batch is read through the one door (`Vault.read_blob`).
+3. Every granted batch is read through the one door (`Vault._read_for_release`: plaintext
+   only to the release mechanism).
 4. The matrix (participants x items) is released with exact discrete Laplace
    or Gaussian noise (`vault.privacy.release_matrix`), or as participant-level
    DP statistics (`vault.privacy_aggregate.release_aggregate`).
