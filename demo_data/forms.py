@@ -6,7 +6,7 @@ import csv
 import json
 from pathlib import Path
 
-from vault.policyset import PolicySet
+from vault.policy.policyset import PolicySet
 
 FORM_VERSION = "NSL-2026-DISH/1"
 

@@ -25,9 +25,8 @@ from typing import Any
 
 import numpy as np
 from edfio import Edf, EdfAnnotation, EdfSignal, Patient, Recording
-
-from demo_data import eeg
-from demo_data.study import (
+from vault.demo_data import eeg
+from vault.demo_data.study import (
     DEFAULT_PARTICIPANTS,
     DEFAULT_SEED,
     EQUIPMENT_CODE,
@@ -46,6 +45,7 @@ from demo_data.study import (
     build_study,
     rng_for,
 )
+
 from vault.errors import UsageError, VaultError
 
 FORMAT_VERSION = 1

@@ -31,7 +31,7 @@ from tests.conftest import SHARED_VECTORS, shared_vectors_dir
 WYCHEPROOF_DIR = "wycheproof"
 WYCHEPROOF_COMMIT = "dac1dd4729fd1f8dd9e1e9f3dce51d783da6c166"
 
-# c2sp.org/chunked-encryption layout (the recipe in vault/crypto.py uses the same numbers)
+# c2sp.org/chunked-encryption layout (the recipe in vault/crypto/__init__.py uses the same numbers)
 C2SP_HEADER = 24 + 32  # salt || key commitment
 C2SP_CHUNK = 16384
 C2SP_TAG = 16

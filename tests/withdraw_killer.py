@@ -17,7 +17,8 @@ import sys
 
 from tests.clock import ManualClock, at
 from tests.conftest import TEST_PASSPHRASE
-from vault import Vault, withdraw
+from vault import Vault
+from vault.services import withdraw
 
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
 

@@ -22,7 +22,7 @@ from vault.api import (
     verify_proof,
     verify_receipt_file,
 )
-from vault.demo import run_demo
+from vault.cli.demo import run_demo
 from vault.errors import (
     EXIT_CODES,
     AuthenticationFailed,
@@ -35,9 +35,9 @@ from vault.errors import (
     UsageError,
     VaultError,
 )
-from vault.fsutil import check_output_path, write_output
-from vault.policyset import describe_policy, load_policy_dir
-from vault.strictjson import loads as load_json
+from vault.formats.strictjson import loads as load_json
+from vault.policy.policyset import describe_policy, load_policy_dir
+from vault.storage.files import check_output_path, write_output
 
 __all__ = [
     "EXIT_CODES",

@@ -1,5 +1,5 @@
 import sys
 
-from vault.cli import main
+from vault.cli.app import main
 
 sys.exit(main())

@@ -16,9 +16,11 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Protocol
 
-from vault import audit, crypto, notes, registry, storage, strictjson
-from vault.consent import parse_consent_form, record_consent, split_identity
-from vault.decide import CohortDecision, Request
+from vault import crypto
+from vault.access.blobs import BlobInfo, BlobStore
+from vault.access.keys import KeyRing, Unlocked
+from vault.audit import log as audit
+from vault.audit import notes
 from vault.errors import (
     Conflict,
     IntegrityError,
@@ -27,10 +29,13 @@ from vault.errors import (
     PolicyRefusal,
     UsageError,
 )
-from vault.keys import KeyRing, Unlocked
-from vault.policy import Grant, PolicyEngine
-from vault.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
-from vault.store import BlobInfo, BlobStore
+from vault.formats import strictjson
+from vault.policy.consent import parse_consent_form, record_consent, split_identity
+from vault.policy.decide import CohortDecision, Request
+from vault.policy.engine import Grant, PolicyEngine
+from vault.policy.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
+from vault.storage import db as storage
+from vault.storage import registry
 
 LOCK_NAME = "lock"
 _MEMBER_NAME = re.compile(r"[A-Za-z0-9._-]{1,40}")
@@ -182,7 +187,7 @@ class Vault:
 
     def _set_policy(self, policy: PolicySet) -> None:
         self._policy = policy
-        from vault.exports import pseudonyms
+        from vault.services.exports import pseudonyms
 
         self._engine = PolicyEngine(
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
@@ -302,15 +307,15 @@ class Vault:
             self.audit_flagged = self._audit.flag_unsigned(self._stamp())
 
     def _recover(self, *, upgraded: bool = False) -> None:
-        from vault.ingest import scrub_clear_metadata
-        from vault.withdraw import _finish_interrupted
+        from vault.services.ingest import scrub_clear_metadata
+        from vault.services.withdraw import _finish_interrupted
 
         scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
         known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
         self._store.create_dirs()
         self._store.recover(known)
         _finish_interrupted(self)  # an erasure killed between its commit and its clean-up
-        from vault.export_runs import recover
+        from vault.services.export_runs import recover
 
         recover(self)  # an export killed before it was in place: finished, refunded or voided
         entries = notes.fold(self._conn, self.vault_id, self._keys.member_key)
@@ -565,7 +570,7 @@ class Vault:
         """Who a request would include and why others are not; reads no data (audited).
 
         Stewards see vault ids; everyone else sees the purpose's pseudonyms."""
-        from vault.exports import pseudonyms
+        from vault.services.exports import pseudonyms
 
         decision = self._engine.decide(self.request(purpose, categories, participants=participants))
         if self.role == "steward":
@@ -607,7 +612,7 @@ class Vault:
         Yields (blob_id, subject, plaintext chunks) in the order given. The subject is the
         participant's pseudonym for the grant's purpose (stewards: their random vault id).
         Refused for purposes that require differential-privacy noise."""
-        from vault.exports import pseudonyms
+        from vault.services.exports import pseudonyms
 
         reads = self._admitted_reads(grant, blob_ids, for_noise=False)
         names = ({pid: pid for _, pid, _ in reads} if self.role == "steward"
@@ -649,11 +654,11 @@ class Vault:
                    ) -> dict[str, Any]:
         """De-identify and store an EDF/EDF+/BDF (or .npy/.npz + sidecar) recording, streamed.
 
-        `event_codes`: the annotations to keep (vault.event_codes; a list or one comma-separated
+        `event_codes`: the annotations to keep (vault.policy.event_codes; a list or one comma-separated
         string), default the policy set's. Ingesting the same content again stores nothing and
         returns the stored blob with `already_stored`.
         """
-        from vault.ingest import ingest_eeg
+        from vault.services.ingest import ingest_eeg
 
         return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
@@ -661,7 +666,7 @@ class Vault:
 
     def ingest_scores(self, path: Path, kind: str) -> dict[str, Any]:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""
-        from vault.ingest import ingest_scores
+        from vault.services.ingest import ingest_scores
 
         return ingest_scores(self, Path(path), kind)
 
@@ -674,7 +679,7 @@ class Vault:
         Sex and age band stay in the headers and participants.tsv only with
         `with_demographics`, which also asks the grant for the demographics category.
         """
-        from vault.export_eeg import export_eeg
+        from vault.services.export_eeg import export_eeg
 
         return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient,
                           with_demographics=with_demographics)
@@ -682,7 +687,7 @@ class Vault:
     def export_matrix(self, purpose: str, category: str, out: Path,
                       **options: Any) -> dict[str, Any]:
         """A pseudonymised, differentially private preference release (matrix or aggregate)."""
-        from vault.export_matrix import export_matrix
+        from vault.services.export_matrix import export_matrix
 
         return export_matrix(self, purpose=purpose, category=category, out=Path(out),
                              **options)
@@ -693,7 +698,7 @@ class Vault:
 
         Stewards only: the no-noise baseline is computed on the real data and the figures
         are not differentially private."""
-        from vault.export_matrix import export_utility
+        from vault.services.export_matrix import export_utility
 
         return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
                               out_png=Path(out_png), **options)
@@ -701,14 +706,14 @@ class Vault:
     def budget(self, purpose: str | None = None, *, show_participants: bool | None = None
                ) -> list[dict[str, Any]]:
         """Privacy budget spent per purpose (per participant for stewards)."""
-        from vault.budget import budget_report
+        from vault.services.budget import budget_report
 
         show = self.role == "steward" if show_participants is None else show_participants
         return budget_report(self, purpose, show_participants=show)
 
     def check_export(self, document: dict[str, Any]) -> dict[str, Any]:
         """Whether an export someone holds now contains withdrawn or expired participants."""
-        from vault.exports import check_export
+        from vault.services.exports import check_export
 
         return check_export(self, document)
 
@@ -716,35 +721,35 @@ class Vault:
 
     def withdraw_request(self, pid: str, *, received: date, scope: str = "full") -> dict[str, Any]:
         """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
-        from vault.withdraw import request_withdrawal
+        from vault.services.withdraw import request_withdrawal
 
         return request_withdrawal(self, pid, received=received, scope=scope)
 
     def withdraw_pending(self) -> list[dict[str, Any]]:
-        from vault.withdraw import pending
+        from vault.services.withdraw import pending
 
         return pending(self)
 
     def withdraw_process(self, target: str) -> dict[str, Any]:
         """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
-        from vault.withdraw import process
+        from vault.services.withdraw import process
 
         return process(self, target)
 
     def withdraw_receipt(self, target: str) -> dict[str, Any]:
-        from vault.withdraw import receipt_of
+        from vault.services.withdraw import receipt_of
 
         return receipt_of(self, target)
 
     def sweep(self, *, dry_run: bool = False) -> dict[str, Any]:
         """Erase, with receipts, everyone whose consent expired or retention ended."""
-        from vault.withdraw import sweep
+        from vault.services.withdraw import sweep
 
         return sweep(self, dry_run=dry_run)
 
     def report(self) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
-        from vault.report import record_of_processing
+        from vault.services.report import record_of_processing
 
         return record_of_processing(self)
 
@@ -1017,14 +1022,14 @@ def format_decision(summary: dict[str, Any]) -> str:
 
 def verify_export(out: Path, public_key: bytes) -> dict[str, Any]:
     """Check an export folder's manifest signature and file digests; no passphrase."""
-    from vault.export_matrix import verify_export_dir
+    from vault.services.export_matrix import verify_export_dir
 
     return verify_export_dir(Path(out), public_key)
 
 
 def verify_receipt_file(path: Path, public_key: bytes) -> tuple[bool, list[str]]:
     """Check a deletion receipt offline with the vault's public key alone."""
-    from vault.receipt import verify_text
+    from vault.audit.receipt import verify_text
 
     try:
         text = Path(path).read_bytes()
@@ -1034,18 +1039,18 @@ def verify_receipt_file(path: Path, public_key: bytes) -> tuple[bool, list[str]]
 
 
 def report_markdown(record: dict[str, Any]) -> str:
-    from vault.report import to_markdown
+    from vault.services.report import to_markdown
 
     return to_markdown(record)
 
 
 def format_budget(rows: list[dict[str, Any]]) -> str:
-    from vault.budget import format_report
+    from vault.services.budget import format_report
 
     return format_report(rows)
 
 
 def read_items(path: Path) -> list[str]:
-    from vault.export_matrix import read_items as read
+    from vault.services.export_matrix import read_items as read
 
     return read(Path(path))

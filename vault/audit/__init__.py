@@ -1,0 +1,1 @@
+"""The append-only Merkle log and every signed document (tree heads, manifests, receipts)."""

@@ -1,0 +1,1 @@
+"""Pure rules: the policy set, consent versions, decisions, and the engine that alone mints grants."""

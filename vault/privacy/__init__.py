@@ -1,0 +1,1 @@
+"""Pure differential privacy: samplers, mechanisms, the exact accountant, recommender and utility."""

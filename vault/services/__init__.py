@@ -1,0 +1,1 @@
+"""The use cases (ingest, exports, withdrawal, budget ledger, report)."""

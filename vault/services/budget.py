@@ -1,0 +1,316 @@
+"""The persisted privacy accountant: one exact ledger per participant and purpose.
+
+Rows of `budget_ledger` hold what a participant's data has spent for a purpose:
+the pure-DP epsilon and the zCDP rho as exact fractions written as text
+("3/10"), and the number of releases. The arithmetic is `vault.privacy.accountant`'s
+(`Ledger`, `Cost`, `Budget`, `within`): basic composition for pure DP, rho adds
+up under zCDP, and a ledger holding both is judged at the vault's fixed delta.
+
+Purpose hierarchy: a release under a narrower purpose is also processing under
+each broader one ("consent for the parent covers the child"), so it is charged
+to the requested purpose AND every ancestor, and it must fit every budget of
+that chain. The parent's budget therefore caps the whole family. A ledger row
+of a parent counts the releases of its children too.
+
+Delta: the policy schema has no delta. zCDP spending is judged at
+`ZCDP_DELTA` = 10**-6, a fixed constant of this vault written into every
+manifest. Pure-DP spending never needs a delta.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from fractions import Fraction
+from typing import TYPE_CHECKING, Any
+
+from vault.errors import PolicyRefusal, UsageError
+from vault.privacy.accountant import Budget, Cost, Ledger, remaining_epsilon, spent_epsilon, within
+from vault.storage import db as storage
+
+if TYPE_CHECKING:
+    from vault.api import Vault
+    from vault.policy.policyset import PolicySet
+
+ZCDP_DELTA = Fraction(1, 10**6)
+_AUDIT_CHUNK = 1000  # subjects per audit entry
+
+
+def budgets(policy: PolicySet, purpose: str) -> dict[str, Budget]:
+    """The per-participant budgets a release under `purpose` must fit: the purpose and
+    each ancestor that sets `epsilon_per_participant` (narrowest first)."""
+    if purpose not in policy.purposes:
+        return {}
+    out: dict[str, Budget] = {}
+    for name in policy.chain(purpose):
+        cap = policy.purposes[name].epsilon_per_participant
+        if cap is not None:
+            out[name] = Budget(Fraction(str(cap)), ZCDP_DELTA)
+    return out
+
+
+class _Memo:
+    """Participants mostly share a few ledger states: exact arithmetic once per state."""
+
+    def __init__(self) -> None:
+        self.parsed: dict[tuple[str, str, int], Ledger] = {}
+        # keyed by object identity (hashing Fractions per lookup is the slow part); each entry
+        # keeps its objects alive, so an id is never reused while the memo lives
+        self.fits: dict[tuple[int, int, int], tuple[bool, object]] = {}
+        self.left: dict[tuple[int, int], tuple[Fraction, object]] = {}
+
+    def ledger(self, epsilon: str, rho: str, releases: int) -> Ledger:
+        key = (epsilon, rho, int(releases))
+        found = self.parsed.get(key)
+        if found is None:
+            found = self.parsed[key] = Ledger(Fraction(epsilon), Fraction(rho), int(releases))
+        return found
+
+    def within(self, ledger: Ledger, cost: Cost, budget: Budget) -> bool:
+        key = (id(ledger), id(cost), id(budget))
+        found = self.fits.get(key)
+        if found is None:
+            found = self.fits[key] = (within(ledger.spend(cost), budget), (ledger, cost, budget))
+        return found[0]
+
+    def remaining(self, ledger: Ledger, budget: Budget) -> Fraction:
+        key = (id(ledger), id(budget))
+        found = self.left.get(key)
+        if found is None:
+            found = self.left[key] = (remaining_epsilon(ledger, budget), (ledger, budget))
+        return found[0]
+
+
+def _ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
+            memo: _Memo | None = None) -> dict[str, Ledger]:
+    """Stored ledgers for `purpose` (all rows, or those of `pids`); absent means nothing spent."""
+    parse = (memo or _Memo()).ledger
+    sql = "SELECT pid, epsilon, rho, releases FROM budget_ledger WHERE purpose = ?"
+    if pids is None:
+        return {pid: parse(e, r, n) for pid, e, r, n in v._conn.execute(sql, (purpose,))}
+    rows = storage.rows_in(v._conn, sql + " AND pid", pids, (purpose,))
+    return {pid: parse(e, r, n) for pid, e, r, n in rows}
+
+
+def _chain_ledgers(v: Vault, purpose: str, pids: Sequence[str],
+                  memo: _Memo | None = None) -> dict[str, dict[str, Ledger]]:
+    """{budgeted purpose of the chain: {pid: ledger}} for `pids`."""
+    return {name: _ledgers(v, name, pids, memo) for name in budgets(v.policy, purpose)}
+
+
+def affordable(v: Vault, purpose: str, costs: Mapping[str, Cost], memo: _Memo | None = None,
+               held: Mapping[str, Mapping[str, Ledger]] | None = None) -> dict[str, bool]:
+    """Exactly: would each participant's cost fit every budget of the purpose's chain?"""
+    plan = budgets(v.policy, purpose)
+    if not plan:
+        return dict.fromkeys(costs, False)
+    memo = memo or _Memo()
+    held = held if held is not None else _chain_ledgers(v, purpose, list(costs), memo)
+    empty = Ledger()
+    return {pid: all(memo.within(held[name].get(pid, empty), costs[pid], budget)
+                     for name, budget in plan.items()) for pid in costs}
+
+
+def _float_below(value: Fraction) -> float:
+    """The largest float <= value (for the decision engine's float comparison)."""
+    f = float(value)
+    return math.nextafter(f, -math.inf) if Fraction(f) > value else f
+
+
+_ZERO = Fraction(0)  # one object for the lifetime of the process (it keys a memo by identity)
+
+
+def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], request_epsilon: float,
+                         scale: Mapping[str, int] | None = None) -> dict[str, float]:
+    """What `decide(budget_remaining=...)` needs, agreeing with the exact check.
+
+    The decision engine compares a float per participant with the request's
+    float epsilon (per privacy unit). This returns, per participant, their
+    remaining pure epsilon (divided by `scale[pid]`, the number of units a
+    rating-unit release charges them for), rounded down, but nudged so that
+    the float comparison gives exactly the verdict of `affordable`: never
+    above what is left for someone who cannot afford the release, never below
+    `request_epsilon` for someone who can.
+    """
+    memo = _Memo()
+    plan = budgets(v.policy, purpose)
+    held = _chain_ledgers(v, purpose, list(costs), memo)
+    verdict = affordable(v, purpose, costs, memo, held)
+    below_request = math.nextafter(request_epsilon, -math.inf)
+    empty = Ledger()
+    floats: dict[tuple[int, int], float] = {}  # by identity: `left` objects live in the memo
+    out: dict[str, float] = {}
+    for pid in costs:
+        left = min((memo.remaining(held[name].get(pid, empty), b) for name, b in plan.items()),
+                   default=_ZERO)
+        units = (scale or {}).get(pid, 1) or 1
+        value = floats.get((id(left), units))
+        if value is None:
+            value = floats[(id(left), units)] = _float_below(left / units)
+        out[pid] = max(value, request_epsilon) if verdict[pid] else min(value, below_request)
+    return out
+
+
+def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str) -> None:
+    """Spend `costs` from every budgeted purpose of the chain, in one transaction (audited).
+
+    Re-checks every participant inside the transaction and refuses the whole
+    charge (PolicyRefusal, nothing written) if anyone would exceed a budget.
+    Every call spends again: the same request twice is charged twice.
+    """
+    v._require_steward("budget.charge")
+    now = v.now()
+    at = now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    with storage.transaction(v._conn):
+        _charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+
+
+def _require_transaction(v: Vault) -> None:
+    """Ledger writes and their audit entry commit together or not at all: never in autocommit."""
+    if not v._conn.in_transaction:
+        raise UsageError("the budget ledger is written only inside a transaction with its audit entry")
+
+
+def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
+                          at: str) -> list[str]:
+    """`charge` inside the caller's open transaction; returns the purposes charged."""
+    _require_transaction(v)
+    plan = budgets(v.policy, purpose)
+    if not plan:
+        raise PolicyRefusal(f"purpose {purpose} sets no per-participant privacy budget")
+    pids = list(costs)
+    updates: list[tuple[str, str, str, str, int]] = []
+    memo = _Memo()
+    after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
+    empty = Ledger()
+    for name, budget in plan.items():
+        held = _ledgers(v, name, pids, memo)
+        for pid in pids:
+            old, cost = held.get(pid, empty), costs[pid]
+            if not memo.within(old, cost, budget):
+                raise PolicyRefusal("the release would exceed a participant's privacy budget; "
+                                    "nothing was charged")
+            known = after.get((id(old), id(cost)))
+            if known is None:
+                spent = old.spend(cost)
+                known = after[(id(old), id(cost))] = (
+                    (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
+            updates.append((pid, name, *known[0]))
+    v._conn.executemany(
+        "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
+        "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
+        "rho = excluded.rho, releases = excluded.releases", updates)
+    entries, ordered = [], sorted(pids)
+    for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
+        chunk = ordered[start : start + _AUDIT_CHUNK]
+        distinct = {(c.epsilon, c.rho) for c in (costs[p] for p in chunk)}
+        entries.append({"actor": v.member, "action": "budget.charge", "purpose": purpose,
+                        "subjects": chunk, "decision": "done",
+                        "details": {"export": export_id, "charged_purposes": list(plan),
+                                    "costs": sorted([str(e), str(r)] for e, r in distinct)}})
+    v._audit.append_many(entries, at)
+    return list(plan)
+
+
+def _refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
+                          costs: Mapping[str, Cost], *, export_id: str, at: str) -> None:
+    """Credit back exactly what `_charge_in_transaction` spent for a release that never left the
+    vault (one release fewer; a ledger back at zero releases is removed). Audited."""
+    _require_transaction(v)
+    memo = _Memo()
+    updates: list[tuple[str, str, int, str, str]] = []
+    gone: list[tuple[str, str]] = []
+    for name in purposes:
+        held = _ledgers(v, name, list(costs), memo)
+        for pid, cost in costs.items():
+            old = held.get(pid)
+            if old is None:  # erased since (withdrawal deletes ledger rows): nothing to credit
+                continue
+            epsilon, rho = old.epsilon - cost.epsilon, old.rho - cost.rho
+            releases = old.releases - 1
+            if epsilon < 0 or rho < 0 or releases < 0:  # the ledger was altered: credit nothing
+                continue
+            if releases == 0 and epsilon == 0 and rho == 0:
+                gone.append((pid, name))
+            else:
+                updates.append((str(epsilon), str(rho), releases, pid, name))
+    v._conn.executemany("UPDATE budget_ledger SET epsilon = ?, rho = ?, releases = ? "
+                        "WHERE pid = ? AND purpose = ?", updates)
+    v._conn.executemany("DELETE FROM budget_ledger WHERE pid = ? AND purpose = ?", gone)
+    ordered = sorted(costs)
+    v._audit.append_many([
+        {"actor": v.member, "action": "budget.refund", "purpose": purpose,
+         "subjects": ordered[start : start + _AUDIT_CHUNK], "decision": "done",
+         "details": {"export": export_id, "refunded_purposes": list(purposes),
+                     "reason": "the release never left the vault"}}
+        for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK)], at)
+
+
+def budget_report(v: Vault, purpose: str | None = None, *,
+                  show_participants: bool = False) -> list[dict[str, Any]]:
+    """Per budgeted purpose: how much of it the living participants have spent.
+
+    Counts and exact totals only; per-participant rows (`show_participants`) for
+    stewards only. "spent" is the epsilon the ledger amounts to at the vault's
+    delta (pure epsilon plus the zCDP conversion of rho).
+    """
+    if show_participants and v.role != "steward":
+        raise PolicyRefusal(f"member '{v.member}' ({v.role}) may not see per-participant budgets: "
+                            "stewards only")
+    names = [purpose] if purpose is not None else sorted(v.policy.purposes)
+    if purpose is not None and purpose not in v.policy.purposes:
+        raise UsageError(f"unknown purpose '{purpose}'")
+    living = [r[0] for r in v._conn.execute(
+        "SELECT pid FROM participants WHERE wrapped_key IS NOT NULL ORDER BY pid")]
+    out: list[dict[str, Any]] = []
+    for name in names:
+        cap = v.policy.purposes[name].epsilon_per_participant
+        if cap is None:
+            continue
+        budget = Budget(Fraction(str(cap)), ZCDP_DELTA)
+        held = _ledgers(v, name, living)
+        spent = {pid: spent_epsilon(led, budget.delta) for pid, led in held.items()}
+        left = {pid: remaining_epsilon(led, budget) for pid, led in held.items()}
+        row: dict[str, Any] = {
+            "purpose": name, "budget_epsilon": str(budget.epsilon), "delta": str(budget.delta),
+            "participants": len(living), "participants_charged": len(held),
+            "releases_max": max((led.releases for led in held.values()), default=0),
+            "spent_min": _s(min(spent.values(), default=_ZERO) if len(held) == len(living)
+                            else Fraction(0)),
+            "spent_max": _s(max(spent.values(), default=_ZERO)),
+            "spent_total": _s(sum(spent.values(), Fraction(0))),
+            "remaining_min": _s(min(left.values(), default=budget.epsilon)),
+            "participants_exhausted": sum(1 for x in left.values() if x == 0),
+        }
+        if show_participants:
+            row["by_participant"] = [
+                {"participant_id": pid, "epsilon": str(held[pid].epsilon), "rho": str(held[pid].rho),
+                 "releases": held[pid].releases, "spent": _s(spent[pid]), "remaining": _s(left[pid])}
+                for pid in sorted(held)]
+        out.append(row)
+    return out
+
+
+def _s(value: Fraction) -> str:
+    return str(value)
+
+
+def format_report(rows: Iterable[Mapping[str, Any]]) -> str:
+    """Plain text for `mindward budget`."""
+    lines = []
+    for r in rows:
+        lines.append(f"{r['purpose']}: budget epsilon {r['budget_epsilon']} per participant "
+                     f"(zCDP judged at delta {r['delta']})")
+        lines.append(f"  {r['participants_charged']} of {r['participants']} participants charged, "
+                     f"up to {r['releases_max']} release(s); spent min {r['spent_min']}, "
+                     f"max {r['spent_max']}, total {r['spent_total']}; lowest remaining "
+                     f"{r['remaining_min']}; exhausted {r['participants_exhausted']}")
+        for p in r.get("by_participant", []):
+            lines.append(f"  {p['participant_id']}  spent {p['spent']}  remaining {p['remaining']}  "
+                         f"({p['releases']} release(s))")
+    if not lines:
+        lines.append("no purpose of the policy sets a per-participant privacy budget")
+    lines.append("Caution: a budget bounds what differential privacy promises, no more; whether it "
+                 "is enough is for your ethics board and DPO to decide.")
+    return "\n".join(lines)

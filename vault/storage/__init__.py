@@ -1,0 +1,1 @@
+"""SQLite and ciphertext files, never keys: schema, SQL, atomic files."""
