@@ -80,7 +80,7 @@ def build_synthetic(v: Vault, *, n_participants: int, n_items: int, density: flo
     with storage.transaction(v._conn):
         keys = {}
         for pid, kind in zip(pids, kinds, strict=True):
-            key = v._keys.new_participant_key(pid)
+            key = v._door._ring.new_participant_key(pid)
             keys[pid] = key.key
             v._conn.execute("INSERT INTO participants (pid, wrapped_key, key_commitment, created_at) "
                             "VALUES (?, ?, ?, ?)", (pid, key.wrapped, key.commitment, at))
@@ -101,15 +101,15 @@ def build_synthetic(v: Vault, *, n_participants: int, n_items: int, density: flo
         if not rows:
             continue
         body = scores.canonical(rows)
-        info = v._store.write(keys[pid], pid, "b-" + crypto.random_id(12), CATEGORY, [body])
-        tag = v._keys.participant_tag(v._conn, pid, "score-batch", CATEGORY.encode() + body)
+        info = v._door._blobs.write(keys[pid], pid, "b-" + crypto.random_id(12), CATEGORY, [body])
+        tag = v._door._ring.participant_tag(v._conn, pid, "score-batch", CATEGORY.encode() + body)
         written.append((info, pid, tag, len(rows)))
         flat_pid.append(np.full(cols.size, i))
         flat_item.append(cols)
         flat_value.append(values)
     with storage.transaction(v._conn):
         for info, pid, tag, n in written:
-            v._insert_blob(info, at)
+            v._context().insert_blob(info, at)
             v._conn.execute("INSERT INTO score_batches (blob_id, pid, category, batch_tag, rows) "
                             "VALUES (?, ?, ?, ?, ?)", (info.blob_id, pid, CATEGORY, tag, n))
         v._audit.append({"actor": v.member, "action": f"bench.ingest.{CATEGORY}", "decision": "done",
@@ -152,7 +152,7 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
 
     out: dict[str, float] = {}
     purpose = "recommender-training"
-    t, batches = _timed(lambda: _candidates(v, CATEGORY))
+    t, batches = _timed(lambda: _candidates(v._context(), CATEGORY))
     out["candidates_s"] = t
     n_rows = {pid: sum(n for _, n in b) for pid, b in batches.items()}
     per_rating = unit == "rating"
@@ -160,15 +160,16 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
     scaled = {n: one.times(n) for n in set(n_rows.values())} if per_rating else {}
     costs = {p: scaled[n_rows[p]] if per_rating else one for p in batches}
     t, remaining = _timed(lambda: budget.remaining_for_decide(
-        v, purpose, costs, epsilon, scale=n_rows if per_rating else None))
+        v._context(), purpose, costs, epsilon, scale=n_rows if per_rating else None))
     out["ledger_s"] = t
-    t, grant = _timed(lambda: v._authorize_release(purpose, [CATEGORY], export=True, epsilon=epsilon,
+    ctx = v._context()
+    t, grant = _timed(lambda: ctx.authorize_release(purpose, [CATEGORY], export=True, epsilon=epsilon,
                                           privacy_unit=unit, participants=tuple(batches),
                                           budget_remaining=remaining))
     out["decide_s"] = t
-    t, cohort = _timed(lambda: _read_cohort(v, grant, batches, now))
+    t, cohort = _timed(lambda: _read_cohort(v._context(), grant, batches, now))
     out["read_through_door_s"] = t
-    t, labels = _timed(lambda: exports.pseudonyms(v, purpose, cohort.pids))
+    t, labels = _timed(lambda: exports.pseudonyms(v._context(), purpose, cohort.pids))
     out["pseudonyms_s"] = t
     items = cohort.items
     order = sorted(cohort.pids, key=labels.__getitem__)
@@ -180,7 +181,7 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
                                                  epsilon=Fraction(str(epsilon)), rho=None))
     out["noise_s"] = t
     spent = {p: costs[p] for p in order}
-    t, _ = _timed(lambda: budget.charge(v, purpose, spent, export_id="x-bench"))
+    t, _ = _timed(lambda: budget.charge(v._context(), purpose, spent, export_id="x-bench"))
     out["charge_s"] = t
     target = Path(tempfile.mkdtemp(prefix="mindward-export-phase-"))
     try:
@@ -201,15 +202,16 @@ def _door_parts(v: Vault, now: dt.datetime, n: int) -> dict[str, float]:
     from vault.services.export_matrix import _candidates
     from vault.storage import registry
 
-    batches = _candidates(v, CATEGORY)
+    batches = _candidates(v._context(), CATEGORY)
     grant = v.authorize("primary-analysis", [CATEGORY], participants=tuple(batches))
-    blobs = [(pid, b[0][0]) for pid, b in batches.items() if pid in v._grant_participants(grant)][:n]
+    covered = v._context().grant_participants(grant)
+    blobs = [(pid, b[0][0]) for pid, b in batches.items() if pid in covered][:n]
     t_door, _ = _timed(lambda: [b"".join(v.read_blob(grant, blob)) for _, blob in blobs])
 
     def decrypt_only() -> None:
         for pid, blob in blobs:
-            key = v._keys.participant_key(v._conn, pid)
-            b"".join(v._store._decrypt(key, pid, blob))
+            key = v._door._ring.participant_key(v._conn, pid)
+            b"".join(v._door._blobs._decrypt(key, pid, blob))
 
     t_decrypt, _ = _timed(decrypt_only)
     t_admit, _ = _timed(lambda: [v._engine.admit_many(grant, [(pid, CATEGORY)]) for pid, _ in blobs])
@@ -263,7 +265,7 @@ def bench_export(*, n_participants: int = 10_000, n_items: int = 2_000, density:
             for i in range(repeats):  # interleaved; the fastest of each (a shared machine's noise)
                 bases.append(_baseline(data, workdir))
                 registry.forget_parsed_consents()  # every export parses consents as a new process
-                t, summary = _timed(lambda i=i: export_matrix(v, out=workdir / f"export-{i}",
+                t, summary = _timed(lambda i=i: export_matrix(v._context(), out=workdir / f"export-{i}",
                                                                **request))
                 exports.append(t)
                 cohorts.add(summary["cohort_size"])

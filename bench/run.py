@@ -82,10 +82,10 @@ def _vault_rates(v: Vault, data: bytes, total: int) -> tuple[float, float]:
         holder["id"] = v.put_blob(pid, "bench", _source(data, total)).blob_id
 
     t_store = _timed(store)
-    key = v._keys.participant_key(v._conn, pid)  # the bench measures the store, not the door
+    key = v._door._ring.participant_key(v._conn, pid)  # the bench measures the store, not the door
 
     def read() -> None:
-        for _ in v._store._decrypt(key, pid, holder["id"]):
+        for _ in v._door._blobs._decrypt(key, pid, holder["id"]):
             pass
 
     return total / t_store / MIB, total / _timed(read) / MIB

@@ -45,11 +45,11 @@ def _participant(v: Vault, total: int, blobs: int, block: bytes) -> str:
 
 def _erase_seconds(v: Vault, pid: str, now: dt.datetime) -> tuple[float, float, dict[str, object]]:
     """(erase seconds, reclaim seconds, receipt): the erasure, then unlinking the files."""
-    withdraw.request_withdrawal(v, pid, received=now.date())
+    withdraw.request_withdrawal(v._context(), pid, received=now.date())
     start = time.perf_counter()
-    result = withdraw.process(v, pid, reclaim_space=False)
+    result = withdraw.process(v._context(), pid, reclaim_space=False)
     erased = time.perf_counter()
-    withdraw.reclaim(v)
+    withdraw.reclaim(v._context())
     return erased - start, time.perf_counter() - erased, result["receipt"]
 
 

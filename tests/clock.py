@@ -32,3 +32,8 @@ def at(v: Any, when: dt.datetime) -> Any:
         clock = v._clock = ManualClock(when)  # the engine reads the vault's clock attribute
     clock.set(when)
     return v
+
+
+def ctx_at(v: Any, when: dt.datetime) -> Any:
+    """`at(v, when)`, as the context a use case gets (for calling services directly)."""
+    return at(v, when)._context()

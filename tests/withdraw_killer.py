@@ -15,7 +15,7 @@ import os
 import signal
 import sys
 
-from tests.clock import ManualClock, at
+from tests.clock import ManualClock, at, ctx_at
 from tests.conftest import TEST_PASSPHRASE
 from vault import Vault
 from vault.services import withdraw
@@ -51,7 +51,7 @@ def main(path: str, target: str, mode: str, n: int) -> None:
         v._conn.set_trace_callback(step)
     else:
         print("ready", flush=True)
-    withdraw.process(at(v, NOW), target)
+    withdraw.process(ctx_at(v, NOW), target)
     v._conn.set_trace_callback(None)
     if mode == "count":
         print(steps[0], flush=True)

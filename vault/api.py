@@ -9,7 +9,7 @@ import re
 import shutil
 import sqlite3
 import time
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -17,8 +17,8 @@ from types import MappingProxyType
 from typing import Any, Protocol
 
 from vault import crypto
-from vault.access.blobs import BlobInfo, BlobStore
-from vault.access.keys import KeyRing, Unlocked
+from vault.access import door as access
+from vault.access.door import BlobInfo, Opened
 from vault.audit import log as audit
 from vault.audit import notes
 from vault.errors import (
@@ -34,8 +34,10 @@ from vault.policy.consent import parse_consent_form, record_consent, split_ident
 from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
+from vault.services.context import Context
 from vault.storage import db as storage
-from vault.storage import registry
+from vault.storage import lineage, participants, registry
+from vault.times import iso_utc, parse_utc
 
 LOCK_NAME = "lock"
 _MEMBER_NAME = re.compile(r"[A-Za-z0-9._-]{1,40}")
@@ -65,11 +67,6 @@ def moment(clock: Clock | None = None) -> datetime:
     return value.astimezone(UTC)
 
 
-def iso_utc(value: datetime) -> str:
-    """ISO 8601 UTC to the second: the one timestamp format of the vault."""
-    return value.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
 def _require_vault(path: Path) -> None:
     if not (path / storage.DB_NAME).is_file():
         raise NotFound(f"no vault at {path} (create one with 'mindward init')")
@@ -96,7 +93,7 @@ def _newest_entry_time(conn: sqlite3.Connection) -> datetime:
     row = conn.execute("SELECT entry FROM audit_log ORDER BY seq DESC LIMIT 1").fetchone()
     try:
         stamp = json.loads(row[0])["at"] if row else None
-        return datetime.strptime(stamp, "%Y-%m-%dT%H:%M:%SZ").replace(tzinfo=UTC)
+        return parse_utc(stamp)
     except (ValueError, TypeError, KeyError):
         return datetime.min.replace(tzinfo=UTC)
 
@@ -117,21 +114,19 @@ class Vault:
     `member` and `role` are fixed when the vault is opened (the role is bound to the
     member's key slot); decisions read the vault's own clock."""
 
-    def __init__(self, path: Path, conn: sqlite3.Connection, unlocked: Unlocked, member: str,
+    def __init__(self, path: Path, conn: sqlite3.Connection, unlocked: Opened, member: str,
                  lock_fd: int, clock: Clock | None = None) -> None:
-        if unlocked.ring is None:
+        if unlocked.door is None:
             raise UsageError("this member's slot opens no vault keys")
-        keys = unlocked.ring
         self.path = path
         self._clock: Clock = clock or SYSTEM_CLOCK
         self._conn = conn
-        self._keys = keys
+        self._door = unlocked.door
         self._member = member
         self._role = unlocked.role
         self._lock_fd = lock_fd
-        self.vault_id = keys.vault_id
-        self._signing = keys.signing_key(bytes.fromhex(storage.get_meta(conn, "wrapped_signing_key")))
-        self._store = BlobStore(path, self.vault_id)
+        self.vault_id = self._door.vault_id
+        self._signing = self._door.signer()
         self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing, stamp=self._stamp)
         # rows this open found written without the key, now flagged (None: none found)
         self.audit_flagged: dict[str, Any] | None = None
@@ -144,7 +139,7 @@ class Vault:
         `apply_policy`; a vault from before the tag gets one now, on trust, audited at recovery)."""
         version = storage.get_meta(self._conn, "policy_version")
         row = self._conn.execute("SELECT value FROM meta WHERE key = 'policy_pin'").fetchone()
-        expected = self._keys.policy_pin(version)
+        expected = self._door.policy_pin(version)
         if row is None:
             self._pin_added = True
             return version
@@ -187,11 +182,16 @@ class Vault:
 
     def _set_policy(self, policy: PolicySet) -> None:
         self._policy = policy
-        from vault.services.exports import pseudonyms
-
         self._engine = PolicyEngine(
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
-            self.now, lambda purpose, pids: pseudonyms(self, purpose, pids))
+            self.now, self._door.pseudonyms)
+
+    def _context(self) -> Context:
+        """What one use case is given (never the Vault itself)."""
+        return Context(conn=self._conn, door=self._door, audit=self._audit, engine=self._engine,
+                       member=self._member, role=self._role, policy=self._policy,
+                       vault_id=self.vault_id, path=self.path, signer=self._signing,
+                       clock=self.now)
 
     def _audit_batch(self, entries: list[dict[str, Any]]) -> None:
         """Append entries in their own transaction, stamped by the vault's clock."""
@@ -230,28 +230,18 @@ class Vault:
 
     @staticmethod
     def _create(root: Path, passphrase: str, member: str, at: str, policy: PolicySet) -> None:
-        vault_id = crypto.random_id(16)
-        master = crypto.new_key()
-        ring = KeyRing(vault_id, master)
-        signing = crypto.SigningKey.generate()
-        secret = crypto.new_key()
         conn = storage.connect(root)
         try:
             storage.create_schema(conn)
-            BlobStore(root, vault_id).create_dirs()
             with storage.transaction(conn):
+                vault_id, signing = access.new_vault_keys(root, conn, member, passphrase, at,
+                                                          policy.version)
                 for key, value in {
-                    "vault_id": vault_id, "schema_version": str(storage.SCHEMA_VERSION),
-                    "created_at": at, "signing_public_key": signing.public_key.hex(),
-                    "wrapped_signing_key": ring.wrap_signing_key(signing).hex(),
-                    "wrapped_vault_secret": ring.wrap_secret(secret).hex(),
+                    "schema_version": str(storage.SCHEMA_VERSION), "created_at": at,
                     "policy_version": policy.version,
                 }.items():
                     storage.set_meta(conn, key, value)
-                ring.load_secret(ring.wrap_secret(secret))
-                storage.set_meta(conn, "policy_pin", ring.policy_pin(policy.version))
                 registry.store_policy(conn, policy, at)
-                ring.add_slot(conn, member, "steward", passphrase, at)
                 log = audit.AuditLog(conn, vault_id, signer=signing)
                 log.append({"actor": member, "action": "vault.init", "decision": "done",
                             "details": {"fingerprint": crypto.fingerprint(signing.public_key),
@@ -279,8 +269,8 @@ class Vault:
             storage.add_missing_tables(conn)
             storage.add_missing_columns(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
-            unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
-            if unlocked.ring is None:
+            unlocked = access.unlock(conn, path, vault_id, member, passphrase, _reads_data(policy))
+            if unlocked.door is None:
                 notes.add(conn, vault_id, member, unlocked, "vault.open", "refuse",
                           iso_utc(moment(clock)))
                 raise PolicyRefusal(
@@ -310,15 +300,14 @@ class Vault:
         from vault.services.ingest import scrub_clear_metadata
         from vault.services.withdraw import _finish_interrupted
 
-        scrub_clear_metadata(self)  # recording metadata earlier versions kept in clear
-        known = {r[0] for r in self._conn.execute("SELECT blob_id FROM blobs")}
-        self._store.create_dirs()
-        self._store.recover(known)
-        _finish_interrupted(self)  # an erasure killed between its commit and its clean-up
+        context = self._context()
+        scrub_clear_metadata(context)  # recording metadata earlier versions kept in clear
+        self._door.recover_files(participants.blob_ids(self._conn))
+        _finish_interrupted(context)  # an erasure killed between its commit and its clean-up
         from vault.services.export_runs import recover
 
-        recover(self)  # an export killed before it was in place: finished, refunded or voided
-        entries = notes.fold(self._conn, self.vault_id, self._keys.member_key)
+        recover(context)  # an export killed before it was in place: finished, refunded or voided
+        entries = notes.fold(self._conn, self.vault_id, self._door.member_key)
         if upgraded:
             entries.append({"actor": self.member, "action": "member.slot-bound", "decision": "done",
                             "details": {"member": self.member, "role": self.role}})
@@ -330,7 +319,7 @@ class Vault:
                 self._audit.append_many(entries, self._stamp())
                 notes.clear(self._conn)
                 if self._pin_added:
-                    storage.set_meta(self._conn, "policy_pin", self._keys.policy_pin(self.policy.version))
+                    storage.set_meta(self._conn, "policy_pin", self._door.policy_pin(self.policy.version))
                     self._pin_added = False
 
     def close(self) -> None:
@@ -376,44 +365,32 @@ class Vault:
         self._require_steward("vault.rekey")
         _check_passphrase(new_passphrase)
         at = self._stamp()
-        wrapped_signing = bytes.fromhex(storage.get_meta(self._conn, "wrapped_signing_key"))
         with storage.transaction(self._conn):
-            others = self._conn.execute(
-                "SELECT COUNT(*) FROM keyslots WHERE member != ?", (self.member,)).fetchone()[0]
-            fresh, rewrapped, secret = self._keys.rekeyed(
-                self._conn, self.member, self.role, new_passphrase, wrapped_signing, at)
-            storage.set_meta(self._conn, "wrapped_signing_key", rewrapped.hex())
-            storage.set_meta(self._conn, "wrapped_vault_secret", secret.hex())
-            count = self._conn.execute(
-                "SELECT COUNT(*) FROM participants WHERE wrapped_key IS NOT NULL").fetchone()[0]
+            others = participants.count_other_slots(self._conn, self.member)
+            swap = self._door.rekey(self.member, self.role, new_passphrase, at)
+            count = participants.count(self._conn)
             self._audit.append({"actor": self.member, "action": "vault.rekey", "decision": "done",
                                 "details": {"keys_rewrapped": count, "slots_dropped": others}}, at)
-        self._keys = fresh
+        swap()
         return {"keys_rewrapped": count, "member_slots_dropped": others}
 
     # -- participants and blobs -----------------------------------------------------------------
 
     def _require_steward(self, action: str = "steward-only") -> None:
         """Refuse (audited) unless this member is a steward."""
-        if self.role != "steward":
-            self._refuse_role(action)
+        self._context().require_steward(action)
 
     def _refuse_role(self, action: str) -> None:
-        self._audit_batch([{"actor": self.member, "action": action, "decision": "refuse",
-                            "reasons": ["role-not-allowed"], "details": {"role": self.role}}])
-        raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not do this: "
-                            f"{action} is for stewards only")
+        self._context().refuse_role(action)
 
     def new_participant(self) -> str:
         """Create a participant with a fresh data key; returns their random id."""
         self._require_steward("participant.create")
         at = self._stamp()
         pid = crypto.random_id(16)
-        key = self._keys.new_participant_key(pid)
+        key = self._door.new_participant(pid)
         with storage.transaction(self._conn):
-            self._conn.execute(
-                "INSERT INTO participants (pid, wrapped_key, key_commitment, created_at) "
-                "VALUES (?, ?, ?, ?)", (pid, key.wrapped, key.commitment, at))
+            participants.insert_participant(self._conn, pid, key.wrapped, key.commitment, at)
             self._audit.append({"actor": self.member, "action": "participant.create",
                                 "subjects": [pid], "decision": "done"}, at)
         return pid
@@ -423,18 +400,17 @@ class Vault:
         """Encrypt and store a blob for `pid`: file first, then row and audit entry at once."""
         self._require_steward("blob.store")
         at = self._stamp()
-        key = self._keys.participant_key(self._conn, pid)
-        blob_id = "b-" + crypto.random_id(12)
-        info = self._store.write(key, pid, blob_id, kind, chunks)
+        info = self._door.write_blob(pid, kind, chunks)
+        blob_id = info.blob_id
         try:
             with storage.transaction(self._conn):
-                self._insert_blob(info, at)
+                participants.insert_blob(self._conn, info, at)
                 self._audit.append({"actor": self.member, "action": "blob.store",
                                     "subjects": [pid], "decision": "done",
                                     "details": {"blob": blob_id, "kind": kind, **(details or {})}},
                                    at)
         except BaseException:
-            self._store.discard(blob_id)
+            self._door.discard(blob_id)
             raise
         return info
 
@@ -452,7 +428,7 @@ class Vault:
         with storage.transaction(self._conn):
             new = registry.store_policy(self._conn, policy, at)
             storage.set_meta(self._conn, "policy_version", policy.version)
-            storage.set_meta(self._conn, "policy_pin", self._keys.policy_pin(policy.version))
+            storage.set_meta(self._conn, "policy_pin", self._door.policy_pin(policy.version))
             self._audit.append({"actor": self.member, "action": "policy.apply", "decision": "done",
                                 "details": {"version": policy.version, "previous": previous}}, at)
         self._set_policy(policy)
@@ -467,30 +443,29 @@ class Vault:
         self._require_steward("participant.enrol")
         when = self.now()
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
-        tag = self._keys.lab_code_tag(identity.code)
+        tag = self._door.lab_code_tag(identity.code)
         existing = registry.pid_for_tag(self._conn, tag)
         if existing is not None:
             raise Conflict(f"this participant code is enrolled already (participant {existing}); "
                            "use 'mindward consent amend'")
         pid = crypto.random_id(16)
         version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when)
-        key = self._keys.new_participant_key(pid)
-        blob_id = "b-" + crypto.random_id(12)
-        info = self._store.write(key.key, pid, blob_id, "identity-contact", [identity.to_bytes()])
+        key = self._door.new_participant(pid, ("identity-contact", [identity.to_bytes()]))
+        assert key.blob is not None
+        info = key.blob
+        blob_id = info.blob_id
         at = iso_utc(when)
         try:
             with storage.transaction(self._conn):
-                self._conn.execute(
-                    "INSERT INTO participants (pid, wrapped_key, key_commitment, lab_code_tag, "
-                    "created_at) VALUES (?, ?, ?, ?, ?)",
-                    (pid, key.wrapped, key.commitment, tag, at))
-                self._insert_blob(info, at)
+                participants.insert_participant(self._conn, pid, key.wrapped, key.commitment, at,
+                                                lab_code_tag=tag)
+                participants.insert_blob(self._conn, info, at)
                 self._record_consent(version)
                 self._audit.append({"actor": self.member, "action": "participant.enrol",
                                     "subjects": [pid], "decision": "done",
                                     "details": _consent_details(version)}, at)
         except BaseException:
-            self._store.discard(blob_id)
+            self._door.discard(blob_id)
             raise
         return {"participant_id": pid, **_consent_details(version)}
 
@@ -500,7 +475,7 @@ class Vault:
         when = self.now()
         registry.require_participant(self._conn, pid)
         identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
-        if registry.pid_for_tag(self._conn, self._keys.lab_code_tag(identity.code)) != pid:
+        if registry.pid_for_tag(self._conn, self._door.lab_code_tag(identity.code)) != pid:
             raise InvalidInput(f"consent form: participant.code: does not belong to participant {pid}")
         history = registry.consent_history(self._conn, pid)
         version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when,
@@ -514,9 +489,7 @@ class Vault:
 
     def _record_consent(self, version: Any) -> None:
         """Add a consent version and re-tag the participant's newest one (inside a transaction)."""
-        registry.add_consent(self._conn, version)
-        registry.set_consent_tag(self._conn, version.participant_id, self._keys.consent_tag(
-            version.participant_id, version.number, version.digest))
+        self._context().record_consent(version)
 
     def _check_consent_heads(self) -> list[dict[str, Any]]:
         """Every living participant's newest consent against its keyed tag: a withdrawal deleted
@@ -528,7 +501,7 @@ class Vault:
                 continue
             try:
                 head = registry.parse_consent(body)
-                expected = self._keys.consent_tag(pid, head.number, head.digest)
+                expected = self._door.consent_tag(pid, head.number, head.digest)
             except (IntegrityError, InvalidInput, ValueError):
                 bad.append(pid)
                 continue
@@ -548,7 +521,7 @@ class Vault:
     def consent_history(self, pid: str) -> list[dict[str, Any]]:
         """The consent versions, oldest first (kept after erasure: they name no one)."""
         self._require_steward("consent.show")
-        if self._conn.execute("SELECT 1 FROM participants WHERE pid = ?", (pid,)).fetchone() is None:
+        if not participants.exists(self._conn, pid):
             raise NotFound(f"no participant '{pid}'")
         return [json.loads(v.to_json()) | {"digest": v.digest}
                 for v in registry.consent_history(self._conn, pid)]
@@ -570,19 +543,13 @@ class Vault:
         """Who a request would include and why others are not; reads no data (audited).
 
         Stewards see vault ids; everyone else sees the purpose's pseudonyms."""
-        from vault.services.exports import pseudonyms
-
         decision = self._engine.decide(self.request(purpose, categories, participants=participants))
         if self.role == "steward":
             return decision
-        names = pseudonyms(self, purpose, list(decision.decisions))
+        names = self._door.pseudonyms(purpose, list(decision.decisions))
         return replace(decision, request=decision.request.model_copy(update={"participants": None}),
                        decisions=MappingProxyType({names[p]: d for p, d in decision.decisions.items()}),
                        eligible=tuple(names[p] for p in decision.eligible))
-
-    def _grant_participants(self, grant: Grant) -> frozenset[str]:
-        """The vault ids a grant covers, for the export modules (callers see `participants`)."""
-        return self._engine.record(grant).participants
 
     def authorize(self, purpose: str, categories: Iterable[str], *,
                   participants: Iterable[str] | None = None) -> Grant:
@@ -591,15 +558,6 @@ class Vault:
         A grant for a purpose that requires differential-privacy noise yields plaintext to
         no caller: only the release mechanisms (`export_matrix`) read under it."""
         return self._engine.authorize(self.request(purpose, categories, participants=participants))
-
-    def _authorize_release(self, purpose: str, categories: Iterable[str], *,
-                           budget_remaining: Mapping[str, float] | None = None,
-                           **options: Any) -> Grant:
-        """Export grants (cohort, noise, recipient rules); for the export modules only, which
-        compute `budget_remaining` from the vault's own ledger."""
-        request = Request(actor=self.member, role=self.role, purpose=purpose,
-                          categories=frozenset(categories), **options)
-        return self._engine.authorize(request, budget_remaining=budget_remaining)
 
     def read_blob(self, grant: Grant, blob_id: str) -> Iterator[bytes]:
         """Plaintext of one blob through the one door (grant checked live, read audited)."""
@@ -612,39 +570,10 @@ class Vault:
         Yields (blob_id, subject, plaintext chunks) in the order given. The subject is the
         participant's pseudonym for the grant's purpose (stewards: their random vault id).
         Refused for purposes that require differential-privacy noise."""
-        from vault.services.exports import pseudonyms
-
-        reads = self._admitted_reads(grant, blob_ids, for_noise=False)
+        reads = self._door.read(self._engine, self._audit_batch, grant, blob_ids, for_noise=False)
         names = ({pid: pid for _, pid, _ in reads} if self.role == "steward"
-                 else pseudonyms(self, grant.purpose, sorted({pid for _, pid, _ in reads})))
+                 else self._door.pseudonyms(grant.purpose, sorted({pid for _, pid, _ in reads})))
         return ((blob_id, names[pid], chunks) for blob_id, pid, chunks in reads)
-
-    def _read_for_release(self, grant: Grant, blob_ids: list[str]
-                          ) -> Iterator[tuple[str, str, Iterator[bytes]]]:
-        """The release mechanisms' read: (blob_id, participant id, chunks); the plaintext
-        goes into noise or into pseudonymised files, never back to the caller."""
-        return iter(self._admitted_reads(grant, blob_ids, for_noise=True))
-
-    def _admitted_reads(self, grant: Grant, blob_ids: list[str], *, for_noise: bool
-                        ) -> list[tuple[str, str, Iterator[bytes]]]:
-        record = self._engine.record(grant)
-        rows: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
-            self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
-        missing = [b for b in blob_ids if b not in rows]
-        if missing:
-            raise NotFound(f"no blob '{missing[0]}'")
-        admission = self._engine.admit_many(grant, [rows[b] for b in blob_ids], for_noise=for_noise)
-        self._audit_batch([{"actor": record.request.actor, "action": "access.read",
-                            "purpose": record.request.purpose,
-                            "subjects": sorted({rows[b][0] for b in blob_ids}), "decision": "permit",
-                            "details": {"grant": record.grant_id, "blobs": len(blob_ids),
-                                        "categories": sorted({rows[b][1] for b in blob_ids}),
-                                        **({"to": "release-mechanism"} if for_noise else {})}}])
-        keys = self._keys.participant_keys(self._conn, (pid for pid, _ in rows.values()))
-        return [(blob_id, rows[blob_id][0],
-                 self._store.plaintext(admission, keys[rows[blob_id][0]], rows[blob_id][0], blob_id,
-                                       rows[blob_id][1]))
-                for blob_id in blob_ids]
 
     # -- ingest -------------------------------------------------------------------------------------
 
@@ -660,7 +589,7 @@ class Vault:
         """
         from vault.services.ingest import ingest_eeg
 
-        return ingest_eeg(self, pid, Path(path), sidecar=sidecar, event_codes=event_codes,
+        return ingest_eeg(self._context(), pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
                           keep_header_identity=keep_header_identity)
 
@@ -668,7 +597,7 @@ class Vault:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""
         from vault.services.ingest import ingest_scores
 
-        return ingest_scores(self, Path(path), kind)
+        return ingest_scores(self._context(), Path(path), kind)
 
     # -- exports ------------------------------------------------------------------------------------
 
@@ -681,7 +610,7 @@ class Vault:
         """
         from vault.services.export_eeg import export_eeg
 
-        return export_eeg(self, purpose=purpose, out=Path(out), recipient=recipient,
+        return export_eeg(self._context(), purpose=purpose, out=Path(out), recipient=recipient,
                           with_demographics=with_demographics)
 
     def export_matrix(self, purpose: str, category: str, out: Path,
@@ -689,7 +618,7 @@ class Vault:
         """A pseudonymised, differentially private preference release (matrix or aggregate)."""
         from vault.services.export_matrix import export_matrix
 
-        return export_matrix(self, purpose=purpose, category=category, out=Path(out),
+        return export_matrix(self._context(), purpose=purpose, category=category, out=Path(out),
                              **options)
 
     def export_utility(self, purpose: str, category: str, epsilons: list[float], out_png: Path,
@@ -700,7 +629,7 @@ class Vault:
         are not differentially private."""
         from vault.services.export_matrix import export_utility
 
-        return export_utility(self, purpose=purpose, category=category, epsilons=epsilons,
+        return export_utility(self._context(), purpose=purpose, category=category, epsilons=epsilons,
                               out_png=Path(out_png), **options)
 
     def budget(self, purpose: str | None = None, *, show_participants: bool | None = None
@@ -709,13 +638,13 @@ class Vault:
         from vault.services.budget import budget_report
 
         show = self.role == "steward" if show_participants is None else show_participants
-        return budget_report(self, purpose, show_participants=show)
+        return budget_report(self._context(), purpose, show_participants=show)
 
     def check_export(self, document: dict[str, Any]) -> dict[str, Any]:
         """Whether an export someone holds now contains withdrawn or expired participants."""
         from vault.services.exports import check_export
 
-        return check_export(self, document)
+        return check_export(self._context(), document)
 
     # -- withdrawal and erasure ---------------------------------------------------------------------
 
@@ -723,35 +652,35 @@ class Vault:
         """Record a withdrawal request with its deadline (GDPR Art. 12(3); policy set)."""
         from vault.services.withdraw import request_withdrawal
 
-        return request_withdrawal(self, pid, received=received, scope=scope)
+        return request_withdrawal(self._context(), pid, received=received, scope=scope)
 
     def withdraw_pending(self) -> list[dict[str, Any]]:
         from vault.services.withdraw import pending
 
-        return pending(self)
+        return pending(self._context())
 
     def withdraw_process(self, target: str) -> dict[str, Any]:
         """Erase (full) or narrow (purpose) as requested; returns the signed receipt and recall list."""
         from vault.services.withdraw import process
 
-        return process(self, target)
+        return process(self._context(), target)
 
     def withdraw_receipt(self, target: str) -> dict[str, Any]:
         from vault.services.withdraw import receipt_of
 
-        return receipt_of(self, target)
+        return receipt_of(self._context(), target)
 
     def sweep(self, *, dry_run: bool = False) -> dict[str, Any]:
         """Erase, with receipts, everyone whose consent expired or retention ended."""
         from vault.services.withdraw import sweep
 
-        return sweep(self, dry_run=dry_run)
+        return sweep(self._context(), dry_run=dry_run)
 
     def report(self) -> dict[str, Any]:
         """A record of processing (GDPR Art. 30 style): definitions and counts only."""
         from vault.services.report import record_of_processing
 
-        return record_of_processing(self)
+        return record_of_processing(self._context())
 
     # -- members ------------------------------------------------------------------------------------
 
@@ -766,8 +695,7 @@ class Vault:
         _check_passphrase(passphrase)
         at = self._stamp()
         with storage.transaction(self._conn):
-            self._keys.add_slot(self._conn, name, role, passphrase, at,
-                                reads_data=_reads_data(self.policy)(role))
+            self._door.add_slot(name, role, passphrase, at, reads_data=_reads_data(self.policy)(role))
             self._audit.append({"actor": self.member, "action": "member.add", "decision": "done",
                                 "details": {"member": name, "role": role}}, at)
         return {"member": name, "role": role}
@@ -784,20 +712,21 @@ class Vault:
     def members(self) -> list[dict[str, str]]:
         return registry.members(self._conn)
 
-    # -- blobs --------------------------------------------------------------------------------------
+    def export_members(self, export_id: str) -> set[str]:
+        """The vault ids an export holds (its lineage; stewards only)."""
+        self._require_steward("export.members")
+        return lineage.members(self._conn, export_id)
 
-    def _insert_blob(self, info: BlobInfo, at: str) -> None:
-        self._conn.execute(
-            "INSERT INTO blobs (blob_id, pid, kind, plain_size, stored_size, created_at) "
-            "VALUES (?, ?, ?, ?, ?, ?)",
-            (info.blob_id, info.pid, info.kind, info.plain_size, info.stored_size, at))
+    def readable(self, pid: str) -> bool:
+        """Whether a participant's data key still opens (False once erased; stewards only)."""
+        self._require_steward("participant.readable")
+        return self._door.readable(pid)
+
+    # -- blobs --------------------------------------------------------------------------------------
 
     def blobs(self, pid: str | None = None) -> list[dict[str, Any]]:
         self._require_steward("blobs.list")
-        sql = "SELECT blob_id, pid, kind, plain_size, stored_size, created_at FROM blobs"
-        rows = self._conn.execute(sql + (" WHERE pid = ?" if pid else ""), (pid,) if pid else ())
-        cols = ("blob_id", "pid", "kind", "plain_size", "stored_size", "created_at")
-        return [dict(zip(cols, r, strict=True)) for r in rows]
+        return participants.blobs(self._conn, pid)
 
     # -- verification and the audit log ---------------------------------------------------------
 
@@ -805,17 +734,8 @@ class Vault:
         """Check the audit log and authenticate every stored blob (no plaintext leaves)."""
         self._require_steward("vault.verify")
         report = audit.verify_log(self._conn, self.public_key, trusted or [])
-        bad: list[str] = []
-        rows = self._conn.execute(
-            "SELECT b.blob_id, b.pid, b.plain_size FROM blobs b JOIN participants p "
-            "ON p.pid = b.pid WHERE p.wrapped_key IS NOT NULL").fetchall()
-        for blob_id, pid, size in rows:
-            try:
-                self._store.authenticate(self._keys.participant_key(self._conn, pid), pid,
-                                         blob_id, size)
-            except IntegrityError:
-                bad.append(blob_id)
-        return {"audit": report.as_dict(), "blobs_checked": len(rows), "blobs_failed": bad,
+        checked, bad = self._door.authenticate_all()
+        return {"audit": report.as_dict(), "blobs_checked": checked, "blobs_failed": bad,
                 "ok": report.ok and not bad}
 
     def audit_entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
@@ -880,8 +800,8 @@ def describe(path: Path) -> dict[str, Any]:
             "created_at": storage.get_meta(conn, "created_at"),
             "schema_version": storage.SCHEMA_VERSION,
             "public_key": public.hex(), "fingerprint": crypto.fingerprint(public),
-            "participants": count("SELECT COUNT(*) FROM participants WHERE wrapped_key IS NOT NULL"),
-            "participants_erased": count("SELECT COUNT(*) FROM participants WHERE wrapped_key IS NULL"),
+            "participants": participants.count(conn),
+            "participants_erased": participants.count(conn, erased=True),
             "blobs": count("SELECT COUNT(*) FROM blobs"),
             "audit_entries": count("SELECT COUNT(*) FROM audit_log"),
             "latest_tree_head": None if head is None else audit.TreeHead.from_row(*head).to_dict(),
@@ -905,7 +825,7 @@ def read_audit_log(path: Path, passphrase: str, *, member: str, start: int = 0,
             vault_id = _check_schema(conn)
             storage.add_missing_tables(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
-            unlocked = KeyRing.unlock(conn, vault_id, member, passphrase, _reads_data(policy))
+            unlocked = access.unlock(conn, path, vault_id, member, passphrase, _reads_data(policy))
             at = iso_utc(moment(clock))
             role = policy.roles.get(unlocked.role)
             allowed = role is not None and role.reads_audit

@@ -21,15 +21,15 @@ PATHS = {"whole-read": 0, "streamed": _WHOLE_READ // CHUNK_SIZE + 1}
 
 def _read(v: Vault, pid: str, blob_id: str) -> bytes:
     # Tests reach past the one door on purpose: they check the store itself.
-    key = v._keys.participant_key(v._conn, pid)
-    return b"".join(v._store._decrypt(key, pid, blob_id))
+    key = v._door._ring.participant_key(v._conn, pid)
+    return b"".join(v._door._blobs._decrypt(key, pid, blob_id))
 
 
 def _stored(v: Vault, n_bytes: int, marker: bytes = b"") -> tuple[str, str, bytes, Path]:
     pid = v.new_participant()
     data = marker + os.urandom(n_bytes)
     info = v.put_blob(pid, "eeg", [data[i : i + 7000] for i in range(0, len(data), 7000)])
-    return pid, info.blob_id, data, v._store.path(info.blob_id)
+    return pid, info.blob_id, data, v._door._blobs.path(info.blob_id)
 
 
 def test_round_trip_and_size_accounting(fresh_vault: Vault) -> None:
@@ -104,9 +104,9 @@ def test_chunk_level_attacks_are_detected(fresh_vault: Vault, attack: str, extra
     }[attack]
     path.write_bytes(forged)
     handed_out = bytearray()
-    key = fresh_vault._keys.participant_key(fresh_vault._conn, pid)
+    key = fresh_vault._door._ring.participant_key(fresh_vault._conn, pid)
     with pytest.raises(IntegrityError):
-        for chunk in fresh_vault._store._decrypt(key, pid, blob_id):
+        for chunk in fresh_vault._door._blobs._decrypt(key, pid, blob_id):
             handed_out += chunk
     # whatever a streaming reader handed out before failing is a true prefix
     assert data.startswith(bytes(handed_out))
@@ -126,7 +126,7 @@ def test_blob_moved_to_another_participant_or_slot_fails_commitment(fresh_vault:
             _read(fresh_vault, pid, blob)
     # same participant, other slot: the blob id is in the context too
     path_b.write_bytes(b)
-    fresh_vault._store.path(info_b2.blob_id).write_bytes(b)
+    fresh_vault._door._blobs.path(info_b2.blob_id).write_bytes(b)
     with pytest.raises(IntegrityError, match="commitment"):
         _read(fresh_vault, pid_b2, info_b2.blob_id)
 
@@ -137,7 +137,7 @@ def test_plaintext_marker_never_reaches_disk(vault_path: Path) -> None:
         pid = v.new_participant()
         payload = (marker + b" ") * 5000
         v.put_blob(pid, "eeg", [payload[i : i + 4096] for i in range(0, len(payload), 4096)])
-        key = v._keys.participant_key(v._conn, pid)
+        key = v._door._ring.participant_key(v._conn, pid)
         # while open (WAL and SHM present) and after close
         assert_absent(vault_path, marker, key)
     assert_absent(vault_path, marker, key)

@@ -71,19 +71,19 @@ def test_rekey_rewraps_keys_and_never_touches_data(vault_path: Path) -> None:
     with Vault.init(vault_path, TEST_PASSPHRASE) as v:
         pid = v.new_participant()
         info = v.put_blob(pid, "eeg", [b"signal" * 10000])
-        blob_before = v._store.path(info.blob_id).read_bytes()
+        blob_before = v._door._blobs.path(info.blob_id).read_bytes()
         wrapped_before = v._conn.execute("SELECT wrapped_key FROM participants").fetchone()[0]
         slot_before = v._conn.execute("SELECT wrapped_master FROM keyslots").fetchone()[0]
         fingerprint = v.info()["fingerprint"]
         assert v.rekey("a brand new passphrase") == {"keys_rewrapped": 1, "member_slots_dropped": 0}
-        assert v._store.path(info.blob_id).read_bytes() == blob_before
+        assert v._door._blobs.path(info.blob_id).read_bytes() == blob_before
         assert v._conn.execute("SELECT wrapped_key FROM participants").fetchone()[0] != wrapped_before
         assert v._conn.execute("SELECT wrapped_master FROM keyslots").fetchone()[0] != slot_before
     with pytest.raises(AuthenticationFailed):
         Vault.open(vault_path, TEST_PASSPHRASE)
     with Vault.open(vault_path, "a brand new passphrase") as v:
-        key = v._keys.participant_key(v._conn, pid)
-        assert b"".join(v._store._decrypt(key, pid, info.blob_id)) == b"signal" * 10000
+        key = v._door._ring.participant_key(v._conn, pid)
+        assert b"".join(v._door._blobs._decrypt(key, pid, info.blob_id)) == b"signal" * 10000
         assert v.info()["fingerprint"] == fingerprint  # same signing key, re-wrapped
         assert v.verify()["ok"]
         assert "vault.rekey" in [e["action"] for e in v.audit_entries()]
@@ -96,15 +96,15 @@ def test_destroying_the_wrapped_key_erases_the_data(vault_path: Path) -> None:
         keep = v.new_participant()
         gone = v.put_blob(pid, "eeg", [b"A" * 5000])
         kept = v.put_blob(keep, "eeg", [b"B" * 5000])
-        key = v._keys.participant_key(v._conn, pid)
+        key = v._door._ring.participant_key(v._conn, pid)
         v._conn.execute("UPDATE participants SET wrapped_key = NULL WHERE pid = ?", (pid,))
         vault.storage.db.checkpoint(v._conn)
         with pytest.raises(NotFound, match="erased"):
-            v._keys.participant_key(v._conn, pid)
+            v._door._ring.participant_key(v._conn, pid)
         with pytest.raises(vault.IntegrityError):
-            b"".join(v._store._decrypt(os.urandom(32), pid, gone.blob_id))
-        other = v._keys.participant_key(v._conn, keep)
-        assert b"".join(v._store._decrypt(other, keep, kept.blob_id)) == b"B" * 5000
+            b"".join(v._door._blobs._decrypt(os.urandom(32), pid, gone.blob_id))
+        other = v._door._ring.participant_key(v._conn, keep)
+        assert b"".join(v._door._blobs._decrypt(other, keep, kept.blob_id)) == b"B" * 5000
     for path in files_of(vault_path):
         assert key not in path.read_bytes()
 
@@ -128,6 +128,6 @@ def test_info_needs_no_passphrase_and_matches_the_key(fresh_vault: Vault) -> Non
 def test_keys_and_vaults_refuse_pickling(fresh_vault: Vault) -> None:
     import pickle
 
-    for obj in (fresh_vault, fresh_vault._keys, fresh_vault._signing):
+    for obj in (fresh_vault, fresh_vault._door._ring, fresh_vault._signing):
         with pytest.raises(TypeError):
             pickle.dumps(obj)

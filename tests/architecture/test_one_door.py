@@ -125,12 +125,12 @@ def test_every_read_decides_again_even_at_the_grants_own_instant(cohort) -> None
 def test_no_grant_no_data(cohort) -> None:
     v, groups, blobs = cohort
     pid = groups["all"][0]
-    key = v._keys.participant_key(v._conn, pid)
+    key = v._door._ring.participant_key(v._conn, pid)
     for fake in (None, object(), "grant", {"purpose": "primary-analysis"}):
         with pytest.raises(PolicyRefusal):
             at(v, NOW).read_blob(fake, blobs[pid])  # type: ignore[arg-type]
         with pytest.raises(PolicyRefusal):
-            v._store.plaintext(fake, key, pid, blobs[pid], "eeg-raw")  # type: ignore[arg-type]
+            v._door._blobs.plaintext(fake, key, pid, blobs[pid], "eeg-raw")  # type: ignore[arg-type]
     with pytest.raises(PolicyRefusal, match="only by the policy engine"):
         Grant(object(), engine=v._engine, grant_id="g-forged")
     with pytest.raises(PolicyRefusal, match="only by the policy engine"):

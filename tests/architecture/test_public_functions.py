@@ -1,9 +1,11 @@
 """What an analyst or an outsider could do beyond the `Vault` methods: every public module function
-that takes an open vault, a log stamped by the vault's own clock, a clock set back, a policy
+that takes a use case's context (what the Vault hands a service), a log stamped by the vault's
+own clock, a clock set back, a policy
 or a note swapped in the database file. Each of these got through before it was closed."""
 
 from __future__ import annotations
 
+import ast
 import datetime as dt
 import importlib
 import inspect
@@ -24,12 +26,15 @@ EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)
 ANALYST = "analyst passphrase long enough"
 
-# Every public function of a vault module whose first parameter is an open vault, and who may
-# call it. A new one fails this test until it is listed (and, if for stewards, checks the role).
+# Every public function of a vault module whose first parameter is a use case's context (`ctx`),
+# and who may call it. A new one fails this test until it is listed (and, if for stewards, checks
+# the role).
 PUBLIC: dict[str, str] = {
     "budget.affordable": "anyone",  # reads remaining budget of ids the caller names
     "budget.remaining_for_decide": "anyone",
     "budget.charge": "steward",
+    "budget.charge_in_transaction": "anyone",  # inside an export's transaction only (refused outside)
+    "budget.refund_in_transaction": "anyone",
     "budget.budget_report": "anyone",  # per-participant rows for stewards only
     "export_eeg.export_eeg": "anyone",  # the policy engine decides
     "export_matrix.declared_items": "anyone",
@@ -42,8 +47,8 @@ PUBLIC: dict[str, str] = {
     "export_runs.publish": "anyone",
     "export_runs.abandon": "anyone",  # refunds only a run that wrote nothing
     "export_runs.recover": "anyone",  # what every open does
-    "exports.pseudonym": "anyone",
     "exports.pseudonyms": "anyone",
+    "exports.sign_and_record": "anyone",  # needs a grant the engine minted
     "exports.check_export": "anyone",  # counts only
     "ingest.event_codes_for": "anyone",
     "ingest.scrub_clear_metadata": "anyone",  # what every open does
@@ -69,13 +74,31 @@ def _vault_functions() -> dict[str, object]:
         short = info.name.rsplit(".", 1)[-1]
         for name, fn in inspect.getmembers(module, inspect.isfunction):
             params = list(inspect.signature(fn).parameters)
-            if fn.__module__ == module.__name__ and not name.startswith("_") and params[:1] == ["v"]:
+            if fn.__module__ == module.__name__ and not name.startswith("_") and params[:1] == ["ctx"]:
                 found[f"{short}.{name}"] = fn
     return found
 
 
 def test_every_public_vault_function_is_listed_with_who_may_call_it() -> None:
     assert set(_vault_functions()) == set(PUBLIC)
+
+
+def test_no_service_takes_the_vault_itself() -> None:
+    # the facade hands services a Context; a service reaching for the Vault (or a parameter
+    # still named for it) would see its private parts again
+    for info in pkgutil.walk_packages(vault.__path__, "vault."):
+        if not info.name.startswith("vault.services.") or info.ispkg:
+            continue
+        module = importlib.import_module(info.name)
+        for node in ast.walk(ast.parse(inspect.getsource(module))):  # TYPE_CHECKING blocks too
+            if isinstance(node, ast.ImportFrom):
+                assert node.module != "vault.api" and "Vault" not in {n.name for n in node.names}, \
+                    info.name
+            elif isinstance(node, ast.Import):
+                assert "vault.api" not in {n.name for n in node.names}, info.name
+        for name, fn in inspect.getmembers(module, inspect.isfunction):
+            if fn.__module__ == module.__name__:
+                assert list(inspect.signature(fn).parameters)[:1] != ["v"], f"{info.name}.{name}"
 
 
 @pytest.fixture
@@ -102,7 +125,7 @@ def test_steward_functions_refuse_an_analyst_before_doing_anything(lab) -> None:
             args = [None for p in params if p.kind is p.POSITIONAL_OR_KEYWORD and p.default is p.empty][1:]
             kwargs = {p.name: None for p in params if p.kind is p.KEYWORD_ONLY and p.default is p.empty}
             with pytest.raises(PolicyRefusal, match="stewards only"):
-                fn(a, *args, **kwargs)
+                fn(a._context(), *args, **kwargs)
         assert a._audit.size - before == sum(who == "steward" for who in PUBLIC.values())
 
 
@@ -112,11 +135,12 @@ def test_ledger_writes_outside_a_transaction_are_refused(lab) -> None:
 
     path, clock, _ = lab
     with Vault.open(path, ANALYST, member="omar", clock=clock) as a:
-        for fn in (budget._refund_in_transaction, budget._charge_in_transaction):
+        for fn in (budget.refund_in_transaction, budget.charge_in_transaction):
             with pytest.raises(UsageError, match="only inside a transaction"):
-                fn(a, "recommender-training", ["recommender-training"], {}, export_id="x", at="") \
-                    if fn is budget._refund_in_transaction else \
-                    fn(a, "recommender-training", {}, export_id="x", at="")
+                fn(a._context(), "recommender-training", ["recommender-training"], {}, export_id="x",
+                   at="") \
+                    if fn is budget.refund_in_transaction else \
+                    fn(a._context(), "recommender-training", {}, export_id="x", at="")
 
 
 def test_the_log_is_dated_by_the_vaults_clock_whatever_a_caller_passes(lab) -> None:

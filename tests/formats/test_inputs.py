@@ -363,5 +363,5 @@ def test_a_vault_with_the_old_single_folder_layout_is_moved_at_open(vault_path: 
     with Vault.open(vault_path, TEST_PASSPHRASE, clock=ManualClock(T0)) as v:
         assert v.verify()["ok"] is True
         assert sorted(p.name for p in blobs.rglob("*.mwb")) == sorted(b + ".mwb" for b in ids)
-        assert all(v._store.path(b).exists() for b in ids)
+        assert all(v._door._blobs.path(b).exists() for b in ids)
     assert not (blobs / "b-").exists()

@@ -151,7 +151,7 @@ def test_a_dp_purpose_yields_plaintext_to_no_caller(lab) -> None:
                 list(v.read_blobs(grant, list(blobs.values())))
             with pytest.raises(PolicyRefusal, match="dp-noise-required"):
                 v.read_blob(grant, blobs[more[0]])
-            grant = v._authorize_release("recommender-training", ["ratings-explicit"], cohort=False)
+            grant = v._context().authorize_release("recommender-training", ["ratings-explicit"], cohort=False)
             with pytest.raises(PolicyRefusal, match="dp-noise-required"):
                 v.read_blob(grant, blobs[more[0]])
     refused = [e for e in entries(path) if e["action"] == "access.read" and e["decision"] == "refuse"]
@@ -191,7 +191,7 @@ def test_a_slot_moved_to_another_member_no_longer_unlocks(lab) -> None:
 def test_an_auditor_holds_no_key_to_participant_data(lab) -> None:
     path, _clock, _pids, _eeg, _scores, _identity = lab
     with Vault.open(path, TEST_PASSPHRASE) as v:
-        master, secret, vault_id = v._keys._master, v._keys._secret, v.vault_id
+        master, secret, vault_id = v._door._ring._master, v._door._ring._secret, v.vault_id
     from vault import crypto
     from vault.access.keys import KeyRing
 
@@ -241,9 +241,9 @@ def test_analysts_cannot_rekey_read_the_log_or_see_raw_ids(lab) -> None:
                 setattr(a, attr, value)
         grant = a.authorize("primary-analysis", ["eeg-raw"])
         subjects = {s for _, s, _ in a.read_blobs(grant, [eeg[p] for p in pids[:5]])}
-        assert subjects == set(pseudonyms(a, "primary-analysis", pids[:5]).values())
+        assert subjects == set(pseudonyms(a._context(), "primary-analysis", pids[:5]).values())
         assert not subjects & set(pids)
-        assert grant.participants == set(pseudonyms(a, "primary-analysis", pids).values())
+        assert grant.participants == set(pseudonyms(a._context(), "primary-analysis", pids).values())
         decision = a.access_check("primary-analysis", ["eeg-raw"])
         assert set(decision.decisions) == set(decision.eligible) == grant.participants
         assert decision.request.participants is None
@@ -286,7 +286,7 @@ def _legacy_slot(path: Path, member: str, role: str, passphrase: str, master: by
 def test_legacy_slots_are_bound_to_their_role_at_the_next_unlock(lab) -> None:
     path = lab[0]
     with Vault.open(path, TEST_PASSPHRASE) as v:
-        master = v._keys._master
+        master = v._door._ring._master
     _legacy_slot(path, "steward", "steward", TEST_PASSPHRASE, master)
     _legacy_slot(path, "ines", "auditor", AUDITOR, master)
     with Vault.open(path, TEST_PASSPHRASE) as v:  # opens, and rewrites the slot bound to its role

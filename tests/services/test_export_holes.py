@@ -26,7 +26,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from tests.clock import ManualClock, at
+from tests.clock import ManualClock, ctx_at
 from tests.conftest import TEST_PASSPHRASE, assert_absent
 from tests.services.test_export_matrix import CATALOGUE, EXAMPLES, MENU, RATINGS, REC, make_policy
 from vault import InvalidInput, PolicyRefusal, Vault
@@ -300,7 +300,7 @@ def test_budget_refund_credits_back_exactly(tmp_path: Path, policy_dir: Path) ->
 
     v, pids, _ = build(tmp_path, policy_dir, EVERYONE)
     with v:
-        budget.charge(at(v, NOW), MENU, {p: Cost(epsilon=Fraction(1, 10)) for p in pids}, export_id="x-a")
+        budget.charge(ctx_at(v, NOW), MENU, {p: Cost(epsilon=Fraction(1, 10)) for p in pids}, export_id="x-a")
         with storage.transaction(v._conn):
             purposes = budget._charge_in_transaction(
                 v, MENU, {p: Cost(epsilon=Fraction(1, 5)) for p in pids}, export_id="x-b",

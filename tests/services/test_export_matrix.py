@@ -27,7 +27,7 @@ from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from tests.clock import ManualClock, at
+from tests.clock import ManualClock, at, ctx_at
 from tests.conftest import ROOT, TEST_PASSPHRASE
 from vault import Conflict, PolicyRefusal, UsageError, Vault, verify_export
 from vault.crypto import random_id
@@ -167,20 +167,22 @@ def test_only_permitted_participants_are_ever_exported(all_: int, norec: int, ex
             others = [p for kind in ("norec", "expired", "withdrawn") for p in groups[kind]]
             if all_ < 3:  # below the minimum cohort: nothing leaves, nothing is charged
                 with pytest.raises(PolicyRefusal, match="cohort-too-small") as err:
-                    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, release=release,
+                    export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01,
+                                  release=release,
                                   unit=unit, out=out)
                 assert not any(p in str(err.value) for ps in groups.values() for p in ps)
                 assert not out.exists() and not spent(v, REC)
                 assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
                 return
-            result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, release=release,
+            result = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01,
+                                   release=release,
                                    unit=unit, out=out)
             assert result["cohort_size"] == all_
             assert result["refused_by_reason"] == {REASON[k]: counts[k] for k in REASON if counts[k]}
             assert lineage(v, result["export_id"]) == set(groups["all"])
             assert set(spent(v, REC)) == set(groups["all"])
-            permitted = pseudonyms(v, REC, groups["all"])
-            barred = set(pseudonyms(v, REC, others).values())
+            permitted = pseudonyms(v._context(), REC, groups["all"])
+            barred = set(pseudonyms(v._context(), REC, others).values())
             files = [p for p in out.iterdir() if p.is_file()]
             for path in files:
                 data = path.read_bytes()
@@ -205,19 +207,19 @@ def test_only_permitted_participants_are_ever_exported(all_: int, norec: int, ex
 
 def test_withdrawal_after_an_export_excludes_from_the_next_and_is_flagged(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    first = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
+    first = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
     leaver = groups["all"][0]
     amended = (EXAMPLES / "amend-withdraw-recommender.toml").read_text()
     at(v, NOW + dt.timedelta(hours=1)).amend_consent(
         leaver, amended.replace('code = "TL-', 'code = "all0-', 1).encode())
     later = NOW + dt.timedelta(hours=2)
-    second = export_matrix(at(v, later), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
+    second = export_matrix(ctx_at(v, later), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     assert leaver in lineage(v, first["export_id"]) and leaver not in lineage(v, second["export_id"])
     assert second["refused_by_reason"]["consent-withdrawn"] == 2
-    alias = pseudonyms(v, REC, [leaver])[leaver]
+    alias = pseudonyms(v._context(), REC, [leaver])[leaver]
     assert alias not in read_matrix(tmp_path / "b")[0][PSEUDONYM_COLUMN].tolist()
     doc = json.loads((tmp_path / "a" / MANIFEST_NAME).read_text())
-    assert check_export(at(v, later), doc)["must_replace"]  # the earlier export must be replaced
+    assert check_export(ctx_at(v, later), doc)["must_replace"]  # the earlier export must be replaced
 
 
 # --------------------------------------------------------------------------- pseudonyms and files
@@ -225,14 +227,14 @@ def test_withdrawal_after_an_export_excludes_from_the_next_and_is_flagged(lab, t
 
 def test_pseudonyms_are_keyed_per_purpose_never_a_plain_hash(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    a = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
-    b = export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
+    a = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "a")
+    b = export_matrix(ctx_at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     rows_a = set(read_matrix(tmp_path / "a")[0][PSEUDONYM_COLUMN])
     rows_b = set(read_matrix(tmp_path / "b")[0][PSEUDONYM_COLUMN])
     assert len(rows_a) == len(rows_b) == 5 and not rows_a & rows_b  # unlinkable across purposes
     for pid in groups["all"]:
         # Python's hmac module (RFC 2104) under the vault's per-purpose key: the same value
-        key = v._keys.purpose_key("pseudonym", REC)
+        key = v._door._ring.purpose_key("pseudonym", REC)
         assert hmac.new(key, pid.encode(), hashlib.sha256).hexdigest()[:20] in rows_a
         assert hashlib.sha256(pid.encode()).hexdigest()[:20] not in rows_a  # not a plain hash
     assert a["export_id"] != b["export_id"]
@@ -243,7 +245,7 @@ def test_parquet_and_csv_hold_the_same_values(tmp_path: Path, policy_dir: Path, 
     v, _, _ = make_lab(tmp_path, policy_dir, {"all": 4}, category=category, n_items=8)
     with v:
         name = RATINGS if category == "explicit" else "scores-derived"
-        export_matrix(at(v, NOW), purpose=REC, category=name, epsilon=1.0, out=tmp_path / "out")
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=name, epsilon=1.0, out=tmp_path / "out")
         parquet, csv = read_matrix(tmp_path / "out")
     assert list(parquet.columns) == list(csv.columns)
     assert parquet.columns[0] == PSEUDONYM_COLUMN and list(parquet.columns[1:]) == sorted(
@@ -259,9 +261,9 @@ def test_noise_in_the_file_has_the_scale_the_range_and_unit_imply(tmp_path: Path
     n_items = 40
     v, groups, truth = make_lab(tmp_path, policy_dir, {"all": 10}, n_items=n_items, density=0.5)
     with v:
-        result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5,
+        result = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5,
                                out=tmp_path / "out", items=[f"dish-{j:02d}" for j in range(n_items)])
-        labels = pseudonyms(v, REC, groups["all"])
+        labels = pseudonyms(v._context(), REC, groups["all"])
     frame = read_matrix(tmp_path / "out")[0].set_index(PSEUDONYM_COLUMN)
     noise = []
     for pid, alias in labels.items():
@@ -288,13 +290,13 @@ def test_noise_in_the_file_has_the_scale_the_range_and_unit_imply(tmp_path: Path
 def test_the_same_request_twice_spends_twice_exactly(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
     for i in range(3):  # 0.1 three times is exactly 3/10 (a float sum would be 0.30000000000000004)
-        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / f"o{i}")
+        export_matrix(ctx_at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / f"o{i}")
     for purpose in (MENU, REC):  # the child's spending counts against the parent's budget too
         assert spent(v, purpose) == {pid: ("3/10", "0", 3) for pid in groups["all"]}
-    report = {r["purpose"]: r for r in ledger.budget_report(v)}
+    report = {r["purpose"]: r for r in ledger.budget_report(v._context())}
     assert report[MENU]["spent_total"] == "3/2" and report[MENU]["remaining_min"] == "17/10"
     assert report[REC]["remaining_min"] == "27/10" and "by_participant" not in report[REC]
-    steward = ledger.budget_report(v, MENU, show_participants=True)[0]["by_participant"]
+    steward = ledger.budget_report(v._context(), MENU, show_participants=True)[0]["by_participant"]
     assert {row["participant_id"] for row in steward} == set(groups["all"])
 
 
@@ -320,48 +322,49 @@ def test_the_decision_floats_agree_with_the_exact_ledger(ledger_vault: Vault, sp
     pid = random_id(16)
     already = Fraction(spent_hundredths, 100)
     if already:
-        ledger.charge(at(v, NOW), REC, {pid: Cost(epsilon=already)}, export_id="x-seed")
+        ledger.charge(ctx_at(v, NOW), REC, {pid: Cost(epsilon=already)}, export_id="x-seed")
     for scale in (1, n_ratings):  # participant unit, and the rating unit with n ratings
         cost = Cost(epsilon=Fraction(eps) * scale)
         exact_fits = already + Fraction(eps) * scale <= 3  # recommender training: 3 per participant
-        floats = ledger.remaining_for_decide(v, REC, {pid: cost}, float(eps), scale={pid: scale})
-        assert (floats[pid] >= float(eps)) == exact_fits == ledger.affordable(v, REC, {pid: cost})[pid]
+        floats = ledger.remaining_for_decide(v._context(), REC, {pid: cost}, float(eps), scale={pid: scale})
+        fits = ledger.affordable(v._context(), REC, {pid: cost})[pid]
+        assert (floats[pid] >= float(eps)) == exact_fits == fits
 
 
 def test_gaussian_releases_spend_rho_and_state_the_delta(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
-    result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, rho=0.01, mechanism="gaussian",
+    result = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, rho=0.01, mechanism="gaussian",
                            out=tmp_path / "g")
     body = json.loads((tmp_path / "g" / MANIFEST_NAME).read_text())["body"]
     assert body["mechanism"] == "discrete-gaussian" and body["rho"] == "1/100"
     assert body["zcdp_delta"] == "1/1000000" == result["guarantee"]["approx_dp"]["delta"]
     assert spent(v, REC) == {pid: ("0", "1/100", 1) for pid in groups["all"]}
     with pytest.raises(UsageError):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, mechanism="gaussian",
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, mechanism="gaussian",
                       out=tmp_path / "x")
 
 
 def test_spent_budgets_exclude_or_refuse_as_the_policy_says(lab, tmp_path: Path) -> None:
     v, groups, _ = lab
     tired, fresh = groups["all"][:2], groups["all"][2:]
-    ledger.charge(at(v, NOW), REC, {p: Cost(epsilon=Fraction(29, 10)) for p in tired}, export_id="x-t")
+    ledger.charge(ctx_at(v, NOW), REC, {p: Cost(epsilon=Fraction(29, 10)) for p in tired}, export_id="x-t")
     # parent purpose excludes: 0.1 more is exactly 3 (included), 0.2 is not
-    a = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, out=tmp_path / "a")
+    a = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.1, out=tmp_path / "a")
     assert a["cohort_size"] == 5 and spent(v, REC)[tired[0]] == ("3", "0", 2)
-    b = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
+    b = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.2, out=tmp_path / "b")
     assert b["cohort_size"] == 3 and b["refused_by_reason"]["budget-exhausted"] == 2
     assert lineage(v, b["export_id"]) == set(fresh) and spent(v, REC)[tired[0]] == ("3", "0", 2)
     # the child refuses the whole release, also when only the parent's budget is spent
     before = spent(v, REC), spent(v, MENU)
     with pytest.raises(PolicyRefusal, match="budget-exhausted") as err:
-        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / "c")
+        export_matrix(ctx_at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.1, out=tmp_path / "c")
     assert not any(p in str(err.value) for p in groups["all"])
     assert (spent(v, REC), spent(v, MENU)) == before and not (tmp_path / "c").exists()
 
 
 def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path: Path) -> None:
     v, groups, truth = lab
-    result = export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.05, unit="rating",
+    result = export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.05, unit="rating",
                            out=tmp_path / "r")
     body = json.loads((tmp_path / "r" / MANIFEST_NAME).read_text())["body"]
     assert body["privacy_unit"] == "rating" and "NOT protected" in body["rating_unit_warning"]
@@ -369,7 +372,7 @@ def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path
     rated = {pid: sum(1 for (p, _) in truth if p == pid) for pid in groups["all"]}
     assert spent(v, REC) == {pid: (str(Fraction(5, 100) * n), "0", 1) for pid, n in rated.items()}
     frame = read_matrix(tmp_path / "r")[0].set_index(PSEUDONYM_COLUMN)
-    labels = pseudonyms(v, REC, groups["all"])
+    labels = pseudonyms(v._context(), REC, groups["all"])
     for pid, alias in labels.items():  # exactly the rated cells carry values
         assert int(frame.loc[alias].notna().sum()) == rated[pid]
     # an unrated cell is an empty CSV field (read as missing everywhere), never the text "nan"
@@ -382,7 +385,7 @@ def test_rating_unit_costs_per_rating_and_says_what_it_leaves_open(lab, tmp_path
     assert sum(c == "" for c in cells) == len(cells) - sum(rated.values())
     assert result["guarantee"]["privacy_unit"] == "rating"
     with pytest.raises(PolicyRefusal, match="privacy-unit-not-allowed"):
-        export_matrix(at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.01, unit="rating",
+        export_matrix(ctx_at(v, NOW), purpose=MENU, category=RATINGS, epsilon=0.01, unit="rating",
                       out=tmp_path / "m")
 
 
@@ -393,7 +396,7 @@ def test_below_the_minimum_cohort_nothing_is_exported(tmp_path: Path) -> None:
     v, groups, _ = make_lab(tmp_path, ROOT / "policies", {"all": 6, "norec": 2})  # default: 20
     with v:
         with pytest.raises(PolicyRefusal) as err:
-            export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o",
+            export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o",
                           items=CATALOGUE)
         assert "cohort-too-small" in str(err.value) and "[6 eligible]" in str(err.value)
         assert "consent-refused: 2" in str(err.value)
@@ -408,16 +411,16 @@ def test_request_wide_refusals(lab, tmp_path: Path) -> None:
     v, _, _ = lab
     out = tmp_path / "o"
     with pytest.raises(PolicyRefusal, match="release-epsilon-exceeds-cap"):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=1.5, out=out)
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=1.5, out=out)
     with pytest.raises(PolicyRefusal, match="no per-participant privacy budget"):
-        export_matrix(at(v, NOW), purpose="primary-analysis", category=RATINGS, epsilon=0.5, out=out)
+        export_matrix(ctx_at(v, NOW), purpose="primary-analysis", category=RATINGS, epsilon=0.5, out=out)
     with pytest.raises(PolicyRefusal, match="recipient-not-allowed"):
-        export_matrix(at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5, out=out,
+        export_matrix(ctx_at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5, out=out,
                       recipient="Someone Else Ltd")
     with pytest.raises(PolicyRefusal, match="purpose-not-allowed-category"):
-        export_matrix(at(v, NOW), purpose=REC, category="eeg-raw", epsilon=0.5, out=out)
+        export_matrix(ctx_at(v, NOW), purpose=REC, category="eeg-raw", epsilon=0.5, out=out)
     with pytest.raises(UsageError):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, out=out)  # no epsilon, no rho
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, out=out)  # no epsilon, no rho
     catalogue = tmp_path / "items.txt"
     catalogue.write_text("# dishes\ndish-01\n\ndish-02\nnot an id\n")
     with pytest.raises(UsageError, match="item ids"):
@@ -427,7 +430,7 @@ def test_request_wide_refusals(lab, tmp_path: Path) -> None:
     out.mkdir()
     (out / "something").write_text("x")
     with pytest.raises(Conflict):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=out)
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=out)
     assert not spent(v, REC) and v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
 
 
@@ -441,7 +444,7 @@ def test_a_failed_write_leaves_no_files_and_no_lineage(lab, tmp_path: Path,
 
     monkeypatch.setattr(em, "write_table", broken)
     with pytest.raises(OSError):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["vault"]  # no staging folder left
     assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
     # the budget was charged before any file existed: a failure over-charges, never under-charges
@@ -453,7 +456,7 @@ def test_a_failed_write_leaves_no_files_and_no_lineage(lab, tmp_path: Path,
 
 def test_manifest_states_the_release_and_is_signed(lab, tmp_path: Path) -> None:
     v, _, _ = lab
-    result = export_matrix(at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5,
+    result = export_matrix(ctx_at(v, NOW), purpose="external-sharing", category=RATINGS, epsilon=0.5,
                            recipient="Westbrook Institute of Food Design", out=tmp_path / "o")
     doc = json.loads((tmp_path / "o" / MANIFEST_NAME).read_text())
     body = doc["body"]
@@ -478,7 +481,7 @@ def test_manifest_states_the_release_and_is_signed(lab, tmp_path: Path) -> None:
 def test_tampering_with_any_file_or_field_is_detected(lab, tmp_path: Path) -> None:
     v, _, _ = lab
     src = tmp_path / "src"
-    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=src)
+    export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=src)
     clean = verify_export_dir(src, v.public_key)
     assert (clean["ok"], clean["problems"], clean["files"]) == (True, [], 2)
     assert verify_export(src, v.public_key)["ok"]  # the package's export verifier agrees
@@ -526,13 +529,13 @@ def test_utility_releases_rmse_figures_only(tmp_path: Path, policy_dir: Path) ->
     v, groups, _ = make_lab(tmp_path, policy_dir, {"all": 12, "norec": 2}, n_items=15, density=0.8)
     with v:
         before = v._audit.size
-        result = export_utility(at(v, NOW), purpose=REC, category=RATINGS, epsilons=[0.5, 4.0],
+        result = export_utility(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilons=[0.5, 4.0],
                                 out_png=tmp_path / "u.png")
         assert not spent(v, REC)  # nothing released but the figures: no budget, no lineage
         assert v._conn.execute("SELECT COUNT(*) FROM exports").fetchone()[0] == 0
         assert any(e["action"] == "export.utility" for e in v.audit_entries(before))
         with pytest.raises(UsageError):
-            export_utility(at(v, NOW), purpose=REC, category=RATINGS, epsilons=[1.0],
+            export_utility(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilons=[1.0],
                            out_png=tmp_path / "u.jpg")
     report = result["report"]
     assert set(report) == {"metric", "epsilons", "noisy_rmse", "noisy_rmse_std", "no_noise_rmse",
@@ -547,17 +550,17 @@ def test_utility_releases_rmse_figures_only(tmp_path: Path, policy_dir: Path) ->
 
 def test_budget_report_per_participant_rows_are_for_stewards_only(lab, tmp_path: Path) -> None:
     v, _, _ = lab
-    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
+    export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.5, out=tmp_path / "o")
     at(v, NOW).add_member("omar", "analyst", "analyst passphrase long enough")
     path = v.path
     v.close()
     with Vault.open(path, "analyst passphrase long enough", member="omar") as analyst:
-        rows = ledger.budget_report(analyst, REC)
+        rows = ledger.budget_report(analyst._context(), REC)
         assert rows[0]["participants_charged"] == 5 and rows[0]["spent_max"] == "1/2"
         with pytest.raises(PolicyRefusal, match="stewards only"):
-            ledger.budget_report(analyst, REC, show_participants=True)
+            ledger.budget_report(analyst._context(), REC, show_participants=True)
     with Vault.open(path, TEST_PASSPHRASE) as steward, pytest.raises(UsageError):
-        ledger.budget_report(steward, "no-such-purpose")
+        ledger.budget_report(steward._context(), "no-such-purpose")
 
 
 def test_the_benchmark_runs_and_goes_through_the_door() -> None:
@@ -582,10 +585,10 @@ def test_ratings_ingested_in_several_files_are_exported_as_one_row(lab, tmp_path
     csv.write_text("participant_id,item_id,value\n" + "".join(
         f"{pid},{item},2\n" for pid, items in extra.items() for item in items))
     at(v, T0).ingest_scores(csv, "explicit")
-    export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, unit="rating",
+    export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, unit="rating",
                   out=tmp_path / "r")
     frame = read_matrix(tmp_path / "r")[0].set_index(PSEUDONYM_COLUMN)
-    for pid, alias in pseudonyms(v, REC, groups["all"]).items():
+    for pid, alias in pseudonyms(v._context(), REC, groups["all"]).items():
         filled = set(frame.columns[frame.loc[alias].notna().to_numpy()])
         assert filled == {item for (p, item) in truth if p == pid} | set(extra.get(pid, []))
 
@@ -600,14 +603,14 @@ def test_two_stored_values_for_one_item_stop_the_export(lab, tmp_path: Path) -> 
     pid = groups["all"][0]
     item = next(i for (p, i) in truth if p == pid)
     body = scores.canonical([scores.ScoreRow(0, pid, item, 3.0)])
-    info = v._store.write(v._keys.participant_key(v._conn, pid), pid, "b-" + random_id(12),
+    info = v._door._blobs.write(v._door._ring.participant_key(v._conn, pid), pid, "b-" + random_id(12),
                           RATINGS, [body])
     with v._conn:
-        v._insert_blob(info, "2026-05-01T09:00:00Z")
+        v._context().insert_blob(info, "2026-05-01T09:00:00Z")
         v._conn.execute("INSERT INTO score_batches (blob_id, pid, category, batch_tag, rows) "
                         "VALUES (?, ?, ?, ?, 1)", (info.blob_id, pid, RATINGS, "forged"))
     with pytest.raises(IntegrityError, match="two stored values"):
-        export_matrix(at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x")
+        export_matrix(ctx_at(v, NOW), purpose=REC, category=RATINGS, epsilon=0.01, out=tmp_path / "x")
     assert not (tmp_path / "x").exists() and not spent(v, REC)
 
 

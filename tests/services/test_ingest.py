@@ -12,7 +12,7 @@ import numpy as np
 import pyedflib
 import pytest
 
-from tests.clock import ManualClock, at
+from tests.clock import ManualClock, at, ctx_at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
 from vault import InvalidInput, PolicyRefusal, UsageError, Vault
 
@@ -35,7 +35,7 @@ def lab(fresh_vault: Vault) -> tuple[Vault, dict[str, str]]:
 
 
 def _read_back(v: Vault, blob_id: str, tmp_path: Path) -> Path:
-    grant = at(v, NOW)._authorize_release("method-development", ["eeg-raw"], cohort=False)
+    grant = ctx_at(v, NOW).authorize_release("method-development", ["eeg-raw"], cohort=False)
     out = tmp_path / f"{blob_id}.edf"
     out.write_bytes(b"".join(at(v, NOW).read_blob(grant, blob_id)))
     return out
@@ -245,7 +245,7 @@ def _pyedflib_file(path: Path, labels: list[tuple[str, str]], notes: list[str],
 
 
 def _read_back_clocked(v: Vault, blob_id: str, tmp_path: Path) -> Path:
-    grant = v._authorize_release("method-development", ["eeg-raw"], cohort=False)
+    grant = v._context().authorize_release("method-development", ["eeg-raw"], cohort=False)
     out = tmp_path / f"{blob_id}.edf"
     out.write_bytes(b"".join(v.read_blob(grant, blob_id)))
     return out

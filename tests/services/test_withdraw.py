@@ -37,7 +37,7 @@ from cryptography.hazmat.primitives.keywrap import InvalidUnwrap, aes_key_unwrap
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tests.clock import ManualClock, at
+from tests.clock import ManualClock, at, ctx_at
 from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent, files_of
 from vault import Conflict, InvalidInput, NotFound, PolicyRefusal, UsageError, Vault, crypto, verify_audit
 from vault.audit import receipt
@@ -73,7 +73,7 @@ def _form(name: str, code: str, *, person: tuple[bytes, bytes, bytes] | None = N
 
 def _grant_blobs(v: Vault, pid: str) -> dict[str, bytes]:
     """Plaintext of every eeg-raw blob of `pid`, read through the one door."""
-    grant = at(v, NOW)._authorize_release("method-development", ["eeg-raw"], cohort=False,
+    grant = ctx_at(v, NOW).authorize_release("method-development", ["eeg-raw"], cohort=False,
                         participants=(pid,))
     return {b["blob_id"]: b"".join(at(v, NOW).read_blob(grant, b["blob_id"]))
             for b in v.blobs(pid) if b["kind"] == "eeg-raw"}
@@ -81,10 +81,10 @@ def _grant_blobs(v: Vault, pid: str) -> dict[str, bytes]:
 
 def _export(v: Vault, purpose: str, categories: list[str], members: list[str], **options: Any
             ) -> dict[str, Any]:
-    grant = at(v, NOW)._authorize_release(purpose, categories, **options)
+    grant = ctx_at(v, NOW).authorize_release(purpose, categories, **options)
     chosen = [p for p in members if p in grant.participants]
-    return exports._sign_and_record(at(v, NOW), export_id=exports.new_export_id(), kind="aggregate",
-                                   grant=grant, members=exports.pseudonyms(v, purpose, chosen),
+    return exports.sign_and_record(ctx_at(v, NOW), export_id=exports.new_export_id(), kind="aggregate",
+                                   grant=grant, members=exports.pseudonyms(v._context(), purpose, chosen),
                                    body={})
 
 
@@ -135,8 +135,8 @@ def lab(template, tmp_path: Path):
 
 
 def _withdraw(v: Vault, pid: str, scope: str = "full", *, now: dt.datetime = NOW) -> dict[str, Any]:
-    withdraw.request_withdrawal(at(v, now), pid, received=RECEIVED, scope=scope)
-    return withdraw.process(at(v, now), pid)
+    withdraw.request_withdrawal(ctx_at(v, now), pid, received=RECEIVED, scope=scope)
+    return withdraw.process(ctx_at(v, now), pid)
 
 
 # --------------------------------------------------------------------------- outside checks
@@ -203,16 +203,16 @@ def test_full_withdrawal_leaves_no_trace_in_any_byte(lab, tmp_path: Path) -> Non
     v, facts = lab
     t = facts["t"]
     path = v.path
-    old_ring = v._keys
+    old_ring = v._door._ring
     old_wrapped = v._conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (t,)).fetchone()[0]
     at(v, NOW).rekey("a new passphrase, long enough")  # leaves an older wrap in freed space
     row = v._conn.execute("SELECT wrapped_key, date_offset, lab_code_tag FROM participants "
                           "WHERE pid = ?", (t,)).fetchone()
     wrapped, offset, tag = row
-    data_key = v._keys.participant_key(v._conn, t)
+    data_key = v._door._ring.participant_key(v._conn, t)
     item_tags = [r[0].encode() for r in v._conn.execute(
         "SELECT item_tag FROM score_items WHERE pid = ?", (t,))]
-    blob_files = [v._store.path(b["blob_id"]) for b in v.blobs(t)]
+    blob_files = [v._door._blobs.path(b["blob_id"]) for b in v.blobs(t)]
     snippets = []
     for f in blob_files:
         raw = f.read_bytes()
@@ -227,7 +227,7 @@ def test_full_withdrawal_leaves_no_trace_in_any_byte(lab, tmp_path: Path) -> Non
     assert result["data_key_destroyed"] and result["wal_truncated"]
     assert not any(f.exists() for f in blob_files)
     assert_absent(path, *needles)  # while open: DB, WAL, SHM, blobs, tmp
-    kek_now, kek_before = v._keys._participant_kek(t), old_ring._participant_kek(t)
+    kek_now, kek_before = v._door._ring._participant_kek(t), old_ring._participant_kek(t)
     at(v, NOW).close()
     assert_absent(path, *needles)
     db = (path / "vault.db").read_bytes()
@@ -235,7 +235,7 @@ def test_full_withdrawal_leaves_no_trace_in_any_byte(lab, tmp_path: Path) -> Non
 
     with Vault.open(path, "a new passphrase, long enough", clock=ManualClock(NOW)) as again:
         with pytest.raises(NotFound, match="erased"):
-            again._keys.participant_key(again._conn, t)
+            again._door._ring.participant_key(again._conn, t)
         assert again.blobs(t) == []
         grant = at(again, NOW).authorize("primary-analysis", ["eeg-raw"])
         assert t not in grant.participants
@@ -274,15 +274,15 @@ def test_second_withdrawal_is_a_clear_no_op_error(lab) -> None:
     t = facts["t"]
     first = _withdraw(v, t)
     size = v._audit.size
-    for attempt in (lambda: withdraw.process(at(v, NOW), t),
-                    lambda: withdraw.process(at(v, NOW), first["request_id"]),
-                    lambda: withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED),
-                    lambda: withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED,
+    for attempt in (lambda: withdraw.process(ctx_at(v, NOW), t),
+                    lambda: withdraw.process(ctx_at(v, NOW), first["request_id"]),
+                    lambda: withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED),
+                    lambda: withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED,
                                                         scope="purpose:re-contact")):
         with pytest.raises(Conflict, match=r"erased|processed already|nothing"):
             attempt()
     assert v._audit.size == size
-    assert withdraw.receipt_of(v, t) == first["receipt"]
+    assert withdraw.receipt_of(v._context(), t) == first["receipt"]
     assert _raw_count(v.path, "SELECT COUNT(*) FROM withdrawals WHERE pid = ?", t) == 1
 
 
@@ -293,9 +293,9 @@ def test_only_stewards_withdraw(lab) -> None:
     with Vault.open(v.path, "analyst passphrase long enough", member="omar",
                     clock=ManualClock(NOW)) as analyst:
         with pytest.raises(PolicyRefusal, match="stewards only"):
-            withdraw.request_withdrawal(at(analyst, NOW), facts["t"], received=RECEIVED)
+            withdraw.request_withdrawal(ctx_at(analyst, NOW), facts["t"], received=RECEIVED)
         with pytest.raises(PolicyRefusal, match="stewards only"):
-            withdraw.sweep(at(analyst, NOW))
+            withdraw.sweep(ctx_at(analyst, NOW))
 
 
 def test_a_participant_without_consent_or_data_can_be_erased(fresh_vault: Vault) -> None:
@@ -313,7 +313,7 @@ def test_receipt_names_what_was_destroyed_and_nothing_identifying(lab) -> None:
     v, facts = lab
     t = facts["t"]
     blob_ids = sorted(b["blob_id"] for b in v.blobs(t))
-    key = v._keys.participant_key(v._conn, t)
+    key = v._door._ring.participant_key(v._conn, t)
     pseudonyms = [r[0] for r in v._conn.execute("SELECT pseudonym FROM export_members WHERE pid = ?", (t,))]
     result = _withdraw(v, t)
     doc = result["receipt"]
@@ -468,10 +468,10 @@ def test_erased_files_can_be_reclaimed_later_or_at_the_next_open(lab) -> None:
     v, facts = lab
     t = facts["t"]
     blob_ids = [b["blob_id"] for b in v.blobs(t)]
-    withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
-    result = withdraw.process(at(v, NOW), t, reclaim_space=False)
+    withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED)
+    result = withdraw.process(ctx_at(v, NOW), t, reclaim_space=False)
     assert "files_unlinked" not in result
-    assert not any(v._store.path(b).exists() for b in blob_ids)  # out of the store at once
+    assert not any(v._door._blobs.path(b).exists() for b in blob_ids)  # out of the store at once
     trash = sorted(p.name for p in (v.path / "tmp").iterdir())
     assert trash == sorted(b + withdraw.TRASH_SUFFIX for b in blob_ids)
     at(v, NOW).close()
@@ -489,7 +489,7 @@ def test_a_wal_that_cannot_be_emptied_is_reported_not_hidden(lab) -> None:
             _withdraw(v, facts["t"])
     finally:
         reader.close()
-    done = withdraw._finish_interrupted(v)
+    done = withdraw._finish_interrupted(v._context())
     assert done["wal_truncated"] is True and done["flushed"] and done["finished_earlier_erasure"]
     assert (v.path / "vault.db-wal").stat().st_size == 0
 
@@ -523,13 +523,13 @@ def test_withdrawing_the_only_purpose_that_grants_a_category_deletes_it(lab) -> 
     t = facts["t"]
     identity = [b for b in v.blobs(t) if b["kind"] == "identity-contact"]
     assert len(identity) == 1
-    path = v._store.path(identity[0]["blob_id"])
+    path = v._door._blobs.path(identity[0]["blob_id"])
     result = _withdraw(v, t, "purpose:re-contact")
     body = result["receipt"]["body"]
     assert body["destroyed"]["blobs"] == [identity[0]["blob_id"]] and body["destroyed"]["identity_record"]
     assert not path.exists() and {b["kind"] for b in v.blobs(t)} == {"eeg-raw", "scores-derived",
                                                                     "ratings-explicit"}
-    assert v._keys.participant_key(v._conn, t)  # the key lives on
+    assert v._door._ring.participant_key(v._conn, t)  # the key lives on
 
 
 def test_purpose_withdrawals_delete_a_category_once_nothing_grants_it(lab) -> None:
@@ -546,21 +546,21 @@ def test_purpose_withdrawals_delete_a_category_once_nothing_grants_it(lab) -> No
     assert last["stage"] == "exported" and last["recipients_to_notify"] == []  # internal export only
     assert {e["purpose"] for e in last["notify"]} == {"primary-analysis"}
     assert _withdraw(v, t, "purpose:re-contact")["blobs_deleted"] == 1  # the identity record
-    assert v.blobs(t) == [] and v._keys.participant_key(v._conn, t)  # nothing left, key still there
-    assert t in withdraw.sweep(at(v, NOW), dry_run=True)["no_purpose_permits"]  # for the steward
+    assert v.blobs(t) == [] and v._door._ring.participant_key(v._conn, t)  # nothing left, key still there
+    assert t in withdraw.sweep(ctx_at(v, NOW), dry_run=True)["no_purpose_permits"]  # for the steward
 
 
 def test_purpose_scopes_that_do_not_fit_the_consent_are_refused(lab) -> None:
     v, facts = lab
     t = facts["t"]
     with pytest.raises(InvalidInput, match="only through recommender-training"):
-        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED,
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED,
                                     scope="purpose:recommender-training/canteen-menu")
     with pytest.raises(InvalidInput, match="does not answer"):
-        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:mind-reading")
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED, scope="purpose:mind-reading")
     for bad in ("everything", "purpose:", "purpose:Bad Id", "full "):
         with pytest.raises(UsageError):
-            withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope=bad)
+            withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED, scope=bad)
 
 
 # --------------------------------------------------------------------------- requests
@@ -569,7 +569,7 @@ def test_purpose_scopes_that_do_not_fit_the_consent_are_refused(lab) -> None:
 def test_deadline_comes_from_the_policy_and_pending_lists_overdue_first(lab, tmp_path: Path) -> None:
     v, facts = lab
     a, b, c = facts["others"][:3]
-    late = withdraw.request_withdrawal(at(v, NOW), a, received=dt.date(2026, 5, 1))
+    late = withdraw.request_withdrawal(ctx_at(v, NOW), a, received=dt.date(2026, 5, 1))
     assert late["deadline"] == "2026-05-31" and late["days_left"] < 0  # 30 days: GDPR Art. 12(3)
     policy = tmp_path / "policy"
     shutil.copytree(ROOT / "policies", policy)
@@ -578,15 +578,17 @@ def test_deadline_comes_from_the_policy_and_pending_lists_overdue_first(lab, tmp
     (policy / "policy.toml").write_text(text.replace("withdrawal_deadline_days = 30",
                                                      "withdrawal_deadline_days = 10"))
     at(v, NOW).apply_policy(policy)
-    soon = withdraw.request_withdrawal(at(v, NOW), b, received=dt.date(2026, 6, 14))
+    soon = withdraw.request_withdrawal(ctx_at(v, NOW), b, received=dt.date(2026, 6, 14))
     assert soon["deadline"] == "2026-06-24"
-    mid = withdraw.request_withdrawal(at(v, NOW), c, received=dt.date(2026, 6, 1), scope="purpose:re-contact")
-    listed = withdraw.pending(at(v, NOW))
+    mid = withdraw.request_withdrawal(ctx_at(v, NOW), c, received=dt.date(2026, 6, 1),
+                                      scope="purpose:re-contact")
+    listed = withdraw.pending(ctx_at(v, NOW))
     assert [r["request_id"] for r in listed] == [late["request_id"], mid["request_id"], soon["request_id"]]
     assert [r["overdue"] for r in listed] == [True, True, False]
-    done = withdraw.process(at(v, NOW), mid["request_id"])
+    done = withdraw.process(ctx_at(v, NOW), mid["request_id"])
     assert not done["on_time"]
-    assert [r["request_id"] for r in withdraw.pending(at(v, NOW))] == [late["request_id"], soon["request_id"]]
+    assert ([r["request_id"] for r in withdraw.pending(ctx_at(v, NOW))]
+            == [late["request_id"], soon["request_id"]])
 
 
 def test_bad_requests_change_nothing(lab) -> None:
@@ -594,33 +596,33 @@ def test_bad_requests_change_nothing(lab) -> None:
     t = facts["t"]
     size = v._audit.size
     with pytest.raises(UsageError, match="future"):
-        withdraw.request_withdrawal(at(v, NOW), t, received=dt.date(2026, 7, 1))
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=dt.date(2026, 7, 1))
     with pytest.raises(UsageError, match="date"):
-        withdraw.request_withdrawal(at(v, NOW), t, received=NOW)  # type: ignore[arg-type]
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=NOW)  # type: ignore[arg-type]
     with pytest.raises(NotFound):
-        withdraw.request_withdrawal(at(v, NOW), "0" * 32, received=RECEIVED)
+        withdraw.request_withdrawal(ctx_at(v, NOW), "0" * 32, received=RECEIVED)
     with pytest.raises(NotFound, match="no open withdrawal request"):
-        withdraw.process(at(v, NOW), t)
+        withdraw.process(ctx_at(v, NOW), t)
     with pytest.raises(NotFound):
-        withdraw.process(at(v, NOW), "w-0000000000000000")
+        withdraw.process(ctx_at(v, NOW), "w-0000000000000000")
     assert v._audit.size == size
-    first = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
+    first = withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED)
     with pytest.raises(Conflict, match=first["request_id"]):
-        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED)
 
 
 def test_a_full_withdrawal_supersedes_open_purpose_requests(lab) -> None:
     v, facts = lab
     t = facts["t"]
-    purpose = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:re-contact")
+    purpose = withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED, scope="purpose:re-contact")
     with pytest.raises(UsageError, match="several open requests"):
-        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED, scope="purpose:external-sharing")
-        withdraw.process(at(v, NOW), t)
-    full = withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
-    result = withdraw.process(at(v, NOW), t)  # the full request wins
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED, scope="purpose:external-sharing")
+        withdraw.process(ctx_at(v, NOW), t)
+    full = withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED)
+    result = withdraw.process(ctx_at(v, NOW), t)  # the full request wins
     assert result["request_id"] == full["request_id"]
     assert purpose["request_id"] in result["superseded_requests"]
-    assert withdraw.pending(at(v, NOW)) == []
+    assert withdraw.pending(ctx_at(v, NOW)) == []
 
 
 # --------------------------------------------------------------------------- recall
@@ -668,17 +670,17 @@ def test_export_check_of_a_narrower_purpose_uses_the_consent_for_its_parent(lab)
 def test_sweep_erases_ended_consent_with_receipts_and_is_idempotent(lab) -> None:
     v, facts = lab
     expired = facts["expired"]
-    dry = withdraw.sweep(at(v, NOW), dry_run=True)
+    dry = withdraw.sweep(ctx_at(v, NOW), dry_run=True)
     assert dry["would_erase"] == [{"participant_id": expired, "trigger": "consent-expired"}]
     assert not v._conn.execute("SELECT erased_at FROM participants WHERE pid = ?", (expired,)).fetchone()[0]
-    files = [v._store.path(b["blob_id"]) for b in v.blobs(expired)]
-    report = withdraw.sweep(at(v, NOW))
+    files = [v._door._blobs.path(b["blob_id"]) for b in v.blobs(expired)]
+    report = withdraw.sweep(ctx_at(v, NOW))
     assert [e["participant_id"] for e in report["erased"]] == [expired] and report["wal_truncated"]
     assert not any(f.exists() for f in files) and v.blobs(expired) == []
-    doc = withdraw.receipt_of(v, expired)
+    doc = withdraw.receipt_of(v._context(), expired)
     assert doc["body"]["trigger"] == "consent-expired" and doc["body"]["consent"]["change"].startswith("none")
     assert receipt.verify_receipt(doc, v.public_key) == (True, [])
-    assert withdraw.sweep(at(v, NOW))["erased"] == []
+    assert withdraw.sweep(ctx_at(v, NOW))["erased"] == []
     later = withdraw.sweep(at(v, dt.datetime(2031, 3, 5, tzinfo=dt.UTC)), dry_run=True)
     assert len(later["would_erase"]) == 22  # everyone else's retention ended on 2031-03-02 / 04
     assert {w["trigger"] for w in later["would_erase"]} == {"retention-ended", "consent-expired"}
@@ -702,7 +704,7 @@ except BlockingIOError:
 os.close(fd)
 print("tried", flush=True)
 with Vault.open(sys.argv[1], TEST_PASSPHRASE, clock=ManualClock(NOW)) as v:  # waits for the lock
-    print(json.dumps({"blocked": blocked, "erased": len(withdraw.sweep(v)["erased"])}))
+    print(json.dumps({"blocked": blocked, "erased": len(withdraw.sweep(v._context())["erased"])}))
 """
 
 
@@ -716,7 +718,7 @@ def test_a_concurrent_sweep_waits_for_the_lock_and_then_finds_nothing(template, 
         assert child.stdout is not None
         assert child.stdout.readline().strip() == b"tried"
         time.sleep(0.2)  # the child now waits for the vault's lock
-        assert len(withdraw.sweep(at(v, NOW))["erased"]) == 1
+        assert len(withdraw.sweep(ctx_at(v, NOW))["erased"]) == 1
         at(v, NOW).close()
         out, err = child.communicate(timeout=60)
     assert child.returncode == 0, err
@@ -741,7 +743,7 @@ def crash_template(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str,
         for i in range(8):
             at(v, NOW).put_blob(t, "eeg-raw", [MARKER + bytes([i]) * 5000])
         at(v, NOW).put_blob(other, "eeg-raw", [b"EEG-OF-OTHER" * 100])
-        withdraw.request_withdrawal(at(v, NOW), t, received=RECEIVED)
+        withdraw.request_withdrawal(ctx_at(v, NOW), t, received=RECEIVED)
         wrapped = v._conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (t,)).fetchone()[0]
         blobs = [b["blob_id"] for b in v.blobs(t)]
     return path, t, blobs, wrapped
@@ -759,23 +761,23 @@ def _check_after_kill(path: Path, t: str, blobs: list[str], wrapped: bytes) -> s
                                  (t,)).fetchone()[0]
         status, stored = v._conn.execute("SELECT status, receipt FROM withdrawals WHERE pid = ?",
                                          (t,)).fetchone()
-        present = [b for b in blobs if v._store.path(b).exists()]
+        present = [b for b in blobs if v._door._blobs.path(b).exists()]
         erase_entries = [e for e in v.audit_entries() if e["action"] == "withdraw.erase"]
         if erased:
             state = "after"
             assert status == "processed" and stored is not None and len(erase_entries) == 1
-            assert receipt.verify_receipt(withdraw.receipt_of(v, t), v.public_key) == (True, [])
+            assert receipt.verify_receipt(withdraw.receipt_of(v._context(), t), v.public_key) == (True, [])
             assert v.blobs(t) == [] and present == []
             assert registry.consent_history(v._conn, t)[-1].change == "withdrawn"
             with pytest.raises(Conflict):
-                withdraw.process(at(v, NOW), t)
+                withdraw.process(ctx_at(v, NOW), t)
         else:
             state = "before"
             assert status == "pending" and stored is None and erase_entries == []
             assert sorted(b["blob_id"] for b in v.blobs(t)) == sorted(blobs) and present == blobs
             assert len(_grant_blobs(v, t)) == 8 and len(v.consent_history(t)) == 1
-            withdraw.process(at(v, NOW), t)  # the rerun completes it
-            assert v.blobs(t) == [] and not any(v._store.path(b).exists() for b in blobs)
+            withdraw.process(ctx_at(v, NOW), t)  # the rerun completes it
+            assert v.blobs(t) == [] and not any(v._door._blobs.path(b).exists() for b in blobs)
         assert v.verify()["ok"]
     assert_absent(path, wrapped, MARKER)
     return state

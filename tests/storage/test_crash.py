@@ -60,8 +60,8 @@ def _check(path: Path) -> int:
         assert files == set(rows), "every blob file has a row and every row a file"
         assert not list((path / "tmp").iterdir())
         for blob_id, row in rows.items():
-            key = v._keys.participant_key(v._conn, row["pid"])
-            assert sum(len(c) for c in v._store._decrypt(key, row["pid"], blob_id)) == row["plain_size"]
+            key = v._door._ring.participant_key(v._conn, row["pid"])
+            assert sum(len(c) for c in v._door._blobs._decrypt(key, row["pid"], blob_id)) == row["plain_size"]
     assert verify_audit(path).ok
     return len(rows)
 

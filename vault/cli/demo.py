@@ -17,7 +17,7 @@ from typing import Any
 
 from vault import crypto
 from vault.api import Vault, prove, verify_audit, verify_proof, verify_receipt_file
-from vault.errors import Conflict, InvalidInput, PolicyRefusal, VaultError
+from vault.errors import Conflict, InvalidInput, PolicyRefusal
 
 DEMO_PASSPHRASE = "tasting lab demo passphrase (demo only)"  # noqa: S105 (invented data)
 ANALYST_PASSPHRASE = "tasting lab analyst passphrase (demo only)"  # noqa: S105 (invented data)
@@ -178,16 +178,11 @@ def _manifest(export_dir: Path) -> dict[str, Any]:
 def _members(v: Vault, export_dir: Path) -> set[str]:
     """The steward's view of an export's lineage (internal ids)."""
     export_id = _manifest(export_dir)["body"]["export_id"]
-    return {r[0] for r in v._conn.execute("SELECT pid FROM export_members WHERE export_id = ?",
-                                          (export_id,))}
+    return v.export_members(export_id)
 
 
 def _still_readable(v: Vault, pid: str) -> bool:
-    try:
-        v._keys.participant_key(v._conn, pid)
-    except VaultError:
-        return False
-    return True
+    return v.readable(pid)
 
 
 def _by_vault_id(source: Path, pids: dict[str, str], out: Path) -> Path:

@@ -50,6 +50,7 @@ from vault.policy.policyset import (
     parse_toml,
     safe_id,
 )
+from vault.times import iso_utc
 
 RECORD_SCHEMA = 1
 DIGEST_DOMAIN = b"mindward/v1/consent-version\n"
@@ -386,6 +387,41 @@ class ConsentVersion(_Model):
         return entry.status
 
 
+# -- which answer speaks for a purpose: the one rule, used by decisions, exports, withdrawal,
+# the report and ingest
+
+def answering_purpose(consent: ConsentVersion, chain: Iterable[str]) -> str | None:
+    """The purpose whose answer decides: the narrowest one at or above the requested purpose
+    that the version answers (`chain`: the purpose, then its parents, as `PolicySet.chain`)."""
+    answers = consent.purposes
+    for purpose in chain:
+        if purpose in answers:
+            return purpose
+    return None
+
+
+def answer_for(consent: ConsentVersion, chain: Iterable[str]) -> PurposeConsent | None:
+    """The answer that decides for the purpose `chain` starts with (None: not answered)."""
+    purpose = answering_purpose(consent, chain)
+    return None if purpose is None else consent.purposes[purpose]
+
+
+def permits_purpose(consent: ConsentVersion | None, chain: Iterable[str], now: dt.datetime) -> bool:
+    """A live yes: the deciding answer permits processing and the version has not expired."""
+    if consent is None or consent.is_expired(now):
+        return False
+    answer = answer_for(consent, chain)
+    return answer is not None and answer.permits
+
+
+def covers_storage(consent: ConsentVersion | None, category: str, now: dt.datetime) -> bool:
+    """Storing `category` needs some purpose granting it with a status that permits
+    processing, in a version that has not expired."""
+    if consent is None or consent.is_expired(now):
+        return False
+    return any(p.permits and category in p.categories for p in consent.purposes.values())
+
+
 def _aware(moment: dt.datetime, name: str) -> dt.datetime:
     if not isinstance(moment, dt.datetime) or moment.tzinfo is None:
         raise UsageError(f"{name} must be a datetime with a time zone")
@@ -531,7 +567,7 @@ def describe_history(versions: Sequence[ConsentVersion], *, now: dt.datetime) ->
     lines: list[str] = []
     for v in versions:
         end = "expired" if v.is_expired(now) else "valid"
-        lines.append(f"version {v.number} ({v.change}, recorded {v.recorded_at:%Y-%m-%dT%H:%M:%SZ}"
+        lines.append(f"version {v.number} ({v.change}, recorded {iso_utc(v.recorded_at)}"
                      f", form {v.form_version}, policy {v.policy_version}): signed {v.signed}, "
                      f"expires {v.expires} [{end}]")
         for pid, entry in sorted(v.purposes.items()):

@@ -35,7 +35,7 @@ from pydantic import BaseModel, ConfigDict, Field, StringConstraints, Validation
 
 from vault import crypto
 from vault.errors import UsageError
-from vault.policy.consent import PERMITTING, ConsentStatus, ConsentVersion
+from vault.policy.consent import PERMITTING, ConsentStatus, ConsentVersion, answer_for
 from vault.policy.policyset import ART9_EXPLICIT_CONSENT, PolicySet, safe_id
 
 CONSENT_DIGEST_DOMAIN = b"mindward/v1/decision-consents\n"
@@ -322,12 +322,7 @@ def _decide_each(policy: PolicySet, request: Request,
             number(0)
             continue
         number(cv.number)
-        answers = cv.purposes
-        entry = None
-        for p in chain:
-            entry = answers.get(p)
-            if entry is not None:
-                break
+        entry = answer_for(cv, chain)
         if entry is None:
             decisions[pid] = no_consent
             continue

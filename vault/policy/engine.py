@@ -25,6 +25,7 @@ from vault import crypto
 from vault.errors import PolicyRefusal
 from vault.policy.consent import ConsentVersion
 from vault.policy.decide import CohortDecision, Request, decide
+from vault.times import iso_utc
 
 _MINT = object()
 GRANT_LIFETIME = dt.timedelta(minutes=30)
@@ -101,13 +102,16 @@ class Grant:
     counts = property(lambda self: self._record.counts)
     noise_only = property(lambda self: self._record.noise_only)
 
+    def issued_by(self, engine: PolicyEngine) -> bool:
+        return self._engine is engine
+
     def summary(self) -> dict[str, Any]:
         r = self._record
         return {"grant": r.grant_id, "actor": r.request.actor, "role": r.request.role,
                 "purpose": r.request.purpose, "categories": sorted(r.categories),
                 "participants": len(r.participants), "policy_version": r.policy_version,
                 "consent_digest": r.consent_digest,
-                "expires_at": r.expires_at.strftime("%Y-%m-%dT%H:%M:%SZ")}
+                "expires_at": iso_utc(r.expires_at)}
 
 
 class PolicyEngine:
@@ -129,8 +133,8 @@ class PolicyEngine:
         return frozenset(self._pseudonymise(record.request.purpose, sorted(record.participants)).values())
 
     def record(self, grant: Grant) -> GrantRecord:
-        found = (self._issued.get(grant._id)
-                 if isinstance(grant, Grant) and grant._engine is self else None)
+        found = (self._issued.get(grant.grant_id)
+                 if isinstance(grant, Grant) and grant.issued_by(self) else None)
         if found is None:
             raise PolicyRefusal("this grant was not issued by this vault session")
         return found

@@ -19,7 +19,6 @@ manifest. Pure-DP spending never needs a delta.
 
 from __future__ import annotations
 
-import datetime as dt
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from fractions import Fraction
@@ -28,10 +27,11 @@ from typing import TYPE_CHECKING, Any
 from vault.errors import PolicyRefusal, UsageError
 from vault.privacy.accountant import Budget, Cost, Ledger, remaining_epsilon, spent_epsilon, within
 from vault.storage import db as storage
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
     from vault.policy.policyset import PolicySet
+    from vault.services.context import Context
 
 ZCDP_DELTA = Fraction(1, 10**6)
 _AUDIT_CHUNK = 1000  # subjects per audit entry
@@ -82,31 +82,31 @@ class _Memo:
         return found[0]
 
 
-def _ledgers(v: Vault, purpose: str, pids: Sequence[str] | None = None,
+def _ledgers(ctx: Context, purpose: str, pids: Sequence[str] | None = None,
             memo: _Memo | None = None) -> dict[str, Ledger]:
     """Stored ledgers for `purpose` (all rows, or those of `pids`); absent means nothing spent."""
     parse = (memo or _Memo()).ledger
     sql = "SELECT pid, epsilon, rho, releases FROM budget_ledger WHERE purpose = ?"
     if pids is None:
-        return {pid: parse(e, r, n) for pid, e, r, n in v._conn.execute(sql, (purpose,))}
-    rows = storage.rows_in(v._conn, sql + " AND pid", pids, (purpose,))
+        return {pid: parse(e, r, n) for pid, e, r, n in ctx.conn.execute(sql, (purpose,))}
+    rows = storage.rows_in(ctx.conn, sql + " AND pid", pids, (purpose,))
     return {pid: parse(e, r, n) for pid, e, r, n in rows}
 
 
-def _chain_ledgers(v: Vault, purpose: str, pids: Sequence[str],
+def _chain_ledgers(ctx: Context, purpose: str, pids: Sequence[str],
                   memo: _Memo | None = None) -> dict[str, dict[str, Ledger]]:
     """{budgeted purpose of the chain: {pid: ledger}} for `pids`."""
-    return {name: _ledgers(v, name, pids, memo) for name in budgets(v.policy, purpose)}
+    return {name: _ledgers(ctx, name, pids, memo) for name in budgets(ctx.policy, purpose)}
 
 
-def affordable(v: Vault, purpose: str, costs: Mapping[str, Cost], memo: _Memo | None = None,
+def affordable(ctx: Context, purpose: str, costs: Mapping[str, Cost], memo: _Memo | None = None,
                held: Mapping[str, Mapping[str, Ledger]] | None = None) -> dict[str, bool]:
     """Exactly: would each participant's cost fit every budget of the purpose's chain?"""
-    plan = budgets(v.policy, purpose)
+    plan = budgets(ctx.policy, purpose)
     if not plan:
         return dict.fromkeys(costs, False)
     memo = memo or _Memo()
-    held = held if held is not None else _chain_ledgers(v, purpose, list(costs), memo)
+    held = held if held is not None else _chain_ledgers(ctx, purpose, list(costs), memo)
     empty = Ledger()
     return {pid: all(memo.within(held[name].get(pid, empty), costs[pid], budget)
                      for name, budget in plan.items()) for pid in costs}
@@ -121,7 +121,7 @@ def _float_below(value: Fraction) -> float:
 _ZERO = Fraction(0)  # one object for the lifetime of the process (it keys a memo by identity)
 
 
-def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], request_epsilon: float,
+def remaining_for_decide(ctx: Context, purpose: str, costs: Mapping[str, Cost], request_epsilon: float,
                          scale: Mapping[str, int] | None = None) -> dict[str, float]:
     """What `decide(budget_remaining=...)` needs, agreeing with the exact check.
 
@@ -134,9 +134,9 @@ def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], requ
     `request_epsilon` for someone who can.
     """
     memo = _Memo()
-    plan = budgets(v.policy, purpose)
-    held = _chain_ledgers(v, purpose, list(costs), memo)
-    verdict = affordable(v, purpose, costs, memo, held)
+    plan = budgets(ctx.policy, purpose)
+    held = _chain_ledgers(ctx, purpose, list(costs), memo)
+    verdict = affordable(ctx, purpose, costs, memo, held)
     below_request = math.nextafter(request_epsilon, -math.inf)
     empty = Ledger()
     floats: dict[tuple[int, int], float] = {}  # by identity: `left` objects live in the memo
@@ -152,31 +152,31 @@ def remaining_for_decide(v: Vault, purpose: str, costs: Mapping[str, Cost], requ
     return out
 
 
-def charge(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str) -> None:
+def charge(ctx: Context, purpose: str, costs: Mapping[str, Cost], *, export_id: str) -> None:
     """Spend `costs` from every budgeted purpose of the chain, in one transaction (audited).
 
     Re-checks every participant inside the transaction and refuses the whole
     charge (PolicyRefusal, nothing written) if anyone would exceed a budget.
     Every call spends again: the same request twice is charged twice.
     """
-    v._require_steward("budget.charge")
-    now = v.now()
-    at = now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    with storage.transaction(v._conn):
-        _charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+    ctx.require_steward("budget.charge")
+    now = ctx.now()
+    at = iso_utc(now)
+    with storage.transaction(ctx.conn):
+        charge_in_transaction(ctx, purpose, costs, export_id=export_id, at=at)
 
 
-def _require_transaction(v: Vault) -> None:
+def _require_transaction(ctx: Context) -> None:
     """Ledger writes and their audit entry commit together or not at all: never in autocommit."""
-    if not v._conn.in_transaction:
+    if not ctx.conn.in_transaction:
         raise UsageError("the budget ledger is written only inside a transaction with its audit entry")
 
 
-def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
+def charge_in_transaction(ctx: Context, purpose: str, costs: Mapping[str, Cost], *, export_id: str,
                           at: str) -> list[str]:
     """`charge` inside the caller's open transaction; returns the purposes charged."""
-    _require_transaction(v)
-    plan = budgets(v.policy, purpose)
+    _require_transaction(ctx)
+    plan = budgets(ctx.policy, purpose)
     if not plan:
         raise PolicyRefusal(f"purpose {purpose} sets no per-participant privacy budget")
     pids = list(costs)
@@ -185,7 +185,7 @@ def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *,
     after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
     empty = Ledger()
     for name, budget in plan.items():
-        held = _ledgers(v, name, pids, memo)
+        held = _ledgers(ctx, name, pids, memo)
         for pid in pids:
             old, cost = held.get(pid, empty), costs[pid]
             if not memo.within(old, cost, budget):
@@ -197,7 +197,7 @@ def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *,
                 known = after[(id(old), id(cost))] = (
                     (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
             updates.append((pid, name, *known[0]))
-    v._conn.executemany(
+    ctx.conn.executemany(
         "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
         "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
         "rho = excluded.rho, releases = excluded.releases", updates)
@@ -205,24 +205,24 @@ def _charge_in_transaction(v: Vault, purpose: str, costs: Mapping[str, Cost], *,
     for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
         chunk = ordered[start : start + _AUDIT_CHUNK]
         distinct = {(c.epsilon, c.rho) for c in (costs[p] for p in chunk)}
-        entries.append({"actor": v.member, "action": "budget.charge", "purpose": purpose,
+        entries.append({"actor": ctx.member, "action": "budget.charge", "purpose": purpose,
                         "subjects": chunk, "decision": "done",
                         "details": {"export": export_id, "charged_purposes": list(plan),
                                     "costs": sorted([str(e), str(r)] for e, r in distinct)}})
-    v._audit.append_many(entries, at)
+    ctx.audit.append_many(entries, at)
     return list(plan)
 
 
-def _refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
+def refund_in_transaction(ctx: Context, purpose: str, purposes: Sequence[str],
                           costs: Mapping[str, Cost], *, export_id: str, at: str) -> None:
-    """Credit back exactly what `_charge_in_transaction` spent for a release that never left the
+    """Credit back exactly what `charge_in_transaction` spent for a release that never left the
     vault (one release fewer; a ledger back at zero releases is removed). Audited."""
-    _require_transaction(v)
+    _require_transaction(ctx)
     memo = _Memo()
     updates: list[tuple[str, str, int, str, str]] = []
     gone: list[tuple[str, str]] = []
     for name in purposes:
-        held = _ledgers(v, name, list(costs), memo)
+        held = _ledgers(ctx, name, list(costs), memo)
         for pid, cost in costs.items():
             old = held.get(pid)
             if old is None:  # erased since (withdrawal deletes ledger rows): nothing to credit
@@ -235,19 +235,19 @@ def _refund_in_transaction(v: Vault, purpose: str, purposes: Sequence[str],
                 gone.append((pid, name))
             else:
                 updates.append((str(epsilon), str(rho), releases, pid, name))
-    v._conn.executemany("UPDATE budget_ledger SET epsilon = ?, rho = ?, releases = ? "
+    ctx.conn.executemany("UPDATE budget_ledger SET epsilon = ?, rho = ?, releases = ? "
                         "WHERE pid = ? AND purpose = ?", updates)
-    v._conn.executemany("DELETE FROM budget_ledger WHERE pid = ? AND purpose = ?", gone)
+    ctx.conn.executemany("DELETE FROM budget_ledger WHERE pid = ? AND purpose = ?", gone)
     ordered = sorted(costs)
-    v._audit.append_many([
-        {"actor": v.member, "action": "budget.refund", "purpose": purpose,
+    ctx.audit.append_many([
+        {"actor": ctx.member, "action": "budget.refund", "purpose": purpose,
          "subjects": ordered[start : start + _AUDIT_CHUNK], "decision": "done",
          "details": {"export": export_id, "refunded_purposes": list(purposes),
                      "reason": "the release never left the vault"}}
         for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK)], at)
 
 
-def budget_report(v: Vault, purpose: str | None = None, *,
+def budget_report(ctx: Context, purpose: str | None = None, *,
                   show_participants: bool = False) -> list[dict[str, Any]]:
     """Per budgeted purpose: how much of it the living participants have spent.
 
@@ -255,21 +255,21 @@ def budget_report(v: Vault, purpose: str | None = None, *,
     stewards only. "spent" is the epsilon the ledger amounts to at the vault's
     delta (pure epsilon plus the zCDP conversion of rho).
     """
-    if show_participants and v.role != "steward":
-        raise PolicyRefusal(f"member '{v.member}' ({v.role}) may not see per-participant budgets: "
+    if show_participants and ctx.role != "steward":
+        raise PolicyRefusal(f"member '{ctx.member}' ({ctx.role}) may not see per-participant budgets: "
                             "stewards only")
-    names = [purpose] if purpose is not None else sorted(v.policy.purposes)
-    if purpose is not None and purpose not in v.policy.purposes:
+    names = [purpose] if purpose is not None else sorted(ctx.policy.purposes)
+    if purpose is not None and purpose not in ctx.policy.purposes:
         raise UsageError(f"unknown purpose '{purpose}'")
-    living = [r[0] for r in v._conn.execute(
+    living = [r[0] for r in ctx.conn.execute(
         "SELECT pid FROM participants WHERE wrapped_key IS NOT NULL ORDER BY pid")]
     out: list[dict[str, Any]] = []
     for name in names:
-        cap = v.policy.purposes[name].epsilon_per_participant
+        cap = ctx.policy.purposes[name].epsilon_per_participant
         if cap is None:
             continue
         budget = Budget(Fraction(str(cap)), ZCDP_DELTA)
-        held = _ledgers(v, name, living)
+        held = _ledgers(ctx, name, living)
         spent = {pid: spent_epsilon(led, budget.delta) for pid, led in held.items()}
         left = {pid: remaining_epsilon(led, budget) for pid, led in held.items()}
         row: dict[str, Any] = {

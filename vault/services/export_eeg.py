@@ -17,9 +17,10 @@ from vault.formats.bids import BidsWriter
 from vault.formats.edf import recording_meta
 from vault.formats.edf_header import demographics, parse_header, with_known_channels, without_demographics
 from vault.services import export_runs, exports
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
+    from vault.services.context import Context
 
 MANIFEST_NAME = "manifest.json"
 TASK = "dishes"
@@ -50,37 +51,37 @@ def _split_header(chunks: Iterator[bytes]) -> tuple[bytes, Iterator[bytes]]:
     return bytes(first[:size]), rest()
 
 
-def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
+def export_eeg(ctx: Context, *, purpose: str, out: Path, recipient: str | None,
                with_demographics: bool = False) -> dict[str, Any]:
-    now = v.now()
+    now = ctx.now()
     categories = ["eeg-raw", *(["demographics"] if with_demographics else [])]
-    grant = v._authorize_release(purpose, categories, export=True, recipient=recipient)
+    grant = ctx.authorize_release(purpose, categories, export=True, recipient=recipient)
     # Sex and age band leave only under a grant that covers demographics; otherwise the
     # exported headers and participants.tsv carry none.
     keep_demographics = "demographics" in grant.categories
-    marks = ",".join("?" * len(v._grant_participants(grant)))
-    rows = v._conn.execute(
+    marks = ",".join("?" * len(ctx.grant_participants(grant)))
+    rows = ctx.conn.execute(
         f"SELECT r.blob_id, r.pid, b.plain_size FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
         f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id",
-        sorted(v._grant_participants(grant))).fetchall()
+        sorted(ctx.grant_participants(grant))).fetchall()
     if not rows:
         raise NotFound("the granted participants hold no recordings")
-    labels = exports.pseudonyms(v, purpose, {pid for _, pid, _ in rows})
+    labels = exports.pseudonyms(ctx, purpose, {pid for _, pid, _ in rows})
     out = export_runs.check_out(out)
     export_id = exports.new_export_id()
     # recorded before any file exists, written into a staging folder, renamed into place at
     # the end; a killed run is finished or cleaned up at the next open (vault.services.export_runs)
-    staging = export_runs.begin(v, export_id=export_id, kind="eeg-bids", purpose=purpose, out=out,
-                                at=exports._at(now))
+    staging = export_runs.begin(ctx, export_id=export_id, kind="eeg-bids", purpose=purpose, out=out,
+                                at=iso_utc(now))
     try:
-        export_runs.writing(v, export_id)
+        export_runs.writing(ctx, export_id)
         writer = BidsWriter(staging, dataset_name=f"mindward export for {purpose}", task=TASK,
                             readme_intro="De-identified EEG released by mindward under a signed "
                                          "manifest (manifest.json).")
         runs: dict[str, int] = {}
         sizes = {blob_id: size for blob_id, _, size in rows}
         people: dict[str, dict[str, str]] = {}
-        for blob_id, pid, chunks in v._read_for_release(grant, [r[0] for r in rows]):
+        for blob_id, pid, chunks in ctx.read_for_release(grant, [r[0] for r in rows]):
             runs[pid] = runs.get(pid, 0) + 1
             header, blocks = _split_header(iter(chunks))
             try:  # the metadata is the stored header itself: nothing about it is kept in clear
@@ -99,15 +100,15 @@ def export_eeg(v: Vault, *, purpose: str, out: Path, recipient: str | None,
                 header = without_demographics(header, parsed)
             writer.add_recording(labels[pid], None, runs[pid], header, blocks, recording_meta(parsed))
         files = writer.finish([people[pid] for pid in sorted(labels)], bidsignore=[MANIFEST_NAME])
-        signed = exports._sign_and_record(
-            v, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,
+        signed = exports.sign_and_record(
+            ctx, export_id=export_id, kind="eeg-bids", grant=grant, members=labels,
             body={"recordings": len(rows), "data_format": "EEG-BIDS (EDF/EDF+/BDF)",
                   "files": [{"path": f.path, "size": f.size, "sha256": f.sha256} for f in files],
                   "privacy": "no differential-privacy noise: de-identified recordings, which can "
                              "still identify a person"})
-        export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
+        export_runs.publish(ctx, export_id, staging, out, signed, iso_utc(now))
     except BaseException:
-        export_runs.abandon(v, export_id, exports._at(now))
+        export_runs.abandon(ctx, export_id, iso_utc(now))
         raise
     return {"export_id": export_id, "out": str(out), "participants": len(labels),
             "recordings": len(rows), "manifest": str(out / MANIFEST_NAME)}

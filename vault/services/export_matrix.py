@@ -7,14 +7,14 @@ The flow of one export (every step audited):
 2. The policy engine decides the cohort (consent, roles, expiry, minimum
    cohort, budget, recipient, per-rating units); a refusal names counts per
    reason, never who.
-3. Every granted batch is read through the one door (`Vault._read_for_release`: plaintext
+3. Every granted batch is read through the one door (`Context.read_for_release`: plaintext
    only to the release mechanism).
 4. The matrix (participants x items) is released with exact discrete Laplace
    or Gaussian noise (`vault.privacy.accountant.release_matrix`), or as participant-level
    DP statistics (`vault.privacy.aggregate.release_aggregate`).
 5. The run is recorded and the budget charged in one transaction before any
    file exists, the files are written into a staging folder, the manifest is
-   signed and the lineage recorded (`vault.services.exports._sign_and_record`), and the
+   signed and the lineage recorded (`vault.services.exports.sign_and_record`), and the
    folder is renamed into place (`vault.services.export_runs`: a run killed before any
    file was written is refunded at the next open, one killed after the files
    were signed is finished, one killed in between keeps its charge).
@@ -64,11 +64,12 @@ from vault.privacy.accountant import (
 )
 from vault.privacy.aggregate import AggregateRelease, release_aggregate
 from vault.services import budget, export_runs, exports
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
     from vault.policy.engine import Grant
     from vault.privacy.recommend import UtilityReport
+    from vault.services.context import Context
 
 MANIFEST_NAME = "manifest.json"
 PSEUDONYM_COLUMN = "_pseudonym"  # item ids start with a letter or digit: no clash possible
@@ -94,9 +95,9 @@ EXPORT_CAUTIONS = (
 # --------------------------------------------------------------------------- helpers
 
 
-def _candidates(v: Vault, category: str) -> dict[str, list[tuple[str, int]]]:
+def _candidates(ctx: Context, category: str) -> dict[str, list[tuple[str, int]]]:
     """Living participants with score batches of `category`: pid -> [(blob id, rows)]."""
-    rows = v._conn.execute(
+    rows = ctx.conn.execute(
         "SELECT s.pid, s.blob_id, s.rows FROM score_batches s JOIN participants p ON p.pid = s.pid "
         "WHERE s.category = ? AND p.wrapped_key IS NOT NULL ORDER BY s.pid, s.blob_id",
         (category,)).fetchall()
@@ -120,29 +121,29 @@ def _check_items(items: Sequence[str]) -> list[str]:
     return sorted(set(listed))
 
 
-def declared_items(v: Vault, category: str) -> list[str] | None:
+def declared_items(ctx: Context, category: str) -> list[str] | None:
     """The category's public item catalogue from the policy set (sorted), or None."""
-    spec = v.policy.categories.get(category)
+    spec = ctx.policy.categories.get(category)
     return sorted(spec.items) if spec is not None and spec.items is not None else None
 
 
-def release_items(v: Vault, category: str, items: Sequence[str] | None) -> tuple[list[str], str]:
+def release_items(ctx: Context, category: str, items: Sequence[str] | None) -> tuple[list[str], str]:
     """The columns of a noised release and where they come from; never from the data.
 
     The policy set's catalogue, or `items` (which must lie inside it when one is
     declared); neither: PolicyRefusal, since the union of what the cohort rated
     would say that someone rated an item.
     """
-    spec = v.policy.categories.get(category)
+    spec = ctx.policy.categories.get(category)
     if spec is None or spec.kind not in SCORE_KINDS:
         return [], "none"  # not a scores category: the policy engine and _scale_of refuse it
-    declared = declared_items(v, category)
+    declared = declared_items(ctx, category)
     if items is None:
         if declared is None:
             raise PolicyRefusal(
                 f"refused: a noised release needs a public item catalogue: declare 'items' for "
                 f"category {category} in the policy set or give --items")
-        return declared, f"the policy set's catalogue for {category} (version {v.policy.version})"
+        return declared, f"the policy set's catalogue for {category} (version {ctx.policy.version})"
     chosen = _check_items(items)
     if declared is not None and not set(chosen) <= set(declared):
         raise InvalidInput(f"--items names an item outside the policy set's catalogue for {category}")
@@ -166,9 +167,9 @@ def read_items(path: Path) -> list[str]:
     return _check_items([i for i in items if i and not i.startswith("#")])
 
 
-def _scale_of(v: Vault, category: str, grid_k: int | None) -> tuple[Fraction, Fraction, int]:
+def _scale_of(ctx: Context, category: str, grid_k: int | None) -> tuple[Fraction, Fraction, int]:
     """The category's declared range and the release grid (1 for integers, 1/100 for reals)."""
-    spec = v.policy.categories.get(category)
+    spec = ctx.policy.categories.get(category)
     if spec is None or spec.kind not in SCORE_KINDS or spec.value_range is None:
         raise UsageError(f"category {category} holds no scores or ratings with a declared range")
     if grid_k is not None and (isinstance(grid_k, bool) or not isinstance(grid_k, int) or grid_k < 1):
@@ -183,8 +184,8 @@ def _float_above(value: Fraction) -> float:
     return math.nextafter(f, math.inf) if Fraction(f) < value else f
 
 
-def _audit_refusal(v: Vault, purpose: str, reason: str, now: dt.datetime) -> None:
-    v._audit_batch([{"actor": v.member, "action": "export.matrix", "purpose": purpose,
+def _audit_refusal(ctx: Context, purpose: str, reason: str, now: dt.datetime) -> None:
+    ctx.audit_batch([{"actor": ctx.member, "action": "export.matrix", "purpose": purpose,
                      "decision": "refuse", "subjects": [], "reasons": [reason]}])
 
 
@@ -216,14 +217,14 @@ class CohortRatings:
         return row_of[self.owner][keep], cols[keep], self.values[keep]
 
 
-def _read_cohort(v: Vault, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],
+def _read_cohort(ctx: Context, grant: Grant, batches: Mapping[str, list[tuple[str, int]]],
                  now: dt.datetime) -> CohortRatings:
     """Every granted participant's ratings, read through the one door and decoded in bulk."""
-    pids = sorted(v._grant_participants(grant))
+    pids = sorted(ctx.grant_participants(grant))
     wanted = [blob_id for pid in pids for blob_id, _ in batches.get(pid, ())]
     owners: list[str] = []
     bodies: list[bytes] = []
-    for _, pid, chunks in v._read_for_release(grant, wanted):  # one live decision, one audit batch
+    for _, pid, chunks in ctx.read_for_release(grant, wanted):  # one live decision, one audit batch
         owners.append(pid)
         bodies.append(b"".join(chunks))
     decoded = scores.decode_many(bodies)
@@ -365,7 +366,7 @@ def _aggregate_tables(rel: AggregateRelease, items: Sequence[str]) -> dict[str, 
 
 
 def export_matrix(
-    v: Vault,
+    ctx: Context,
     *,
     purpose: str,
     category: str,
@@ -389,7 +390,7 @@ def export_matrix(
     release only). `items`: the public item catalogue (recommended; see the
     module docstring). Returns a summary: counts only, no participant ids.
     """
-    now = v.now()
+    now = ctx.now()
     if release not in RELEASES:
         raise UsageError("--release is 'matrix' or 'aggregate'")
     try:
@@ -404,18 +405,18 @@ def export_matrix(
     if not formats or any(f not in FORMATS for f in formats):
         raise UsageError("formats are 'parquet' and/or 'csv'")
     out = export_runs.check_out(out)
-    if purpose in v.policy.purposes and not budget.budgets(v.policy, purpose):
-        _audit_refusal(v, purpose, "no-privacy-budget", now)
+    if purpose in ctx.policy.purposes and not budget.budgets(ctx.policy, purpose):
+        _audit_refusal(ctx, purpose, "no-privacy-budget", now)
         raise PolicyRefusal(f"refused: purpose {purpose} sets no per-participant privacy budget "
                             "(epsilon_per_participant); differentially private exports need one")
     try:
-        item_list, item_source = release_items(v, category, items)
+        item_list, item_source = release_items(ctx, category, items)
     except PolicyRefusal:
-        _audit_refusal(v, purpose, "no-item-catalogue", now)
+        _audit_refusal(ctx, purpose, "no-item-catalogue", now)
         raise
 
     # 1-2. candidates, their remaining budgets, the decision
-    batches = _candidates(v, category)
+    batches = _candidates(ctx, category)
     # the aggregate publishes the exact cohort size: what holds is replace-one neighbouring,
     # twice epsilon (four times rho) of its add/remove mechanism, and that is what is charged
     stated = amount * (1 if release == "matrix" else 2 if mech == LAPLACE else 4)
@@ -426,18 +427,18 @@ def export_matrix(
     bound = {pid: scaled[n_rows[pid]] if per_rating else unit_cost for pid in batches}
     request_eps = _float_above(stated) if mech == LAPLACE else _float_above(
         zcdp_epsilon(stated, budget.ZCDP_DELTA))
-    remaining = (budget.remaining_for_decide(v, purpose, bound, request_eps,
+    remaining = (budget.remaining_for_decide(ctx, purpose, bound, request_eps,
                                              scale=n_rows if per_rating else None)
-                 if purpose in v.policy.purposes else {})
-    grant = v._authorize_release(purpose, [category], export=True, epsilon=request_eps,
+                 if purpose in ctx.policy.purposes else {})
+    grant = ctx.authorize_release(purpose, [category], export=True, epsilon=request_eps,
                         privacy_unit=privacy_unit.value, recipient=recipient,
                         participants=tuple(batches), budget_remaining=remaining)
     refused = dict(sorted(grant.counts.items()))
-    low, high, k = _scale_of(v, category, grid_k)
+    low, high, k = _scale_of(ctx, category, grid_k)
 
     # 3. read through the one door
-    cohort = _read_cohort(v, grant, batches, now)
-    labels = exports.pseudonyms(v, purpose, cohort.pids)
+    cohort = _read_cohort(ctx, grant, batches, now)
+    labels = exports.pseudonyms(ctx, purpose, cohort.pids)
     order = sorted(cohort.pids, key=labels.__getitem__)  # row order reveals nothing internal
     rows, cols, values = cohort.cells(order, item_list)
     del cohort
@@ -466,10 +467,10 @@ def export_matrix(
     # 5. record the run and charge (one transaction, before any file exists), write into the
     # staging folder, sign and record the lineage, rename into place (vault.services.export_runs)
     export_id = exports.new_export_id()
-    staging = export_runs.begin(v, export_id=export_id, kind=f"preference-{release}",
-                                purpose=purpose, out=out, at=exports._at(now), costs=costs)
+    staging = export_runs.begin(ctx, export_id=export_id, kind=f"preference-{release}",
+                                purpose=purpose, out=out, at=iso_utc(now), costs=costs)
     try:
-        export_runs.writing(v, export_id)
+        export_runs.writing(ctx, export_id)
         files: list[dict[str, Any]] = []
         for stem, columns in tables.items():
             files += write_table(staging, stem, columns, formats)
@@ -477,15 +478,15 @@ def export_matrix(
         if release == "matrix":
             members = labels
         else:  # nothing per participant is released: names unlinkable to any other export
-            members = exports.pseudonyms(v, f"{purpose}#aggregate:{export_id}", order)
+            members = exports.pseudonyms(ctx, f"{purpose}#aggregate:{export_id}", order)
         body = _manifest_body(release, category, guarantee, files, item_list, item_source,
-                              budget.budgets(v.policy, purpose), k, mech, formats)
-        signed = exports._sign_and_record(v, export_id=export_id, kind=f"preference-{release}",
+                              budget.budgets(ctx.policy, purpose), k, mech, formats)
+        signed = exports.sign_and_record(ctx, export_id=export_id, kind=f"preference-{release}",
                                          grant=grant, members=members, body=body,
                                          list_pseudonyms=release == "matrix")
-        export_runs.publish(v, export_id, staging, out, signed, exports._at(now))
+        export_runs.publish(ctx, export_id, staging, out, signed, iso_utc(now))
     except BaseException:
-        export_runs.abandon(v, export_id, exports._at(now))
+        export_runs.abandon(ctx, export_id, iso_utc(now))
         raise
     return {
         "export_id": export_id, "out": str(out), "release": release, "category": category,
@@ -585,7 +586,7 @@ def verify_export_dir(out: Path, public_key: bytes) -> dict[str, Any]:
 
 
 def export_utility(
-    v: Vault,
+    ctx: Context,
     *,
     purpose: str,
     category: str,
@@ -609,23 +610,23 @@ def export_utility(
     CSPRNG; no caller picks a seed, so nobody can replay a split to difference
     two runs.
     """
-    now = v.now()
+    now = ctx.now()
     from vault.cli.plot import plot_utility
     from vault.privacy.recommend import utility_curve
 
-    v._require_steward("export.utility")
+    ctx.require_steward("export.utility")
     try:
         privacy_unit = PrivacyUnit(unit)
     except ValueError:
         raise UsageError("--unit is 'participant' or 'rating'") from None
     if Path(out_png).suffix.lower() != ".png":
         raise UsageError("the utility plot is written as PNG: give a path ending in .png")
-    catalogue = _check_items(items) if items is not None else declared_items(v, category)
-    batches = _candidates(v, category)
-    grant = v._authorize_release(purpose, [category], privacy_unit=privacy_unit.value,
+    catalogue = _check_items(items) if items is not None else declared_items(ctx, category)
+    batches = _candidates(ctx, category)
+    grant = ctx.authorize_release(purpose, [category], privacy_unit=privacy_unit.value,
                         participants=tuple(batches))
-    low, high, k = _scale_of(v, category, grid_k)
-    cohort = _read_cohort(v, grant, batches, now)
+    low, high, k = _scale_of(ctx, category, grid_k)
+    cohort = _read_cohort(ctx, grant, batches, now)
     item_list = catalogue if catalogue is not None else cohort.items
     if not item_list:
         raise NotFound("the granted participants hold no ratings")
@@ -645,7 +646,7 @@ def export_utility(
     del values
     png = plot_utility(report, Path(out_png))
     figures = report.as_dict()
-    v._audit_batch([{"actor": v.member, "action": "export.utility", "purpose": purpose,
+    ctx.audit_batch([{"actor": ctx.member, "action": "export.utility", "purpose": purpose,
                      "decision": "done", "subjects": [],
                      "details": {"grant": grant.grant_id, "category": category,
                                  "privacy_unit": privacy_unit.value, "epsilons": figures["epsilons"],

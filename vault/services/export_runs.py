@@ -33,10 +33,11 @@ from vault.errors import Conflict
 from vault.privacy.accountant import Cost
 from vault.services import budget
 from vault.storage import db as storage
+from vault.storage import export_runs as runs
 from vault.storage.files import fsync_path
 
 if TYPE_CHECKING:
-    from vault.api import Vault
+    from vault.services.context import Context
 
 STAGED, WRITING, SIGNED, DONE, REFUNDED, VOID = ("staged", "writing", "signed", "done",
                                                  "refunded", "void")
@@ -85,22 +86,20 @@ def secure_tree(root: Path) -> None:
             os.chmod(Path(base) / name, FILE_MODE)
 
 
-def begin(v: Vault, *, export_id: str, kind: str, purpose: str, out: Path, at: str,
+def begin(ctx: Context, *, export_id: str, kind: str, purpose: str, out: Path, at: str,
           costs: Mapping[str, Cost] | None = None) -> Path:
     """Record the run (and charge `costs`) in one transaction, then create the staging folder."""
     out = Path(out).absolute()
     staging = staging_path(out, export_id)
-    with storage.transaction(v._conn):
-        charged = (budget._charge_in_transaction(v, purpose, costs, export_id=export_id, at=at)
+    with storage.transaction(ctx.conn):
+        charged = (budget.charge_in_transaction(ctx, purpose, costs, export_id=export_id, at=at)
                    if costs is not None else [])
-        v._conn.execute(
-            "INSERT INTO export_runs (export_id, kind, purpose, staging, out, state, "
-            "charged_purposes, started_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-            (export_id, kind, purpose, str(staging), str(out), STAGED, json.dumps(charged), at))
+        runs.insert_run(ctx.conn, export_id=export_id, kind=kind, purpose=purpose,
+                        staging=str(staging), out=str(out), state=STAGED,
+                        charged=json.dumps(charged), at=at)
         if costs:
-            v._conn.executemany(
-                "INSERT INTO export_charges (export_id, pid, epsilon, rho) VALUES (?, ?, ?, ?)",
-                [(export_id, pid, str(c.epsilon), str(c.rho)) for pid, c in costs.items()])
+            runs.insert_charges(ctx.conn, export_id,
+                                [(pid, str(c.epsilon), str(c.rho)) for pid, c in costs.items()])
     make_private_dirs(out.parent)
     staging.mkdir(mode=DIR_MODE)
     os.chmod(staging, DIR_MODE)
@@ -108,26 +107,24 @@ def begin(v: Vault, *, export_id: str, kind: str, purpose: str, out: Path, at: s
     return staging
 
 
-def writing(v: Vault, export_id: str) -> None:
+def writing(ctx: Context, export_id: str) -> None:
     """From here on files exist in the staging folder: an interruption is no longer refunded."""
-    with storage.transaction(v._conn):
-        v._conn.execute("UPDATE export_runs SET state = ? WHERE export_id = ?", (WRITING, export_id))
+    with storage.transaction(ctx.conn):
+        runs.set_state(ctx.conn, export_id, WRITING)
 
 
-def mark_signed(v: Vault, export_id: str, signed: bytes) -> None:
-    """Inside `exports._sign_and_record`'s transaction: the files are complete and signed."""
-    v._conn.execute("UPDATE export_runs SET state = ?, signed = ? WHERE export_id = ?",
-                    (SIGNED, signed, export_id))
+def mark_signed(ctx: Context, export_id: str, signed: bytes) -> None:
+    """Inside `exports.sign_and_record`'s transaction: the files are complete and signed."""
+    runs.set_signed(ctx.conn, export_id, SIGNED, signed)
 
 
-def publish(v: Vault, export_id: str, staging: Path, out: Path, signed: Mapping[str, Any],
+def publish(ctx: Context, export_id: str, staging: Path, out: Path, signed: Mapping[str, Any],
             at: str) -> None:
     """Write the manifest, rename the staging folder into place, mark the run done."""
     _place(staging, Path(out).absolute(), json.dumps(signed, indent=2, sort_keys=True) + "\n")
-    row = v._conn.execute(
-        "SELECT export_id, kind, purpose, staging, out, state, charged_purposes, signed "
-        "FROM export_runs WHERE export_id = ?", (export_id,)).fetchone()
-    _settle(v, row, DONE, at)
+    row = runs.run(ctx.conn, export_id)
+    assert row is not None
+    _settle(ctx, row, DONE, at)
 
 
 def _place(staging: Path, out: Path, manifest_text: str) -> None:
@@ -146,28 +143,25 @@ def _place(staging: Path, out: Path, manifest_text: str) -> None:
     fsync_path(out.parent)
 
 
-def _settle(v: Vault, row: tuple[Any, ...], state: str, at: str,
+def _settle(ctx: Context, row: tuple[Any, ...], state: str, at: str,
             report: Mapping[str, str] | None = None) -> None:
     """One transaction: the refund (for `refunded`), the final state, the audit entry."""
     export_id, kind, purpose, _, _, found, charged = row[:7]
-    with storage.transaction(v._conn):
+    with storage.transaction(ctx.conn):
         if state == REFUNDED:
-            costs = {pid: Cost(Fraction(e), Fraction(r)) for pid, e, r in v._conn.execute(
-                "SELECT pid, epsilon, rho FROM export_charges WHERE export_id = ?", (export_id,))}
+            costs = {pid: Cost(Fraction(e), Fraction(r)) for pid, e, r in runs.charges(ctx.conn, export_id)}
             if costs and json.loads(charged):
-                budget._refund_in_transaction(v, purpose, json.loads(charged), costs,
+                budget.refund_in_transaction(ctx, purpose, json.loads(charged), costs,
                                              export_id=export_id, at=at)
-        v._conn.execute("UPDATE export_runs SET state = ?, ended_at = ?, signed = NULL "
-                        "WHERE export_id = ?", (state, at, export_id))
-        v._conn.execute("DELETE FROM export_charges WHERE export_id = ?", (export_id,))
+        runs.settle(ctx.conn, export_id, state, at)
         if report is not None:
-            v._audit.append({"actor": v.member, "action": "export.settle", "purpose": purpose,
+            ctx.audit.append({"actor": ctx.member, "action": "export.settle", "purpose": purpose,
                              "subjects": [], "decision": "done",
                              "details": {"export": export_id, "kind": kind, "state_found": found,
                                          **report}}, at)
 
 
-def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str, *, retry: bool = True) -> str:
+def _outcome(ctx: Context, row: tuple[Any, ...], at: str, how: str, *, retry: bool = True) -> str:
     """Finish or undo one unsettled run: files first, then one transaction. `retry`: a signed
     run whose folder is not in place yet is put in place (at open), else voided."""
     export_id, _, _, staging_text, out_text, state, _, signed = row
@@ -195,30 +189,25 @@ def _outcome(v: Vault, row: tuple[Any, ...], at: str, how: str, *, retry: bool =
         else:
             outcome, final = (("refunded", REFUNDED) if state == STAGED else
                               ("charged-not-released", VOID))
-    _settle(v, row, final, at, {"interrupted": how, "outcome": outcome})
+    _settle(ctx, row, final, at, {"interrupted": how, "outcome": outcome})
     return outcome
 
 
-def abandon(v: Vault, export_id: str, at: str) -> str:
+def abandon(ctx: Context, export_id: str, at: str) -> str:
     """After a failure in this process: undo or void the run and say so in the audit log."""
-    row = v._conn.execute(
-        "SELECT export_id, kind, purpose, staging, out, state, charged_purposes, signed "
-        "FROM export_runs WHERE export_id = ?", (export_id,)).fetchone()
+    row = runs.run(ctx.conn, export_id)
     if row is None or row[5] not in OPEN_STATES:
         return "none"
     # a signed run already in place is finished; one not in place is not retried here (the
     # failure was ours: disk full...) but voided, its files having been written
-    return _outcome(v, row, at, "failed", retry=False)
+    return _outcome(ctx, row, at, "failed", retry=False)
 
 
-def recover(v: Vault) -> list[dict[str, str]]:
+def recover(ctx: Context) -> list[dict[str, str]]:
     """At open: finish or undo every run a killed process left unsettled (audited)."""
-    storage.add_missing_tables(v._conn)
-    rows = v._conn.execute(
-        "SELECT export_id, kind, purpose, staging, out, state, charged_purposes, signed "
-        "FROM export_runs WHERE state IN (?, ?, ?) ORDER BY started_at, export_id",
-        OPEN_STATES).fetchall()
+    storage.add_missing_tables(ctx.conn)
+    rows = runs.runs_in(ctx.conn, OPEN_STATES)
     if not rows:
         return []
-    at = v._stamp()
-    return [{"export_id": row[0], "outcome": _outcome(v, row, at, "killed")} for row in rows]
+    at = ctx.stamp()
+    return [{"export_id": row[0], "outcome": _outcome(ctx, row, at, "killed")} for row in rows]

@@ -21,13 +21,14 @@ from vault.formats import scores, strictjson
 from vault.formats.bids import check_recording
 from vault.formats.edf import DeidOptions, deidentified_blocks, npy_deidentified_blocks
 from vault.formats.edf_header import choose_date_offset, known_start_date, read_header, uniform_below
-from vault.policy.consent import ConsentVersion
+from vault.policy.consent import covers_storage
 from vault.policy.event_codes import EventCodes
 from vault.storage import db as storage
-from vault.storage import registry
+from vault.storage import recordings, registry
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
+    from vault.services.context import Context
 
 EEG = "eeg-raw"
 SCORE_KINDS = {"derived": "scores-derived", "explicit": "ratings-explicit"}
@@ -35,28 +36,21 @@ SCORE_KINDS = {"derived": "scores-derived", "explicit": "ratings-explicit"}
 OFFSET_REFERENCE = dt.date(2026, 1, 1)
 
 
-def covers_storage(consent: ConsentVersion | None, category: str, now: dt.datetime) -> bool:
-    """Some purpose grants `category` with a status that permits processing, not expired."""
-    if consent is None or consent.is_expired(now):
-        return False
-    return any(p.permits and category in p.categories for p in consent.purposes.values())
-
-
-def _require_storage_consent(v: Vault, pids: list[str], category: str, now: dt.datetime) -> None:
-    consents = registry.latest_consents(v._conn, pids)
+def _require_storage_consent(ctx: Context, pids: list[str], category: str, now: dt.datetime) -> None:
+    consents = registry.latest_consents(ctx.conn, pids)
     refused = [pid for pid in pids if not covers_storage(consents.get(pid), category, now)]
     if refused:
-        v._audit_batch([{"actor": v.member, "action": f"ingest.{category}", "decision": "refuse",
+        ctx.audit_batch([{"actor": ctx.member, "action": f"ingest.{category}", "decision": "refuse",
                          "subjects": refused, "reasons": ["no-consent-for-storage"]}])
         raise PolicyRefusal(f"{len(refused)} participant(s) have no current consent covering "
                             f"storage of {category}; nothing was stored")
 
 
-def _date_offset(v: Vault, pid: str, start: dt.date) -> tuple[int, bool]:
+def _date_offset(ctx: Context, pid: str, start: dt.date) -> tuple[int, bool]:
     """The participant's secret date shift and whether it is new: chosen at their first
     recording (kept in range for it, with years of headroom), stored wrapped under their
     own key by the caller in the same transaction as that recording, reused after."""
-    known = v._keys.date_offset(v._conn, pid)
+    known = ctx.door.date_offset(pid)
     if known is not None:
         return known, False
     return choose_date_offset(lambda n: uniform_below(n, crypto.random_bytes), start), True
@@ -86,11 +80,11 @@ def _prefixed(header: bytes, blocks: Iterator[bytes]) -> Iterator[bytes]:
     yield from blocks
 
 
-def event_codes_for(v: Vault, event_codes: str | Sequence[str] | None) -> EventCodes | None:
+def event_codes_for(ctx: Context, event_codes: str | Sequence[str] | None) -> EventCodes | None:
     """The codes to keep: the caller's (a list, or one comma-separated string), else the
     policy set's; None keeps no annotation."""
     if event_codes is None:
-        declared = v.policy.categories[EEG].event_codes
+        declared = ctx.policy.categories[EEG].event_codes
         return EventCodes(declared) if declared else None
     items = event_codes.split(",") if isinstance(event_codes, str) else list(event_codes)
     return EventCodes([i.strip() for i in items], what="--event-codes entry")
@@ -112,11 +106,11 @@ def _file_digests(paths: Sequence[Path]) -> list[crypto.StreamingDigest]:
     return digests
 
 
-def _content_tag(v: Vault, pid: str, digests: Sequence[crypto.StreamingDigest]) -> str:
+def _content_tag(ctx: Context, pid: str, digests: Sequence[crypto.StreamingDigest]) -> str:
     """Keyed digest of the input file(s) under the participant's own data key: finds a
     re-ingest of the same content without storing anything that links files in the clear."""
     body = b"\x00".join(d.hexdigest().encode() for d in digests)
-    return v._keys.participant_tag(v._conn, pid, "recording-file", body)
+    return ctx.door.participant_tag(pid, "recording-file", body)
 
 
 def _summary(report: dict[str, Any]) -> dict[str, Any]:
@@ -128,30 +122,29 @@ def _summary(report: dict[str, Any]) -> dict[str, Any]:
                          "date_shift_applied", "date_clamped", "sex_kept", "age_band_written")}}
 
 
-def scrub_clear_metadata(v: Vault) -> int:
+def scrub_clear_metadata(ctx: Context) -> int:
     """Rows stored by earlier versions kept channel metadata (labels, units, rates) and the
     full report in clear: reduce them to what this version keeps (the header inside the
     encrypted file has it all). Idempotent; audited when it changes anything."""
-    rows = v._conn.execute("SELECT blob_id, deid FROM recordings WHERE meta != '{}'").fetchall()
+    rows = recordings.with_clear_metadata(ctx.conn)
     if not rows:
         return 0
-    with storage.transaction(v._conn):
+    with storage.transaction(ctx.conn):
         for blob_id, deid in rows:
-            v._conn.execute("UPDATE recordings SET meta = '{}', deid = ? WHERE blob_id = ?",
-                            (json.dumps(_summary(json.loads(deid))), blob_id))
-        v._audit.append({"actor": v.member, "action": "recordings.scrub", "decision": "done",
-                         "details": {"rows": len(rows)}}, _at(v.now()))
+            recordings.scrub(ctx.conn, blob_id, json.dumps(_summary(json.loads(deid))))
+        ctx.audit.append({"actor": ctx.member, "action": "recordings.scrub", "decision": "done",
+                         "details": {"rows": len(rows)}}, iso_utc(ctx.now()))
     return len(rows)
 
 
-def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
+def ingest_eeg(ctx: Context, pid: str, path: Path, *, sidecar: Path | None,
                event_codes: str | Sequence[str] | None, keep_sex: bool,
                age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
-    v._require_steward("ingest.eeg")
-    now = v.now()
-    registry.require_participant(v._conn, pid)
-    _require_storage_consent(v, [pid], EEG, now)
-    codes = event_codes_for(v, event_codes)
+    ctx.require_steward("ingest.eeg")
+    now = ctx.now()
+    registry.require_participant(ctx.conn, pid)
+    _require_storage_consent(ctx, [pid], EEG, now)
+    codes = event_codes_for(ctx, event_codes)
     path = Path(path)
     numpy_input = path.suffix.lower() in (".npy", ".npz")
     if numpy_input and sidecar is None:
@@ -159,10 +152,10 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
     inputs = [path, Path(sidecar)] if numpy_input and sidecar is not None else [path]
     tag = None
     if numpy_input:  # NumPy: hashed first (and again after reading); EDF: while it streams
-        tag = _content_tag(v, pid, _file_digests(inputs))
-        if (row := _stored_as(v, pid, tag)) is not None:
-            return _already_stored(v, pid, *row, now)
-    offset, new_offset = _date_offset(v, pid, start_date(path, sidecar if numpy_input else None))
+        tag = _content_tag(ctx, pid, _file_digests(inputs))
+        if (row := _stored_as(ctx, pid, tag)) is not None:
+            return _already_stored(ctx, pid, *row, now)
+    offset, new_offset = _date_offset(ctx, pid, start_date(path, sidecar if numpy_input else None))
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
                           age_band_years=age_band_years)
     seen = crypto.StreamingDigest()
@@ -172,47 +165,43 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
     else:
         deid = deidentified_blocks(path, options, observe=seen.update)
     check_recording(deid.meta)  # a file the export would refuse is refused now, nothing stored
-    key = v._keys.participant_key(v._conn, pid)
-    blob_id = "b-" + crypto.random_id(12)
-    info = v._store.write(key, pid, blob_id, EEG, _prefixed(deid.header, deid.blocks))
+    info = ctx.door.write_blob(pid, EEG, _prefixed(deid.header, deid.blocks))
+    blob_id = info.blob_id
     written = [blob_id]
     try:
-        read = _content_tag(v, pid, _file_digests(inputs) if numpy_input else [seen])
+        read = _content_tag(ctx, pid, _file_digests(inputs) if numpy_input else [seen])
         if tag is not None and read != tag:
             raise InvalidInput("recording file changed while it was being read; nothing was stored")
         tag = read
-        if (row := _stored_as(v, pid, tag)) is not None:  # the same content was stored before
-            v._store.discard(blob_id)
-            return _already_stored(v, pid, *row, now)
+        if (row := _stored_as(ctx, pid, tag)) is not None:  # the same content was stored before
+            ctx.door.discard(blob_id)
+            return _already_stored(ctx, pid, *row, now)
         identity = None
         if keep_header_identity and deid.identity.values:
             record = json.dumps({"removed_from_recording": blob_id,
                                  "fields": dict(deid.identity.values)}).encode()
-            identity = v._store.write(key, pid, "b-" + crypto.random_id(12), "identity-contact",
-                                      [record])
+            identity = ctx.door.write_blob(pid, "identity-contact", [record])
             written.append(identity.blob_id)
         report = deid.report.as_dict()
         meta = deid.meta.as_dict()
         summary = _summary(report)
-        at = _at(now)
-        with storage.transaction(v._conn):
+        at = iso_utc(now)
+        with storage.transaction(ctx.conn):
             if new_offset:
-                v._keys.store_date_offset(v._conn, pid, offset)
-            v._insert_blob(info, at)
+                ctx.door.store_date_offset(pid, offset)
+            ctx.insert_blob(info, at)
             if identity is not None:
-                v._insert_blob(identity, at)
+                ctx.insert_blob(identity, at)
             # Channel metadata stays in the encrypted file's header (the export reads it
             # there); only the format and counts of what was replaced are kept in clear.
-            v._conn.execute(
-                "INSERT INTO recordings (blob_id, pid, format, meta, deid, content_tag) "
-                "VALUES (?, ?, ?, ?, ?, ?)",
-                (blob_id, pid, deid.meta.format, "{}", json.dumps(summary), tag))
-            v._audit.append({"actor": v.member, "action": "ingest.eeg", "subjects": [pid],
+            recordings.insert_recording(ctx.conn, blob_id=blob_id, pid=pid, fmt=deid.meta.format,
+                                        summary=json.dumps(summary), content_tag=tag)
+            ctx.audit.append({"actor": ctx.member, "action": "ingest.eeg", "subjects": [pid],
                              "decision": "done",
                              "details": {"blob": blob_id, "format": deid.meta.format, **summary}}, at)
     except BaseException:
         for blob in written:
-            v._store.discard(blob)
+            ctx.door.discard(blob)
         raise
     return {"participant_id": pid, "blob_id": blob_id, "already_stored": False,
             "deidentification": report,
@@ -221,80 +210,67 @@ def ingest_eeg(v: Vault, pid: str, path: Path, *, sidecar: Path | None,
             "identity_kept": identity is not None}
 
 
-def _stored_as(v: Vault, pid: str, tag: str) -> tuple[str, str] | None:
-    row = v._conn.execute("SELECT blob_id, format FROM recordings WHERE pid = ? AND content_tag = ?",
-                          (pid, tag)).fetchone()
-    return None if row is None else (str(row[0]), str(row[1]))
+def _stored_as(ctx: Context, pid: str, tag: str) -> tuple[str, str] | None:
+    return recordings.stored_as(ctx.conn, pid, tag)
 
 
-def _already_stored(v: Vault, pid: str, blob_id: str, fmt: str, now: dt.datetime) -> dict[str, Any]:
+def _already_stored(ctx: Context, pid: str, blob_id: str, fmt: str, now: dt.datetime) -> dict[str, Any]:
     """A second ingest of the same content: nothing new is stored; the call is audited."""
-    at = _at(now)
-    with storage.transaction(v._conn):
-        v._audit.append({"actor": v.member, "action": "ingest.eeg", "subjects": [pid],
+    at = iso_utc(now)
+    with storage.transaction(ctx.conn):
+        ctx.audit.append({"actor": ctx.member, "action": "ingest.eeg", "subjects": [pid],
                          "decision": "done", "details": {"blob": blob_id, "already_stored": True}},
                         at)
     return {"participant_id": pid, "blob_id": blob_id, "already_stored": True,
             "deidentification": None, "recording": {"format": fmt}, "identity_kept": False}
 
 
-def ingest_scores(v: Vault, path: Path, kind: str) -> dict[str, Any]:
-    v._require_steward("ingest.scores")
-    now = v.now()
+def ingest_scores(ctx: Context, path: Path, kind: str) -> dict[str, Any]:
+    ctx.require_steward("ingest.scores")
+    now = ctx.now()
     if kind not in SCORE_KINDS:
         raise UsageError("--kind is 'derived' or 'explicit'")
     category = SCORE_KINDS[kind]
-    rows = scores.read_rows(path, category, v.policy.categories[category])
+    rows = scores.read_rows(path, category, ctx.policy.categories[category])
     groups = scores.by_participant(rows)
-    known = registry.latest_consents(v._conn, list(groups))
+    known = registry.latest_consents(ctx.conn, list(groups))
     for pid, group in groups.items():
         if pid not in known:
             raise InvalidInput(f"scores file: row {group[0].row}: unknown or erased participant")
-    _require_storage_consent(v, list(groups), category, now)
+    _require_storage_consent(ctx, list(groups), category, now)
     plan: list[tuple[str, bytes, str, list[str]]] = []
     skipped = 0
     for pid, group in groups.items():
         body = scores.canonical(group)
-        batch_tag = v._keys.participant_tag(v._conn, pid, "score-batch", category.encode() + body)
-        if v._conn.execute("SELECT 1 FROM score_batches WHERE pid = ? AND category = ? AND "
-                           "batch_tag = ?", (pid, category, batch_tag)).fetchone():
+        batch_tag = ctx.door.participant_tag(pid, "score-batch", category.encode() + body)
+        if recordings.has_batch(ctx.conn, pid, category, batch_tag):
             skipped += 1  # the same rows were ingested before: idempotent
             continue
-        item_tags = [v._keys.participant_tag(v._conn, pid, "score-item",
+        item_tags = [ctx.door.participant_tag(pid, "score-item",
                                              category.encode() + b"\x00" + r.item.encode())
                      for r in group]
         for row, tag in zip(group, item_tags, strict=True):
-            if v._conn.execute("SELECT 1 FROM score_items WHERE pid = ? AND category = ? AND "
-                               "item_tag = ?", (pid, category, tag)).fetchone():
+            if recordings.has_item(ctx.conn, pid, category, tag):
                 raise InvalidInput(f"scores file: row {row.row}: this participant already has a "
                                    f"stored {category} value for this item; nothing was stored")
         plan.append((pid, body, batch_tag, item_tags))
     written = []
     try:
         for pid, body, _, _ in plan:
-            key = v._keys.participant_key(v._conn, pid)
-            written.append(v._store.write(key, pid, "b-" + crypto.random_id(12), category, [body]))
-        at = _at(now)
-        with storage.transaction(v._conn):
+            written.append(ctx.door.write_blob(pid, category, [body]))
+        at = iso_utc(now)
+        with storage.transaction(ctx.conn):
             for info, (pid, _, batch_tag, item_tags) in zip(written, plan, strict=True):
-                v._insert_blob(info, at)
-                v._conn.execute("INSERT INTO score_batches (blob_id, pid, category, batch_tag, rows) "
-                                "VALUES (?, ?, ?, ?, ?)",
-                                (info.blob_id, pid, category, batch_tag, len(item_tags)))
-                v._conn.executemany(
-                    "INSERT INTO score_items (pid, category, item_tag, blob_id) VALUES (?, ?, ?, ?)",
-                    [(pid, category, tag, info.blob_id) for tag in item_tags])
-            v._audit.append({"actor": v.member, "action": f"ingest.{category}",
+                ctx.insert_blob(info, at)
+                recordings.insert_batch(ctx.conn, blob_id=info.blob_id, pid=pid, category=category,
+                                        batch_tag=batch_tag, item_tags=item_tags)
+            ctx.audit.append({"actor": ctx.member, "action": f"ingest.{category}",
                              "subjects": [p for p, *_ in plan], "decision": "done",
                              "details": {"rows": sum(len(t) for *_, t in plan),
                                          "batches": len(plan), "already_stored": skipped}}, at)
     except BaseException:
         for info in written:
-            v._store.discard(info.blob_id)
+            ctx.door.discard(info.blob_id)
         raise
     return {"category": category, "participants": len(groups), "rows": len(rows),
             "batches_stored": len(plan), "batches_already_stored": skipped}
-
-
-def _at(now: dt.datetime) -> str:
-    return now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")

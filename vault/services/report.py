@@ -6,44 +6,30 @@ It is a starting point for the lab's own record, not a legal document.
 
 from __future__ import annotations
 
-import datetime as dt
 from fractions import Fraction
 from typing import TYPE_CHECKING, Any
 
-from vault.storage import registry
+from vault.policy.consent import permits_purpose
+from vault.storage import counts, lineage, participants, registry
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
+    from vault.services.context import Context
 
 CAUTION = ("This record is generated from the vault's state as a starting point for the lab's "
            "record of processing activities (GDPR Art. 30). It is not legal advice; complete and "
            "check it with your data-protection officer and ethics board.")
 
 
-def _nearest_permits(consent: Any, chain: tuple[str, ...]) -> bool:
-    """The narrowest answered purpose at or above the requested one decides (as in decide.py)."""
-    for purpose in chain:
-        entry = consent.purposes.get(purpose)
-        if entry is not None:
-            return bool(entry.permits)
-    return False
-
-
-def _count(v: Vault, sql: str, *args: object) -> int:
-    return int(v._conn.execute(sql, args).fetchone()[0])
-
-
-def record_of_processing(v: Vault) -> dict[str, Any]:
-    v._require_steward("report")
-    now = v.now()
-    policy = v.policy
-    consents = registry.latest_consents(v._conn, None)
+def record_of_processing(ctx: Context) -> dict[str, Any]:
+    ctx.require_steward("report")
+    now = ctx.now()
+    policy = ctx.policy
+    consents = registry.latest_consents(ctx.conn, None)
     purposes = []
     for pid, purpose in sorted(policy.purposes.items()):
-        permitting = sum(1 for c in consents.values() if c is not None and not c.is_expired(now)
-                         and _nearest_permits(c, policy.chain(pid)))
-        spent = [Fraction(r[0]) for r in v._conn.execute(
-            "SELECT epsilon FROM budget_ledger WHERE purpose = ?", (pid,))]
+        permitting = sum(1 for c in consents.values() if permits_purpose(c, policy.chain(pid), now))
+        spent = [Fraction(e) for e in counts.spent(ctx.conn, pid)]
         purposes.append({
             "purpose": pid, "title": purpose.title, "dpv": purpose.dpv,
             "lawful_basis": purpose.lawful_basis, "special_category": purpose.special_category,
@@ -56,34 +42,28 @@ def record_of_processing(v: Vault) -> dict[str, Any]:
             "max_epsilon_spent": float(max(spent)) if spent else 0.0,
         })
     recipients = [dict(zip(("recipient", "purpose", "kind", "exports", "last"), r, strict=True))
-                  for r in v._conn.execute(
-                      "SELECT recipient, purpose, kind, COUNT(*), MAX(created_at) FROM exports "
-                      "GROUP BY recipient, purpose, kind ORDER BY recipient, purpose")]
-    open_requests = v._conn.execute(
-        "SELECT COUNT(*), SUM(deadline < ?) FROM withdrawals WHERE status = 'pending'",
-        (now.strftime("%Y-%m-%d"),)).fetchone()
+                  for r in lineage.recipients(ctx.conn)]
+    open_requests, overdue, processed = counts.withdrawals(ctx.conn, now.strftime("%Y-%m-%d"))
     return {
-        "generated_at": now.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
-        "vault_id": v.vault_id, "policy": {"name": policy.meta.name, "title": policy.meta.title,
+        "generated_at": iso_utc(now),
+        "vault_id": ctx.vault_id, "policy": {"name": policy.meta.name, "title": policy.meta.title,
                                            "version": policy.version},
         "categories": [{"category": c, "title": cat.title, "special_category": cat.special_category}
                        for c, cat in sorted(policy.categories.items())],
         "purposes": purposes,
         "participants": {
-            "enrolled": _count(v, "SELECT COUNT(*) FROM participants"),
-            "active": _count(v, "SELECT COUNT(*) FROM participants WHERE wrapped_key IS NOT NULL"),
-            "erased": _count(v, "SELECT COUNT(*) FROM participants WHERE wrapped_key IS NULL"),
+            "enrolled": counts.rows(ctx.conn, "participants"),
+            "active": participants.count(ctx.conn),
+            "erased": participants.count(ctx.conn, erased=True),
             "consent_expired": sum(1 for c in consents.values() if c is not None and c.is_expired(now)),
         },
-        "data": {"recordings": _count(v, "SELECT COUNT(*) FROM recordings"),
-                 "score_batches": _count(v, "SELECT COUNT(*) FROM score_batches")},
+        "data": {"recordings": counts.rows(ctx.conn, "recordings"),
+                 "score_batches": counts.rows(ctx.conn, "score_batches")},
         "retention": {"withdrawal_deadline_days": policy.meta.withdrawal_deadline_days,
                       "consent_ends": "each consent ends at its expiry or retention end, "
                                       "whichever is first, without anyone acting"},
         "recipients": recipients,
-        "withdrawals": {"open": int(open_requests[0] or 0), "overdue": int(open_requests[1] or 0),
-                        "processed": _count(v, "SELECT COUNT(*) FROM withdrawals WHERE "
-                                               "status != 'pending'")},
+        "withdrawals": {"open": open_requests, "overdue": overdue, "processed": processed},
         "security": ["AES-256-GCM (C2SP chunked encryption) per-participant keys",
                      "Argon2id (RFC 9106) passphrase keys", "signed RFC 9162 Merkle audit log",
                      "purpose-bound grants checked at every read"],

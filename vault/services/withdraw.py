@@ -1,6 +1,6 @@
 """Withdrawal and erasure with a signed deletion receipt, retention sweeps, and recall.
 
-Called through the `Vault` facade with the open vault first (like vault.services.ingest).
+Called through the `Vault` facade with a use case's `Context` first (like vault.services.ingest).
 
 Requests. `request_withdrawal` records who asked, when it was received and the
 scope (`full`, or `purpose:P`); the deadline is `received` plus the policy's
@@ -10,9 +10,9 @@ receipt (vault.audit.receipt) and the earlier exports, with their recipients, th
 included the participant (lineage: GDPR Art. 19, notify recipients).
 
 Full withdrawal = cryptographic erase (NIST SP 800-88). The participant's data
-key exists on disk only wrapped in `participants.wrapped_key`; setting it NULL
-makes every blob of theirs, their date shift and their keyed tags unreadable
-even with every passphrase. Their blob, recording and score rows, privacy
+key exists on disk only wrapped in `participants.wrapped_key`; the door's `shred`
+sets it NULL, which makes every blob of theirs, their date shift and their keyed
+tags unreadable even with every passphrase. Their blob, recording and score rows, privacy
 ledger rows, identity record and lab-code tag are deleted too. What stays: the
 participant row (random id, key commitment, erased_at) so the audit log's ids
 still resolve, the append-only consent history (a `withdrawn` version is
@@ -69,15 +69,17 @@ from typing import TYPE_CHECKING, Any
 from vault import crypto
 from vault.audit import receipt
 from vault.errors import Conflict, InvalidInput, NotFound, UsageError
-from vault.policy.consent import ConsentStatus, ConsentVersion, revise_status
+from vault.policy.consent import ConsentStatus, ConsentVersion, answering_purpose, revise_status
 from vault.services import exports
 from vault.storage import db as storage
-from vault.storage import registry
+from vault.storage import lineage, registry
+from vault.storage import withdrawals as requests
 from vault.storage.files import fsync_path
+from vault.times import iso_utc
 
 if TYPE_CHECKING:
-    from vault.api import Vault
     from vault.policy.policyset import PolicySet
+    from vault.services.context import Context
 
 SCOPE_FULL = "full"
 PURPOSE_PREFIX = "purpose:"
@@ -108,10 +110,6 @@ CAUTIONS = (
 )
 
 
-def _at(moment: dt.datetime) -> str:
-    return moment.astimezone(dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
 def _today(now: dt.datetime) -> dt.date:
     return now.astimezone(dt.UTC).date()
 
@@ -132,22 +130,18 @@ def _purpose(scope: str) -> str:
 # --------------------------------------------------------------------------- requests
 
 
-def _erasure_note(v: Vault, pid: str) -> str:
-    row = v._conn.execute(
-        "SELECT request_id, processed_at, receipt IS NOT NULL FROM withdrawals WHERE pid = ? AND "
-        "status = ? AND scope = ? ORDER BY processed_at DESC LIMIT 1",
-        (pid, PROCESSED, SCOPE_FULL)).fetchone()
+def _erasure_note(ctx: Context, pid: str) -> str:
+    row = requests.last_full_erasure(ctx.conn, pid, PROCESSED, SCOPE_FULL)
     how = f"by request {row[0]} at {row[1]}" if row else "earlier"
     return f"participant '{pid}' was erased {how}; there is nothing left to withdraw"
 
 
-def _require_living(v: Vault, pid: str) -> None:
-    row = v._conn.execute("SELECT wrapped_key IS NULL FROM participants WHERE pid = ?",
-                          (pid,)).fetchone()
-    if row is None:
+def _require_living(ctx: Context, pid: str) -> None:
+    erased = requests.erased(ctx.conn, pid)
+    if erased is None:
         raise NotFound(f"no participant '{pid}'")
-    if row[0]:
-        raise Conflict(_erasure_note(v, pid))
+    if erased:
+        raise Conflict(_erasure_note(ctx, pid))
 
 
 def _family(policy: PolicySet, purpose: str) -> set[str]:
@@ -161,56 +155,51 @@ def _named_purposes(policy: PolicySet, consent: ConsentVersion, purpose: str) ->
     named = sorted(p for p in consent.purposes if p in family)
     if named:
         return named
-    broader = [p for p in (policy.chain(purpose)[1:] if purpose in policy.purposes else ())
-               if p in consent.purposes]
-    if broader:
-        raise InvalidInput(f"--scope: the consent answers {purpose} only through {broader[0]}; "
-                           f"withdraw purpose:{broader[0]}, or amend the consent with a signed form")
+    broader = answering_purpose(consent, policy.chain(purpose)[1:] if purpose in policy.purposes else ())
+    if broader is not None:
+        raise InvalidInput(f"--scope: the consent answers {purpose} only through {broader}; "
+                           f"withdraw purpose:{broader}, or amend the consent with a signed form")
     raise InvalidInput(f"--scope: the consent does not answer purpose {purpose}")
 
 
-def _earliest_request(v: Vault, pid: str, history: list[ConsentVersion]) -> dt.date:
+def _earliest_request(ctx: Context, pid: str, history: list[ConsentVersion]) -> dt.date:
     """The first day a withdrawal can have been received: the first consent's signature."""
     if history:
         return min(version.signed for version in history)
-    row = v._conn.execute("SELECT created_at FROM participants WHERE pid = ?", (pid,)).fetchone()
-    return dt.datetime.fromisoformat(row[0]).astimezone(dt.UTC).date()
+    return dt.datetime.fromisoformat(requests.created_at(ctx.conn, pid)).astimezone(dt.UTC).date()
 
 
-def request_withdrawal(v: Vault, pid: str, *, received: dt.date,
+def request_withdrawal(ctx: Context, pid: str, *, received: dt.date,
                        scope: str = SCOPE_FULL) -> dict[str, Any]:
     """Record a withdrawal request and its deadline; audited. Nothing is deleted yet."""
-    now = v.now()
-    v._require_steward("withdraw.request")
+    now = ctx.now()
+    ctx.require_steward("withdraw.request")
     scope = parse_scope(scope)
     if not isinstance(received, dt.date) or isinstance(received, dt.datetime):
         raise UsageError("--received is a date (YYYY-MM-DD)")
     if received > (now.astimezone(dt.UTC) + dt.timedelta(hours=14)).date():
         raise UsageError("--received lies in the future")
-    _require_living(v, pid)
-    history = registry.consent_history(v._conn, pid)
-    if received < _earliest_request(v, pid, history):
+    _require_living(ctx, pid)
+    history = registry.consent_history(ctx.conn, pid)
+    if received < _earliest_request(ctx, pid, history):
         raise UsageError("--received lies before the participant's consent was signed (or, "
                          "with no consent on record, before their enrolment): check the date")
     if scope != SCOPE_FULL:
         if not history:
             raise Conflict(f"participant '{pid}' has no consent on record; request a full withdrawal")
-        _named_purposes(v.policy, history[-1], _purpose(scope))
-    days = v.policy.meta.withdrawal_deadline_days
+        _named_purposes(ctx.policy, history[-1], _purpose(scope))
+    days = ctx.policy.meta.withdrawal_deadline_days
     deadline = received + dt.timedelta(days=days)
     request_id = "w-" + crypto.random_id(8)
-    at = _at(now)
-    with storage.transaction(v._conn):
-        existing = v._conn.execute(
-            "SELECT request_id FROM withdrawals WHERE pid = ? AND scope = ? AND status = ?",
-            (pid, scope, PENDING)).fetchone()
+    at = iso_utc(now)
+    with storage.transaction(ctx.conn):
+        existing = requests.open_request(ctx.conn, pid, scope, PENDING)
         if existing:
-            raise Conflict(f"this withdrawal is recorded already as request {existing[0]}")
-        v._conn.execute(
-            "INSERT INTO withdrawals (request_id, pid, scope, received, deadline, status) "
-            "VALUES (?, ?, ?, ?, ?, ?)",
-            (request_id, pid, scope, received.isoformat(), deadline.isoformat(), PENDING))
-        v._audit.append({"actor": v.member, "action": "withdraw.request", "subjects": [pid],
+            raise Conflict(f"this withdrawal is recorded already as request {existing}")
+        requests.insert_request(ctx.conn, request_id=request_id, pid=pid, scope=scope,
+                                received=received.isoformat(), deadline=deadline.isoformat(),
+                                status=PENDING)
+        ctx.audit.append({"actor": ctx.member, "action": "withdraw.request", "subjects": [pid],
                          "decision": "done",
                          "details": {"request": request_id, "scope": scope,
                                      "received": received.isoformat(),
@@ -220,13 +209,11 @@ def request_withdrawal(v: Vault, pid: str, *, received: dt.date,
             "deadline_days": days, "days_left": (deadline - _today(now)).days}
 
 
-def pending(v: Vault) -> list[dict[str, Any]]:
+def pending(ctx: Context) -> list[dict[str, Any]]:
     """Open requests, overdue first (then by deadline)."""
-    v._require_steward("withdraw.pending")
-    now = v.now()
-    rows = v._conn.execute(
-        "SELECT request_id, pid, scope, received, deadline FROM withdrawals WHERE status = ? "
-        "ORDER BY deadline, received, request_id", (PENDING,)).fetchall()
+    ctx.require_steward("withdraw.pending")
+    now = ctx.now()
+    rows = requests.requests_in(ctx.conn, PENDING)
     today = _today(now)
     out = []
     for request_id, pid, scope, received, deadline in rows:
@@ -240,18 +227,15 @@ def pending(v: Vault) -> list[dict[str, Any]]:
 # --------------------------------------------------------------------------- processing
 
 
-def _resolve(v: Vault, target: str) -> tuple[str, ...]:
+def _resolve(ctx: Context, target: str) -> tuple[str, ...]:
     """The request row (request_id, pid, scope, received, deadline, status) `target` names."""
-    cols = "request_id, pid, scope, received, deadline, status"
     if target.startswith("w-"):
-        row = v._conn.execute(f"SELECT {cols} FROM withdrawals WHERE request_id = ?",  # noqa: S608
-                              (target,)).fetchone()
+        row = requests.request(ctx.conn, target)
         if row is None:
             raise NotFound(f"no withdrawal request '{target}'")
         return tuple(row)
-    _require_living(v, target)
-    rows = v._conn.execute(f"SELECT {cols} FROM withdrawals WHERE pid = ? AND status = ? "  # noqa: S608
-                           "ORDER BY received, request_id", (target, PENDING)).fetchall()
+    _require_living(ctx, target)
+    rows = requests.requests_of(ctx.conn, target, PENDING)
     if not rows:
         raise NotFound(f"no open withdrawal request for participant '{target}'; record one with "
                        "'mindward withdraw request'")
@@ -262,7 +246,7 @@ def _resolve(v: Vault, target: str) -> tuple[str, ...]:
                      + ", ".join(r[0] for r in rows))
 
 
-def process(v: Vault, target: str, *, reclaim_space: bool = True
+def process(ctx: Context, target: str, *, reclaim_space: bool = True
             ) -> dict[str, Any]:
     """Carry out a request (named by request id, or by participant id when one is open).
 
@@ -271,26 +255,26 @@ def process(v: Vault, target: str, *, reclaim_space: bool = True
     `reclaim_space=False` leaves the unlinking of the erased files to `reclaim` (or the
     next open): the erasure itself is complete either way.
     """
-    now = v.now()
-    v._require_steward("withdraw.process")
+    now = ctx.now()
+    ctx.require_steward("withdraw.process")
     try:
-        request_id, pid, scope, received, deadline, status = _resolve(v, target)
+        request_id, pid, scope, received, deadline, status = _resolve(ctx, target)
     except Conflict as exc:
-        raise Conflict(exc.message + _flush_note(_finish_interrupted(v))) from None
+        raise Conflict(exc.message + _flush_note(_finish_interrupted(ctx))) from None
     if status != PENDING:
-        done = _finish_interrupted(v, _receipt_blobs(v, request_id))
+        done = _finish_interrupted(ctx, _receipt_blobs(ctx, request_id))
         raise Conflict(f"request {request_id} was {status} already; nothing to do"
                        + (" (see 'mindward withdraw receipt')" if status == PROCESSED else "")
                        + _flush_note(done))
     keys: list[bytes] = []
     if scope == SCOPE_FULL:
-        result, blobs = _erase(v, pid, request_id=request_id, received=received,
+        result, blobs = _erase(ctx, pid, request_id=request_id, received=received,
                                deadline=deadline, trigger=TRIGGER_REQUEST, now=now,
                                destroyed_keys=keys)
     else:
-        result, blobs = _withdraw_purpose(v, pid, request_id=request_id, received=received,
+        result, blobs = _withdraw_purpose(ctx, pid, request_id=request_id, received=received,
                                           deadline=deadline, scope=scope, now=now)
-    result.update(_finish_interrupted(v, blobs, overwrite=scope != SCOPE_FULL,
+    result.update(_finish_interrupted(ctx, blobs, overwrite=scope != SCOPE_FULL,
                                      reclaim_space=reclaim_space, destroyed_keys=keys))
     if not result["flushed"]:
         raise Conflict(f"request {request_id}: {UNFLUSHED}")
@@ -312,13 +296,12 @@ def _flush_note(done: dict[str, Any]) -> str:
             "holding the database and run again")
 
 
-def _blob_rows(v: Vault, pid: str) -> list[tuple[str, str, int]]:
-    return [tuple(r) for r in v._conn.execute(
-        "SELECT blob_id, kind, stored_size FROM blobs WHERE pid = ? ORDER BY blob_id", (pid,))]
+def _blob_rows(ctx: Context, pid: str) -> list[tuple[str, str, int]]:
+    return requests.blob_rows(ctx.conn, pid)
 
 
-def _stage(v: Vault, kinds: set[str], held_in: list[dict[str, str]]) -> dict[str, Any]:
-    derived_kinds = {c for c, cat in v.policy.categories.items() if cat.derived_from is not None}
+def _stage(ctx: Context, kinds: set[str], held_in: list[dict[str, str]]) -> dict[str, Any]:
+    derived_kinds = {c for c, cat in ctx.policy.categories.items() if cat.derived_from is not None}
     flags = {"stored": bool(kinds), "derived": bool(kinds & derived_kinds),
              "exported": bool(held_in),
              "shared": any(e["recipient"] != "internal" for e in held_in)}
@@ -329,23 +312,12 @@ def _stage(v: Vault, kinds: set[str], held_in: list[dict[str, str]]) -> dict[str
     return {"reached": reached, **flags}
 
 
-def _delete_rows(v: Vault, pid: str, blob_ids: list[str] | None) -> dict[str, int]:
+def _delete_rows(ctx: Context, pid: str, blob_ids: list[str] | None) -> dict[str, int]:
     """Delete the rows of `blob_ids` (None: every row of the participant); counts per table."""
-    counts: dict[str, int] = {}
-    tables = ("score_items", "score_batches", "recordings", "blobs")
-    if blob_ids is None:
-        for table in (*tables, "budget_ledger"):
-            counts[table] = v._conn.execute(
-                f"DELETE FROM {table} WHERE pid = ?", (pid,)).rowcount  # noqa: S608 (fixed names)
-        return counts
-    for table in tables:
-        counts[table] = v._conn.executemany(
-            f"DELETE FROM {table} WHERE blob_id = ?",  # noqa: S608 (fixed names)
-            [(b,) for b in blob_ids]).rowcount
-    return counts
+    return requests.delete_rows(ctx.conn, pid, blob_ids)
 
 
-def _append_consent(v: Vault, latest: ConsentVersion, now: dt.datetime, purposes: list[str] | None
+def _append_consent(ctx: Context, latest: ConsentVersion, now: dt.datetime, purposes: list[str] | None
                     ) -> tuple[dict[str, Any], ConsentVersion | None]:
     """Append a `withdrawn` version (all purposes, or `purposes`); None if none still permitted."""
     if latest.recorded_at > now:
@@ -356,28 +328,26 @@ def _append_consent(v: Vault, latest: ConsentVersion, now: dt.datetime, purposes
     except Conflict:
         return {"version": latest.number, "digest": latest.digest,
                 "change": "none (consent had already ended for these purposes)"}, None
-    v._record_consent(version)
+    ctx.record_consent(version)
     return {"version": version.number, "digest": version.digest, "change": version.change}, version
 
 
-def _sign_and_store(v: Vault, *, body: dict[str, Any], entry: dict[str, Any], at: str,
+def _sign_and_store(ctx: Context, *, body: dict[str, Any], entry: dict[str, Any], at: str,
                     request_id: str) -> dict[str, Any]:
     """Inside the open transaction: audit entry, signed head, proof, receipt, request done."""
-    seq = v._audit.append(entry, at)
-    v._audit.sign_head(v._signing, at)
-    body["audit"] = v._audit.inclusion_bundle(seq)
-    document = receipt.sign(v._signing, body)
-    done = v._conn.execute(
-        "UPDATE withdrawals SET status = ?, processed_at = ?, receipt = ? WHERE request_id = ? "
-        "AND status = ?", (PROCESSED, at, exports.storage_json(document), request_id, PENDING))
-    if done.rowcount != 1:
+    seq = ctx.audit.append(entry, at)
+    ctx.audit.sign_head(ctx.signer, at)
+    body["audit"] = ctx.audit.inclusion_bundle(seq)
+    document = receipt.sign(ctx.signer, body)
+    if not requests.mark_processed(ctx.conn, request_id, processed=PROCESSED, pending=PENDING, at=at,
+                                   receipt=exports.storage_json(document)):
         raise Conflict(f"request {request_id} is not open any more")
     return document
 
 
-def _common(v: Vault, *, receipt_id: str, pid: str, request_id: str, scope: str, trigger: str,
+def _common(ctx: Context, *, receipt_id: str, pid: str, request_id: str, scope: str, trigger: str,
             received: str, deadline: str, at: str, now: dt.datetime) -> dict[str, Any]:
-    return {"format": receipt.FORMAT, "receipt_id": receipt_id, "vault_id": v.vault_id,
+    return {"format": receipt.FORMAT, "receipt_id": receipt_id, "vault_id": ctx.vault_id,
             "participant_id": pid, "request_id": request_id, "scope": scope, "trigger": trigger,
             "received": received, "deadline": deadline, "processed_at": at,
             "on_time": _today(now) <= dt.date.fromisoformat(deadline),
@@ -405,7 +375,7 @@ def _summary(body: dict[str, Any], document: dict[str, Any], superseded: list[st
             "cautions": [EXPORT_NOTE, BACKUP_NOTE, *CAUTIONS]}
 
 
-def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str, trigger: str,
+def _erase(ctx: Context, pid: str, *, request_id: str, received: str, deadline: str, trigger: str,
            now: dt.datetime, new_request: bool = False, destroyed_keys: list[bytes] | None = None
            ) -> tuple[dict[str, Any], list[str]]:
     """Phase 1 of a full erasure: one transaction (see the module docstring).
@@ -413,47 +383,38 @@ def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str,
     The wrapped key destroyed is appended to `destroyed_keys`, for phase 2 to check
     that no copy of it is left in the database file or its WAL.
     """
-    at = _at(now)
+    at = iso_utc(now)
     receipt_id = "r-" + crypto.random_id(8)
-    with storage.transaction(v._conn):
-        row = v._conn.execute(
-            "SELECT wrapped_key, key_commitment, date_offset IS NOT NULL, "
-            "lab_code_tag IS NOT NULL FROM participants WHERE pid = ?", (pid,)).fetchone()
+    with storage.transaction(ctx.conn):
+        row = requests.erasure_facts(ctx.conn, pid)
         if row is None:
             raise NotFound(f"no participant '{pid}'")
         if row[0] is None:
-            raise Conflict(_erasure_note(v, pid))
+            raise Conflict(_erasure_note(ctx, pid))
         wrapped, commitment, had_offset, had_tag = row
         if new_request:
-            v._conn.execute(
-                "INSERT INTO withdrawals (request_id, pid, scope, received, deadline, status) "
-                "VALUES (?, ?, ?, ?, ?, ?)", (request_id, pid, SCOPE_FULL, received, deadline, PENDING))
-        blobs = _blob_rows(v, pid)
+            requests.insert_request(ctx.conn, request_id=request_id, pid=pid, scope=SCOPE_FULL,
+                                    received=received, deadline=deadline, status=PENDING)
+        blobs = _blob_rows(ctx, pid)
         kinds = {k for _, k, _ in blobs}
-        held_in = exports._exports_containing(v, pid)
-        history = registry.consent_history(v._conn, pid)
+        held_in = lineage.exports_containing(ctx.conn, pid)
+        history = registry.consent_history(ctx.conn, pid)
         consent, appended = None, None
         if history and trigger == TRIGGER_REQUEST:
-            consent, appended = _append_consent(v, history[-1], now, None)
+            consent, appended = _append_consent(ctx, history[-1], now, None)
         elif history:
             consent = {"version": history[-1].number, "digest": history[-1].digest,
                        "change": f"none ({trigger})"}
         versions = len(history) + (appended is not None)
-        counts = _delete_rows(v, pid, None)
-        v._conn.execute(
-            "UPDATE participants SET wrapped_key = NULL, date_offset = NULL, lab_code_tag = NULL, "
-            "erased_at = ? WHERE pid = ?", (at, pid))
-        superseded = [r[0] for r in v._conn.execute(
-            "SELECT request_id FROM withdrawals WHERE pid = ? AND status = ? AND request_id != ?",
-            (pid, PENDING, request_id)).fetchall()]
-        v._conn.execute(
-            "UPDATE withdrawals SET status = ?, processed_at = ? WHERE pid = ? AND status = ? "
-            "AND request_id != ?", (SUPERSEDED, at, pid, PENDING, request_id))
+        counts = _delete_rows(ctx, pid, None)
+        ctx.door.shred(pid, at)  # the cryptographic erase
+        superseded = requests.supersede_others(ctx.conn, pid, request_id, pending=PENDING,
+                                               superseded=SUPERSEDED, at=at)
         blob_ids = [b for b, _, _ in blobs]
         by_kind: dict[str, int] = {}
         for _, kind, _ in blobs:
             by_kind[kind] = by_kind.get(kind, 0) + 1
-        body = _common(v, receipt_id=receipt_id, pid=pid, request_id=request_id, scope=SCOPE_FULL,
+        body = _common(ctx, receipt_id=receipt_id, pid=pid, request_id=request_id, scope=SCOPE_FULL,
                        trigger=trigger, received=received, deadline=deadline, at=at, now=now)
         body.update({
             "destroyed": {
@@ -471,15 +432,15 @@ def _erase(v: Vault, pid: str, *, request_id: str, received: str, deadline: str,
                 "no identity)",
                 "audit log entries naming the random id (append-only; no names or values)",
                 f"export lineage: {len(held_in)} exports that included the random id"]},
-            "consent": consent, "stage": _stage(v, kinds, held_in),
+            "consent": consent, "stage": _stage(ctx, kinds, held_in),
             "unreachable_copies": _unreachable(held_in),
         })
         details = receipt.bound_fields(request_id, receipt_id, SCOPE_FULL, blob_ids, commitment)
-        entry = {"actor": v.member, "action": receipt.ERASE_ACTION, "subjects": [pid],
+        entry = {"actor": ctx.member, "action": receipt.ERASE_ACTION, "subjects": [pid],
                  "decision": "done",
                  "details": {**details, "trigger": trigger, "rows": counts,
                              "exports": len(held_in), "superseded": superseded}}
-        document = _sign_and_store(v, body=body, entry=entry, at=at, request_id=request_id)
+        document = _sign_and_store(ctx, body=body, entry=entry, at=at, request_id=request_id)
     if destroyed_keys is not None:
         destroyed_keys.append(bytes(wrapped))
     return _summary(body, document, superseded), blob_ids
@@ -506,33 +467,33 @@ def _last_granted(history: list[ConsentVersion], purposes: list[str]) -> set[str
     return out
 
 
-def _withdraw_purpose(v: Vault, pid: str, *, request_id: str, received: str, deadline: str,
+def _withdraw_purpose(ctx: Context, pid: str, *, request_id: str, received: str, deadline: str,
                       scope: str, now: dt.datetime) -> tuple[dict[str, Any], list[str]]:
     """One purpose (and its narrower children) withdrawn; unneeded categories deleted."""
-    at = _at(now)
+    at = iso_utc(now)
     receipt_id = "r-" + crypto.random_id(8)
     purpose = _purpose(scope)
-    with storage.transaction(v._conn):
-        _require_living(v, pid)
-        history = registry.consent_history(v._conn, pid)
+    with storage.transaction(ctx.conn):
+        _require_living(ctx, pid)
+        history = registry.consent_history(ctx.conn, pid)
         if not history:
             raise Conflict(f"participant '{pid}' has no consent on record; request a full withdrawal")
-        named = _named_purposes(v.policy, history[-1], purpose)
-        consent, appended = _append_consent(v, history[-1], now, named)
+        named = _named_purposes(ctx.policy, history[-1], purpose)
+        consent, appended = _append_consent(ctx, history[-1], now, named)
         still = _still_granted(appended or history[-1])
         candidates = _last_granted(history, named)
-        blobs = _blob_rows(v, pid)
+        blobs = _blob_rows(ctx, pid)
         gone = [(b, k, s) for b, k, s in blobs if k in candidates and k not in still]
         blob_ids = [b for b, _, _ in gone]
         kept = [{"category": c, "blobs": sum(1 for _, k, _ in blobs if k == c),
                  "still_granted_for": still[c]} for c in sorted(candidates & set(still))]
-        counts = _delete_rows(v, pid, blob_ids)
-        family = _family(v.policy, purpose)
-        held_in = [e for e in exports._exports_containing(v, pid) if e["purpose"] in family]
+        counts = _delete_rows(ctx, pid, blob_ids)
+        family = _family(ctx.policy, purpose)
+        held_in = [e for e in lineage.exports_containing(ctx.conn, pid) if e["purpose"] in family]
         by_kind: dict[str, int] = {}
         for _, kind, _ in gone:
             by_kind[kind] = by_kind.get(kind, 0) + 1
-        body = _common(v, receipt_id=receipt_id, pid=pid, request_id=request_id, scope=scope,
+        body = _common(ctx, receipt_id=receipt_id, pid=pid, request_id=request_id, scope=scope,
                        trigger=TRIGGER_REQUEST, received=received, deadline=deadline, at=at,
                        now=now)
         body.update({
@@ -548,15 +509,15 @@ def _withdraw_purpose(v: Vault, pid: str, *, request_id: str, received: str, dea
                 "all data of categories another purpose still grants (listed)",
                 "consent history, audit log and export lineage"]},
             "consent": {**consent, "purposes_withdrawn": named},
-            "stage": _stage(v, {k for _, k, _ in blobs if k in candidates}, held_in),
+            "stage": _stage(ctx, {k for _, k, _ in blobs if k in candidates}, held_in),
             "unreachable_copies": _unreachable(held_in),
         })
         details = receipt.bound_fields(request_id, receipt_id, scope, blob_ids, None)
-        entry = {"actor": v.member, "action": receipt.PURPOSE_ACTION, "subjects": [pid],
+        entry = {"actor": ctx.member, "action": receipt.PURPOSE_ACTION, "subjects": [pid],
                  "decision": "done",
                  "details": {**details, "purposes": named, "rows": counts,
                              "consent_version": consent["version"], "exports": len(held_in)}}
-        document = _sign_and_store(v, body=body, entry=entry, at=at, request_id=request_id)
+        document = _sign_and_store(ctx, body=body, entry=entry, at=at, request_id=request_id)
     return _summary(body, document, []), blob_ids
 
 
@@ -578,34 +539,26 @@ def _overwrite(path: Path) -> None:
         os.close(fd)
 
 
-def _incremental_vacuum(conn: Any) -> None:
-    # `conn.execute("PRAGMA incremental_vacuum")` frees ONE page per call under Python's
-    # sqlite3 (it steps the statement once); executescript runs it to completion.
-    conn.executescript("PRAGMA incremental_vacuum;")
+def _trash(ctx: Context) -> list[Path]:
+    return sorted(ctx.door.tmp_dir.glob("*" + TRASH_SUFFIX))
 
 
-
-
-def _trash(v: Vault) -> list[Path]:
-    return sorted(v._store.tmp_dir.glob("*" + TRASH_SUFFIX))
-
-
-def reclaim(v: Vault) -> int:
+def reclaim(ctx: Context) -> int:
     """Unlink the erased blob files set aside by `_finish_interrupted`; returns how many.
 
     Only disk space is at stake here: the files are ciphertext under a destroyed key
     (or already overwritten). Unlinking is O(size) on most file systems, which is why
     it is kept out of the erasure proper; any left over are removed at the next open.
     """
-    files = _trash(v)
+    files = _trash(ctx)
     for path in files:
         path.unlink(missing_ok=True)
     if files:
-        fsync_path(v._store.tmp_dir)
+        fsync_path(ctx.door.tmp_dir)
     return len(files)
 
 
-def _finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrite: bool = False,
+def _finish_interrupted(ctx: Context, blob_ids: list[str] | None = None, *, overwrite: bool = False,
                        reclaim_space: bool = True, destroyed_keys: Iterable[bytes] = ()
                        ) -> dict[str, Any]:
     """Phase 2, idempotent: move `blob_ids` out of the store, vacuum free pages, checkpoint
@@ -621,63 +574,57 @@ def _finish_interrupted(v: Vault, blob_ids: list[str] | None = None, *, overwrit
     """
     dirs: set[Path] = set()
     for blob_id in blob_ids or ():
-        source = v._store.path(blob_id)
+        source = ctx.door.blob_path(blob_id)
         if overwrite:
             _overwrite(source)
         try:
-            os.replace(source, v._store.tmp_dir / (blob_id + TRASH_SUFFIX))
+            os.replace(source, ctx.door.tmp_dir / (blob_id + TRASH_SUFFIX))
         except FileNotFoundError:
             continue
-        dirs |= {source.parent, v._store.tmp_dir}
+        dirs |= {source.parent, ctx.door.tmp_dir}
     for directory in sorted(dirs):
         fsync_path(directory)
-    _incremental_vacuum(v._conn)
-    busy = storage.checkpoint(v._conn)[0]
-    wal = v.path / (storage.DB_NAME + "-wal")
+    storage.incremental_vacuum(ctx.conn)
+    busy = storage.checkpoint(ctx.conn)[0]
+    wal = ctx.path / (storage.DB_NAME + "-wal")
     truncated = not wal.exists() or wal.stat().st_size == 0
     keys = list(destroyed_keys)
-    flushed = not busy and truncated and not any(storage.file_holds(v.path, k) for k in keys)
-    noted = v._conn.execute("SELECT 1 FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,)).fetchone()
+    flushed = not busy and truncated and not any(storage.file_holds(ctx.path, k) for k in keys)
+    noted = requests.has_meta(ctx.conn, _UNFLUSHED_NOTE)
     out: dict[str, Any] = {"wal_truncated": truncated, "flushed": flushed}
     if not flushed and not noted and keys:  # a key destroyed by this call is still in the file
-        with storage.transaction(v._conn):
-            storage.set_meta(v._conn, _UNFLUSHED_NOTE, "1")
+        with storage.transaction(ctx.conn):
+            storage.set_meta(ctx.conn, _UNFLUSHED_NOTE, "1")
         noted = True
     elif flushed and noted:
-        with storage.transaction(v._conn):
-            v._conn.execute("DELETE FROM meta WHERE key = ?", (_UNFLUSHED_NOTE,))
-        storage.checkpoint(v._conn)
+        with storage.transaction(ctx.conn):
+            requests.delete_meta(ctx.conn, _UNFLUSHED_NOTE)
+        storage.checkpoint(ctx.conn)
         out["finished_earlier_erasure"] = True
         noted = False
     out["erasure_unflushed"] = bool(noted)
     if not flushed:
         out["warning"] = UNFLUSHED
     if reclaim_space:
-        out["files_unlinked"] = reclaim(v)
+        out["files_unlinked"] = reclaim(ctx)
     return out
 
 
-def _receipt_blobs(v: Vault, request_id: str) -> list[str]:
-    row = v._conn.execute("SELECT receipt FROM withdrawals WHERE request_id = ?",
-                          (request_id,)).fetchone()
-    if row is None or row[0] is None:
+def _receipt_blobs(ctx: Context, request_id: str) -> list[str]:
+    stored = requests.receipt(ctx.conn, request_id)
+    if stored is None:
         return []
-    return list(receipt.load(row[0])["body"]["destroyed"]["blobs"])
+    return list(receipt.load(stored)["body"]["destroyed"]["blobs"])
 
 
-def receipt_of(v: Vault, target: str) -> dict[str, Any]:
+def receipt_of(ctx: Context, target: str) -> dict[str, Any]:
     """The stored receipt of a processed request (by request id, or the participant's latest)."""
-    v._require_steward("withdraw.receipt")
-    if target.startswith("w-"):
-        rows = v._conn.execute("SELECT receipt FROM withdrawals WHERE request_id = ?",
-                               (target,)).fetchall()
-    else:
-        rows = v._conn.execute(
-            "SELECT receipt FROM withdrawals WHERE pid = ? AND receipt IS NOT NULL "
-            "ORDER BY processed_at DESC, rowid DESC LIMIT 1", (target,)).fetchall()
-    if not rows or rows[0][0] is None:
+    ctx.require_steward("withdraw.receipt")
+    stored = (requests.receipt(ctx.conn, target) if target.startswith("w-")
+              else requests.latest_receipt(ctx.conn, target))
+    if stored is None:
         raise NotFound(f"no receipt for '{target}' (is the request processed?)")
-    return receipt.load(rows[0][0])
+    return receipt.load(stored)
 
 
 # --------------------------------------------------------------------------- retention
@@ -691,14 +638,14 @@ def _due(consent: ConsentVersion, now: dt.datetime) -> str | None:
     return TRIGGER_EXPIRED
 
 
-def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
+def sweep(ctx: Context, *, dry_run: bool = False) -> dict[str, Any]:
     """Erase, with receipts, every participant whose consent or retention period has ended.
 
     Idempotent (erased participants are skipped); one transaction per participant.
     """
-    now = v.now()
-    v._require_steward("sweep")
-    consents = registry.latest_consents(v._conn, None)  # living participants only
+    now = ctx.now()
+    ctx.require_steward("sweep")
+    consents = registry.latest_consents(ctx.conn, None)  # living participants only
     due: list[tuple[str, str, dt.date]] = []
     no_consent, ended = 0, []
     for pid, consent in sorted(consents.items()):
@@ -716,18 +663,18 @@ def sweep(v: Vault, *, dry_run: bool = False) -> dict[str, Any]:
     if dry_run:
         report["would_erase"] = [{"participant_id": p, "trigger": r} for p, r, _ in due]
         return report
-    days = v.policy.meta.withdrawal_deadline_days
+    days = ctx.policy.meta.withdrawal_deadline_days
     keys: list[bytes] = []
     for pid, reason, ended_on in due:
         result, blobs = _erase(
-            v, pid, request_id="w-" + crypto.random_id(8), received=ended_on.isoformat(),
+            ctx, pid, request_id="w-" + crypto.random_id(8), received=ended_on.isoformat(),
             deadline=(ended_on + dt.timedelta(days=days)).isoformat(), trigger=reason, now=now,
             new_request=True, destroyed_keys=keys)
-        _finish_interrupted(v, blobs, reclaim_space=False)
+        _finish_interrupted(ctx, blobs, reclaim_space=False)
         report["erased"].append({k: result[k] for k in (
             "participant_id", "request_id", "receipt_id", "trigger", "on_time", "blobs_deleted",
             "notify", "recipients_to_notify")})
-    report.update(_finish_interrupted(v, destroyed_keys=keys))
+    report.update(_finish_interrupted(ctx, destroyed_keys=keys))
     if not report["flushed"]:
         raise Conflict(f"sweep: {len(report['erased'])} {UNFLUSHED}")
     return report

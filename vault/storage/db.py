@@ -272,7 +272,9 @@ def file_holds(directory: Path, needle: bytes) -> bool:
 
 
 def incremental_vacuum(conn: sqlite3.Connection) -> None:
-    """Hand every free page back to the file system (executescript steps it to the end)."""
+    """Hand every free page back to the file system. `conn.execute("PRAGMA incremental_vacuum")`
+    frees ONE page per call under Python's sqlite3 (it steps the statement once);
+    executescript runs it to completion."""
     conn.executescript("PRAGMA incremental_vacuum;")
 
 

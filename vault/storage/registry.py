@@ -14,6 +14,7 @@ from vault.errors import Conflict, IntegrityError, NotFound
 from vault.policy.consent import ConsentVersion, verify_history
 from vault.policy.policyset import PolicySet, parse_policy_json
 from vault.storage import db as storage
+from vault.times import iso_utc
 
 
 def store_policy(conn: sqlite3.Connection, policy: PolicySet, at: str) -> bool:
@@ -38,7 +39,7 @@ def add_consent(conn: sqlite3.Connection, version: ConsentVersion) -> None:
     conn.execute(
         "INSERT INTO consents (pid, number, body, digest, recorded_at) VALUES (?, ?, ?, ?, ?)",
         (version.participant_id, version.number, version.to_json(), version.digest,
-         version.recorded_at.strftime("%Y-%m-%dT%H:%M:%SZ")))
+         iso_utc(version.recorded_at)))
 
 
 def consent_history(conn: sqlite3.Connection, pid: str) -> list[ConsentVersion]:
