@@ -132,6 +132,7 @@ class Vault:
         self.audit_flagged: dict[str, Any] | None = None
         self._closed = False
         self._set_policy(registry.load_policy(conn, self._pinned_policy_version()))
+        self._door.attach(lambda: self._engine, self._audit_batch)
         self._floor = _newest_entry_time(conn)
 
     def _pinned_policy_version(self) -> str:
@@ -570,7 +571,7 @@ class Vault:
         Yields (blob_id, subject, plaintext chunks) in the order given. The subject is the
         participant's pseudonym for the grant's purpose (stewards: their random vault id).
         Refused for purposes that require differential-privacy noise."""
-        reads = self._door.read(self._engine, self._audit_batch, grant, blob_ids, for_noise=False)
+        reads = self._door.read(grant, blob_ids, for_noise=False)
         names = ({pid: pid for _, pid, _ in reads} if self.role == "steward"
                  else self._door.pseudonyms(grant.purpose, sorted({pid for _, pid, _ in reads})))
         return ((blob_id, names[pid], chunks) for blob_id, pid, chunks in reads)

@@ -18,7 +18,7 @@ from typing import Any
 from vault import crypto
 from vault.access.blobs import BlobInfo, BlobStore
 from vault.access.keys import KeyRing
-from vault.errors import IntegrityError, NotFound
+from vault.errors import IntegrityError, NotFound, UsageError
 from vault.policy.engine import Grant, PolicyEngine
 from vault.storage import db as storage
 from vault.storage import participants as rows
@@ -88,6 +88,17 @@ class Door:
         self._conn = conn
         self._ring = ring
         self._blobs = BlobStore(root, ring.vault_id)
+        self._engine: Callable[[], PolicyEngine] | None = None
+        self._audit: Callable[[list[dict[str, Any]]], None] | None = None
+
+    def attach(self, engine: Callable[[], PolicyEngine],
+               audit_batch: Callable[[list[dict[str, Any]]], None]) -> None:
+        """Bind the door, once, to its vault's policy engine (the current one, read at each
+        read: the one that mints this session's grants) and audit sink. Reads admitted by any
+        other engine (one a caller built with its own consent loader) never reach a key."""
+        if self._engine is not None:
+            raise UsageError("this door is bound to its vault already")
+        self._engine, self._audit = engine, audit_batch
 
     def __reduce__(self) -> object:
         raise TypeError("the door is not serialisable")
@@ -156,10 +167,12 @@ class Door:
 
     # -- reads ----------------------------------------------------------------------------------
 
-    def read(self, engine: PolicyEngine, audit_batch: Callable[[list[dict[str, Any]]], None],
-             grant: Grant, blob_ids: list[str], *, for_noise: bool) -> list[Read]:
-        """Plaintext of many blobs: one live admission by the engine, one audit batch, then
-        (blob_id, participant id, chunks) in the order given."""
+    def read(self, grant: Grant, blob_ids: list[str], *, for_noise: bool) -> list[Read]:
+        """Plaintext of many blobs: one live admission by the vault's engine, one audit batch,
+        then (blob_id, participant id, chunks) in the order given."""
+        if self._engine is None or self._audit is None:
+            raise UsageError("this door is not bound to a vault")
+        engine, audit_batch = self._engine(), self._audit
         record = engine.record(grant)
         found: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
             self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}

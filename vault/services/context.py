@@ -87,7 +87,7 @@ class Context:
                          ) -> Iterator[tuple[str, str, Iterator[bytes]]]:
         """The release mechanisms' read: (blob_id, participant id, chunks); the plaintext
         goes into noise or into pseudonymised files, never back to the caller."""
-        return iter(self.door.read(self.engine, self.audit_batch, grant, blob_ids, for_noise=True))
+        return iter(self.door.read(grant, blob_ids, for_noise=True))
 
     # -- rows the door's keys tag ---------------------------------------------------------------
 
