@@ -3,9 +3,8 @@
 Pure: arrays in, noisy arrays and a stated `Guarantee` out; no I/O, no clock,
 no storage. Randomness comes from `vault.privacy.noise` (exact discrete Laplace and
 discrete Gaussian samplers on integer grids) through its byte `source`
-(default: `vault.crypto.random_bytes`, the operating system's CSPRNG or, for long
-requests, an AES-256-CTR keystream keyed from it). The caller persists the ledger and
-writes the manifest (`Guarantee.as_dict`).
+(default: `vault.crypto.random_bytes`, the operating system's CSPRNG). The caller persists
+the ledger and writes the manifest (`Guarantee.as_dict`).
 
 The matrix release (`release_matrix`), per privacy unit
 --------------------------------------------------------
