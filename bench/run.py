@@ -290,13 +290,14 @@ def _ingest(workdir: Path, vault_dir: Path, duration_s: int) -> dict[str, float]
 
 def _decide_cohort(v: Vault, n: int) -> dict[str, float]:
     """Decide one request for `n` participants, audit entries written in one batch."""
-    from vault.policy.decide import synthetic_cohort
+    from mindward_bench.decide import synthetic_cohort
+
     from vault.policy.engine import PolicyEngine
 
-    policy, request, consents, budget, at = synthetic_cohort(n)
+    policy, request, consents, affordable, at = synthetic_cohort(n)
     engine = PolicyEngine(policy, lambda _pids: consents, v._audit_batch, lambda: at)
     before = v._audit.size
-    seconds = _timed(lambda: engine.decide(request, budget_remaining=budget))
+    seconds = _timed(lambda: engine.decide(request, affordable=affordable))
     return {"decide_participants": n, "decide_s": seconds, "decisions_per_s": n / seconds,
             "decide_audit_entries": v._audit.size - before}
 

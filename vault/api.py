@@ -593,13 +593,13 @@ class Vault:
         return self._engine.authorize(self.request(purpose, categories, participants=participants))
 
     def _authorize_release(self, purpose: str, categories: Iterable[str], *,
-                           budget_remaining: Mapping[str, float] | None = None,
+                           affordable: Mapping[str, bool] | None = None,
                            **options: Any) -> Grant:
         """Export grants (cohort, noise, recipient rules); for the export modules only, which
-        compute `budget_remaining` from the vault's own ledger."""
+        take `affordable` from the vault's own exact ledger (`budget.affordable`)."""
         request = Request(actor=self.member, role=self.role, purpose=purpose,
                           categories=frozenset(categories), **options)
-        return self._engine.authorize(request, budget_remaining=budget_remaining)
+        return self._engine.authorize(request, affordable=affordable)
 
     def read_blob(self, grant: Grant, blob_id: str) -> Iterator[bytes]:
         """Plaintext of one blob through the one door (grant checked live, read audited)."""

@@ -28,7 +28,6 @@ ANALYST = "analyst passphrase long enough"
 # call it. A new one fails this test until it is listed (and, if for stewards, checks the role).
 PUBLIC: dict[str, str] = {
     "budget.affordable": "anyone",  # reads remaining budget of ids the caller names
-    "budget.remaining_for_decide": "anyone",
     "budget.charge": "steward",
     "budget.budget_report": "anyone",  # per-participant rows for stewards only
     "export_eeg.export_eeg": "anyone",  # the policy engine decides
