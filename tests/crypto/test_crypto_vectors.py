@@ -460,7 +460,10 @@ def test_ed25519_sign_input() -> None:
     for v in lines:
         key = crypto.SigningKey(v.seed)
         assert key.public_key == v.public_key, f"line {v.line}"
-        assert key.sign_raw(v.message) == v.signature, f"line {v.line}"  # RFC 8032 is deterministic
+        assert hazmat.ed25519_sign(v.seed, v.message) == v.signature, f"line {v.line}"  # deterministic
+        signed = key.sign("vectors", v.message)  # the recipe signs with the same key, domain-separated
+        assert crypto.verify_signature(v.public_key, "vectors", v.message, signed), f"line {v.line}"
+        assert crypto.verify_raw(v.public_key, b"mindward/v1/signature/vectors\x00" + v.message, signed)
         assert crypto.verify_raw(v.public_key, v.message, v.signature), f"line {v.line}"
         bad_sig = bytearray(v.signature)
         bad_sig[v.line % 64] ^= 0x01
@@ -971,7 +974,7 @@ def test_unwrap_with_malformed_inputs_raises_vault_errors(bad_kek_size: int) -> 
 
 def test_verify_raw_with_malformed_inputs_is_false() -> None:
     key = crypto.SigningKey(bytes(range(32)))
-    sig = key.sign_raw(b"menu")
+    sig = hazmat.ed25519_sign(bytes(range(32)), b"menu")
     assert crypto.verify_raw(key.public_key, b"menu", sig)
     for pk in (b"", key.public_key[:31], key.public_key + b"\x00"):
         assert not crypto.verify_raw(pk, b"menu", sig)

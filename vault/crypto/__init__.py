@@ -227,10 +227,6 @@ class SigningKey:
         """Sign `payload` in a named domain (tree-head, manifest, receipt...)."""
         return self._key.sign(_signed_message(domain, payload))
 
-    def sign_raw(self, message: bytes) -> bytes:
-        """Plain RFC 8032 signature; for the published vectors only."""
-        return self._key.sign(message)
-
     def __reduce__(self) -> object:
         raise TypeError("signing keys are not serialisable")
 

@@ -2,17 +2,19 @@
 
 WARNING: nothing in `vault/` imports this module, and nothing should. These functions let the
 caller choose the nonce (reusing one under a key breaks AES-GCM's confidentiality and its
-authentication) and skip the key commitment, the labels and the length framing that the
-recipes in `vault.crypto` and the blob format in `vault.crypto.sealing` add. They exist so
-that tests can check the primitives against published vectors (NIST SP 800-38D, RFC 5869,
-Wycheproof) and so that `mindward bench` has a raw baseline to measure the vault against.
-The import contracts in pyproject.toml allow only tests and `bench/` to import it.
+authentication) or sign bytes with no domain, and they skip the key commitment, the labels
+and the length framing that the recipes in `vault.crypto` and the blob format in
+`vault.crypto.sealing` add. They exist so that tests can check the primitives against
+published vectors (NIST SP 800-38D, RFC 5869, RFC 8032, Wycheproof) and so that
+`mindward bench` has a raw baseline to measure the vault against. The import contracts in
+pyproject.toml allow only tests and `bench/` to import it.
 """
 
 from __future__ import annotations
 
 from cryptography.exceptions import InvalidTag
 from cryptography.hazmat.primitives import hashes
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from cryptography.hazmat.primitives.ciphers.aead import AESGCM
 from cryptography.hazmat.primitives.kdf.hkdf import HKDF
 
@@ -51,3 +53,9 @@ def hkdf_sha256(ikm: bytes, salt: bytes | None, info: bytes, length: int) -> byt
         return HKDF(algorithm=hashes.SHA256(), length=length, salt=salt, info=info).derive(ikm)
     except ValueError as exc:
         raise UsageError(f"HKDF cannot produce {length} bytes") from exc
+
+
+def ed25519_sign(seed: bytes, message: bytes) -> bytes:
+    """Plain RFC 8032 Ed25519 signature of `message`, with no domain separation (the vault's
+    `SigningKey.sign` always prefixes one)."""
+    return Ed25519PrivateKey.from_private_bytes(seed).sign(message)
