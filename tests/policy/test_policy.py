@@ -829,3 +829,28 @@ def test_a_snapshot_of_an_earlier_version_still_loads_with_its_version_and_keeps
     tables["categories.toml"]["categories"]["eeg-raw"]["event_code_pattern"] = "^stim/.*$"
     with pytest.raises(InvalidInput, match="event_code_pattern is no longer accepted"):
         parse_policy_tables(tables)
+
+
+def test_the_per_release_cap_is_compared_exactly() -> None:
+    # amounts are exact: a float request reads as its shortest decimal (0.1 is 1/10, as the
+    # policy's budgets and the accountant read them), and one part in 10**30 above the cap,
+    # far inside one float's rounding, is refused
+    policy = load_default_policy()
+    purpose = policy.purposes["recommender-training"]
+    cap = purpose.epsilon_per_release
+    assert cap is not None
+    exact_cap = Fraction(str(cap))
+
+    def rec(epsilon: Any) -> Request:
+        return _req(purpose="recommender-training", categories=frozenset({"scores-derived"}),
+                    export=True, epsilon=epsilon)
+
+    assert rec(0.1).epsilon == Fraction(1, 10) and rec("3/10").epsilon == Fraction(3, 10)
+    for at_cap in (cap, exact_cap, str(exact_cap)):
+        assert request_reasons(policy, rec(at_cap)) == ()
+    above = rec(exact_cap + Fraction(1, 10**30))
+    assert float(above.epsilon) == cap  # a float comparison could not tell them apart
+    assert request_reasons(policy, above) == (Reason.RELEASE_EPSILON_EXCEEDS_CAP,)
+    for bad in (0, -0.5, math.inf, math.nan, True, "x"):
+        with pytest.raises(UsageError):
+            rec(bad)

@@ -400,6 +400,8 @@ def test_below_the_minimum_cohort_nothing_is_exported(tmp_path: Path) -> None:
         assert not (tmp_path / "o").exists() and not spent(v, REC)
         refusals = [e for e in v.audit_entries() if e["action"] == "access.grant"
                     and e["decision"] == "refuse"]
+        # the audit states the request's epsilon as a JSON number, as it always has
+        assert {e["details"]["epsilon"] for e in refusals} == {0.5}
         assert sum(len(e["subjects"]) for e in refusals) == 8
 
 
