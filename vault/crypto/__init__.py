@@ -171,11 +171,10 @@ def passphrase_key(passphrase: str, params: KdfParams) -> bytes:
     )
 
 
-def hkdf_expand(prk: bytes, info: bytes, length: int, *, sha512: bool = False) -> bytes:
-    """HKDF-Expand only (RFC 5869 section 2.3)."""
-    algorithm = hashes.SHA512() if sha512 else hashes.SHA256()
+def hkdf_expand(prk: bytes, info: bytes, length: int) -> bytes:
+    """HKDF-Expand with SHA-256 only (RFC 5869 section 2.3); `prk` must be uniformly random."""
     try:
-        return HKDFExpand(algorithm=algorithm, length=length, info=info).derive(prk)
+        return HKDFExpand(algorithm=hashes.SHA256(), length=length, info=info).derive(prk)
     except ValueError as exc:
         raise UsageError(f"HKDF-Expand cannot produce {length} bytes") from exc
 
