@@ -22,6 +22,7 @@ import edfio
 import numpy as np
 
 from vault import crypto
+from vault.crypto import hazmat, sealing
 from vault.formats.edf import DEFAULT_BLOCK_BYTES, DeidOptions, deidentified_blocks
 from vault.formats.edf_header import BLOCK, field, pack_header
 from vault.policy.event_codes import EventCodes
@@ -88,7 +89,7 @@ def bench_deid(
     path = Path(path)
     size = path.stat().st_size
     opts = DeidOptions(date_offset_days=-3000, event_codes=EventCodes([r"stim/\d{1,4}"]))
-    raw = crypto.RawAesGcm(crypto.new_key())
+    raw = hazmat.RawAesGcm(crypto.new_key())
     key = crypto.new_key()
 
     def nonces() -> Iterator[bytes]:
@@ -127,7 +128,7 @@ def bench_deid(
 
     def deid_chunked() -> None:
         d = deidentified_blocks(path, opts, block_bytes)
-        enc = crypto.ChunkedEncryptor(key, b"edf-bench")
+        enc = sealing.ChunkedEncryptor(key, b"edf-bench")
         enc.update(d.header)
         for block in d.blocks:
             enc.update(block)

@@ -156,16 +156,15 @@ def _phases(v: Vault, *, unit: str, epsilon: float, now: dt.datetime) -> dict[st
     out["candidates_s"] = t
     n_rows = {pid: sum(n for _, n in b) for pid, b in batches.items()}
     per_rating = unit == "rating"
-    one = Cost(epsilon=epsilon)  # shared cost objects, as the export builds them (memo keys)
+    one = Cost(epsilon=epsilon)  # shared cost objects, as the export builds them
     scaled = {n: one.times(n) for n in set(n_rows.values())} if per_rating else {}
     costs = {p: scaled[n_rows[p]] if per_rating else one for p in batches}
-    t, remaining = _timed(lambda: budget.remaining_for_decide(
-        v._context(), purpose, costs, epsilon, scale=n_rows if per_rating else None))
+    t, verdict = _timed(lambda: budget.affordable(v._context(), purpose, costs))
     out["ledger_s"] = t
     ctx = v._context()
     t, grant = _timed(lambda: ctx.authorize_release(purpose, [CATEGORY], export=True, epsilon=epsilon,
                                           privacy_unit=unit, participants=tuple(batches),
-                                          budget_remaining=remaining))
+                                          affordable=verdict))
     out["decide_s"] = t
     t, cohort = _timed(lambda: _read_cohort(v._context(), grant, batches, now))
     out["read_through_door_s"] = t

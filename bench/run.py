@@ -25,6 +25,7 @@ from typing import Any
 from vault import crypto
 from vault.api import Vault
 from vault.audit import log as audit
+from vault.crypto import hazmat
 from vault.storage import db as storage
 
 MIB = 1 << 20
@@ -54,7 +55,7 @@ def _source(data: bytes, total: int) -> Iterator[bytes]:
 
 
 def _raw_rates(workdir: Path, data: bytes, total: int) -> tuple[float, float]:
-    aead = crypto.RawAesGcm(crypto.new_key())
+    aead = hazmat.RawAesGcm(crypto.new_key())
     nonce = crypto.random_bytes(12)
     path = workdir / "raw.bin"
 
@@ -264,7 +265,7 @@ def _ingest(workdir: Path, vault_dir: Path, duration_s: int) -> dict[str, float]
 
     edf = workdir / "bench.edf"
     write_test_edf(edf, duration_s=duration_s, n_channels=64, rate=1000)
-    raw = crypto.RawAesGcm(crypto.new_key())
+    raw = hazmat.RawAesGcm(crypto.new_key())
 
     def baseline() -> None:  # merely reading it with the same library, plus raw AES-GCM
         with warnings.catch_warnings():
@@ -289,13 +290,14 @@ def _ingest(workdir: Path, vault_dir: Path, duration_s: int) -> dict[str, float]
 
 def _decide_cohort(v: Vault, n: int) -> dict[str, float]:
     """Decide one request for `n` participants, audit entries written in one batch."""
-    from vault.policy.decide import synthetic_cohort
+    from mindward_bench.decide import synthetic_cohort
+
     from vault.policy.engine import PolicyEngine
 
-    policy, request, consents, budget, at = synthetic_cohort(n)
+    policy, request, consents, affordable, at = synthetic_cohort(n)
     engine = PolicyEngine(policy, lambda _pids: consents, v._audit_batch, lambda: at)
     before = v._audit.size
-    seconds = _timed(lambda: engine.decide(request, budget_remaining=budget))
+    seconds = _timed(lambda: engine.decide(request, affordable=affordable))
     return {"decide_participants": n, "decide_s": seconds, "decisions_per_s": n / seconds,
             "decide_audit_entries": v._audit.size - before}
 

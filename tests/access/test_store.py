@@ -12,7 +12,7 @@ from hypothesis import strategies as st
 from tests.conftest import TEST_PASSPHRASE, assert_absent
 from vault import IntegrityError, Vault
 from vault.access.blobs import _WHOLE_READ
-from vault.crypto import CHUNK_SIZE, CT_CHUNK_SIZE, HEADER_SIZE, SALT_SIZE, TAG_SIZE
+from vault.crypto.sealing import CHUNK_SIZE, CT_CHUNK_SIZE, HEADER_SIZE, SALT_SIZE, TAG_SIZE
 
 # Blobs up to _WHOLE_READ bytes are read and authenticated in one piece, larger ones streamed:
 # the adversarial tests run on both paths. `extra` full chunks move a blob past the threshold.

@@ -31,7 +31,6 @@ ANALYST = "analyst passphrase long enough"
 # the role).
 PUBLIC: dict[str, str] = {
     "budget.affordable": "anyone",  # reads remaining budget of ids the caller names
-    "budget.remaining_for_decide": "anyone",
     "budget.charge": "steward",
     "budget.charge_in_transaction": "anyone",  # inside an export's transaction only (refused outside)
     "budget.refund_in_transaction": "anyone",

@@ -115,7 +115,7 @@ def test_example_forms_decide_as_documented() -> None:
     # four people are fewer than recommender training's minimum cohort of 20
     export = Request(actor="t", role="analyst", purpose="recommender-training", export=True,
                      categories=frozenset({"scores-derived"}), epsilon=0.5)
-    d = decide(policy, export, by_pid, now=NOW, budget_remaining=dict.fromkeys(by_pid, 3.0))
+    d = decide(policy, export, by_pid, now=NOW, affordable=dict.fromkeys(by_pid, True))
     assert not d.permit and d.cohort_reasons == (Reason.COHORT_TOO_SMALL,)
     assert len(d.eligible) == 2 and d.included == ()
     # before 2026-06-01 the expired form still permitted everything it grants

@@ -194,13 +194,14 @@ def test_an_auditor_holds_no_key_to_participant_data(lab) -> None:
         master, secret, vault_id = v._door._ring._master, v._door._ring._secret, v.vault_id
     from vault import crypto
     from vault.access.keys import KeyRing
+    from vault.crypto import sealing
 
     conn = sqlite3.connect(path / "vault.db")
     doc, wrapped = conn.execute("SELECT kdf, wrapped_master FROM keyslots WHERE member = 'ines'").fetchone()
     conn.close()
     doc = json.loads(doc)
     assert doc["kind"] == "member"
-    inner = crypto.unwrap_master(KeyRing._slot_kek(AUDITOR, crypto.KdfParams.from_dict(doc["kdf"]),
+    inner = sealing.unwrap_master(KeyRing._slot_kek(AUDITOR, crypto.KdfParams.from_dict(doc["kdf"]),
                                                    vault_id, "ines",
                                                    "auditor", "member"), wrapped)
     assert inner not in (master, secret)  # what the passphrase opens is only the member key
@@ -273,13 +274,14 @@ def _legacy_slot(path: Path, member: str, role: str, passphrase: str, master: by
     """A key slot as vaults wrote them before roles were bound: the bare Argon2id key wraps the
     master key, and the kdf column holds only the Argon2id parameters."""
     from vault import crypto
+    from vault.crypto import sealing
 
     params = crypto.KdfParams.fresh()
     conn = sqlite3.connect(path / "vault.db")
     with conn:
         conn.execute("INSERT OR REPLACE INTO keyslots VALUES (?, ?, ?, ?, '2026-01-01T00:00:00Z')",
                      (member, role, json.dumps(params.as_dict(), sort_keys=True),
-                      crypto.wrap_key(crypto.passphrase_key(passphrase, params), master)))
+                      sealing.wrap_key(crypto.passphrase_key(passphrase, params), master)))
     conn.close()
 
 

@@ -32,6 +32,7 @@ from scipy import stats
 
 from vault.errors import InvalidInput, UsageError, VaultError
 from vault.privacy import noise
+from vault.privacy.accountant import GAUSSIAN, noise_parameter
 
 P_MIN = 1e-4  # seeded tests: fixed outcome, threshold as in the brief
 P_MIN_LIVE = 1e-6  # real CSPRNG: chance of a false failure per run
@@ -280,7 +281,7 @@ def test_laplace_calibration_matches_opendp_privacy_map(
 def test_gaussian_calibration_matches_opendp_privacy_map(
     dp: ModuleType, rho: F, sensitivity: int
 ) -> None:
-    sigma2 = noise.gaussian_sigma2_for_rho(rho, sensitivity)
+    sigma2 = noise_parameter(GAUSSIAN, rho, 0, sensitivity**2)  # the releases' calibration
     assert sigma2 == F(sensitivity**2) / (2 * rho)
     meas = dp.m.make_gaussian(
         dp.atom_domain(T="i64"), dp.absolute_distance(T="i64"), math.sqrt(sigma2)
@@ -366,8 +367,7 @@ def test_sizes_and_dtypes(size: int) -> None:
         lambda: noise.laplace_scale_for(0, 1),
         lambda: noise.laplace_scale_for(F(1), 0),
         lambda: noise.laplace_scale_for(F(1), 1.5),
-        lambda: noise.gaussian_sigma2_for_rho(F(-1, 2), 1),
-        lambda: noise.gaussian_sigma2_for_rho(F(1, 2), -3),
+        lambda: noise_parameter(GAUSSIAN, F(1, 2), 0, 0),
     ],
 )
 def test_bad_parameters_are_refused(call: Callable[[], object]) -> None:
@@ -459,15 +459,13 @@ def test_stuck_byte_source_never_hangs(byte: int) -> None:
 # --------------------------------------------------------------------------- fixed-point grid
 
 
-def test_grid_quantises_clips_and_reports_sensitivity() -> None:
+def test_grid_quantises_and_clips() -> None:
     grid = noise.FixedPointGrid(low=F(0), high=F(10), k=4)  # scores 0..10, step 1/4
     assert (grid.low_units, grid.high_units, grid.span_units) == (0, 40, 40)
     units = grid.quantise(np.array([-3.0, 0.0, 0.1, 0.125, 2.38, 9.99, 10.0, 55.0]))
     assert units.dtype == np.int64
     assert units.tolist() == [0, 0, 0, 0, 10, 40, 40, 40]  # 0.125*4 = 0.5 rounds to even
     assert grid.dequantise(units).tolist() == [0, 0, 0, 0, 2.5, 10, 10, 10]
-    assert grid.sensitivity_units(F(1, 2)) == 2
-    assert grid.sensitivity_units(F(3, 5)) == 2  # quantised values move in steps of 1/4
     assert grid.clip_units(np.array([-7, 3, 99])).tolist() == [0, 3, 40]
 
 

@@ -31,23 +31,19 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from vault.errors import InvalidInput, PolicyRefusal, UsageError, VaultError
+from vault.errors import InvalidInput, VaultError
 from vault.privacy import noise
 from vault.privacy.accountant import (
     Budget,
     Cost,
     Ledger,
     PrivacyUnit,
-    apply_policy,
-    charge,
     exact,
     matrix_sensitivity,
     release_matrix,
     remaining_epsilon,
-    spend_pure,
     spent_epsilon,
     within,
-    would_exceed,
     zcdp_epsilon,
 )
 from vault.privacy.aggregate import (
@@ -472,51 +468,47 @@ def test_spending_twice_costs_twice(eps: F, rho: F, n: int) -> None:
     assert remaining_epsilon(pure, budget) == 98 * eps
 
 
+def fits(ledgers: dict[str, Ledger], cost: Cost | dict[str, Cost], budget: Budget) -> dict[str, bool]:
+    """The per-participant verdict exactly as the product's ledger computes it
+    (`vault.services.budget.affordable`: does the ledger after this spend stay within?)."""
+    return {pid: within(led.spend(cost[pid] if isinstance(cost, dict) else cost), budget)
+            for pid, led in ledgers.items()}
+
+
 @given(budget=fractions, costs=st.lists(fractions, max_size=30))
 def test_spending_never_goes_below_zero(budget: F, costs: list[F]) -> None:
-    left = budget
+    ledger, left = Ledger(), budget
     for c in costs:
-        if c > left:
-            with pytest.raises(PolicyRefusal):
-                spend_pure(left, c)
-        else:
-            left = spend_pure(left, c)
-        assert left >= 0
-    # the same through the ledger and the policy: an included participant stays within
-    ledgers = {"p1": Ledger()}
-    for c in costs:
-        included, _ = apply_policy(ledgers, Cost(c), Budget(budget), "exclude")
-        ledgers.update(charge(ledgers, included, Cost(c)))
-        assert within(ledgers["p1"], Budget(budget))
-        assert remaining_epsilon(ledgers["p1"], Budget(budget)) >= 0
+        fits_now = fits({"p1": ledger}, Cost(c), Budget(budget))["p1"]
+        assert fits_now == (c <= left)  # refused exactly when it would overspend
+        if fits_now:
+            ledger, left = ledger.spend(Cost(c)), left - c
+        assert within(ledger, Budget(budget))  # an included participant stays within
+        assert remaining_epsilon(ledger, Budget(budget)) == left >= 0
 
 
 def test_exact_arithmetic_a_tenth_ten_times_is_one() -> None:
     assert exact(0.1) == F(1, 10) and exact(np.float64(0.1)) == F(1, 10)
-    ledger, left = Ledger(), exact(1.0)
+    ledger = Ledger()
     for _ in range(10):
+        assert fits({"p": ledger}, Cost(0.1), Budget(1.0)) == {"p": True}
         ledger = ledger.spend(Cost(0.1))
-        left = spend_pure(left, 0.1)
-    assert ledger.epsilon == 1 and left == 0
+    assert ledger.epsilon == 1
     assert within(ledger, Budget(1.0)) and remaining_epsilon(ledger, Budget(1)) == 0
-    assert would_exceed(ledger, Cost(F(1, 10**30)), Budget(1))  # exactly full
+    assert fits({"p": ledger}, Cost(F(1, 10**30)), Budget(1)) == {"p": False}  # exactly full
     assert sum([0.1] * 10) != 1.0  # what floats would have done
 
 
-def test_exclude_versus_refuse() -> None:
+def test_who_fits_a_release() -> None:
     budget = Budget(1)
     ledgers = {"a": Ledger(F(1, 2)), "b": Ledger(F(9, 10)), "c": Ledger(), "d": Ledger(F(1, 2))}
-    included, excluded = apply_policy(ledgers, Cost(F(1, 2)), budget, "exclude")
-    assert included == ("a", "c", "d") and excluded == ("b",)
-    with pytest.raises(PolicyRefusal) as err:
-        apply_policy(ledgers, Cost(F(1, 2)), budget, "refuse")
-    assert "1 participant" in err.value.message
-    assert apply_policy(ledgers, Cost(F(1, 10)), budget, "refuse") == (("a", "b", "c", "d"), ())
+    assert fits(ledgers, Cost(F(1, 2)), budget) == {"a": True, "b": False, "c": True, "d": True}
+    assert all(fits(ledgers, Cost(F(1, 10)), budget).values())
     # per-participant costs (rating unit: n ratings cost n times)
     per = {"a": Cost(F(1, 10)), "b": Cost(F(2, 10)), "c": Cost(F(3, 10)), "d": Cost(F(6, 10))}
-    assert apply_policy(ledgers, per, budget, "exclude") == (("a", "c"), ("b", "d"))
-    with pytest.raises(UsageError):
-        apply_policy(ledgers, Cost(F(1, 2)), budget, "ignore")  # type: ignore[arg-type]
+    assert fits(ledgers, per, budget) == {"a": True, "b": False, "c": True, "d": False}
+    # whether the refused are excluded or the whole release refused is the purpose's rule,
+    # decided by vault.policy.decide (tests/policy: test_budget_exclude_and_refuse)
 
 
 def test_same_request_twice_spends_twice() -> None:
@@ -525,14 +517,26 @@ def test_same_request_twice_spends_twice() -> None:
     budget = Budget(F(1))
     for _ in range(2):
         _, g = release_matrix(values, low=0, high=4, grid_k=1, epsilon=F(2, 5), source=seeded(60))
-        included, _ = apply_policy(ledgers, g.cost, budget, "refuse")
-        ledgers.update(charge(ledgers, included, g.cost))
+        assert all(fits(ledgers, g.cost, budget).values())
+        ledgers = {pid: led.spend(g.cost) for pid, led in ledgers.items()}
     assert all(lg.epsilon == F(4, 5) and lg.releases == 2 for lg in ledgers.values())
-    with pytest.raises(PolicyRefusal):
-        apply_policy(ledgers, g.cost, budget, "refuse")  # a third would exceed 1
+    assert not any(fits(ledgers, g.cost, budget).values())  # a third would exceed 1
     # rating unit: a participant's cost is n ratings times the per-rating epsilon
     _, gr = release_matrix(values, low=0, high=4, grid_k=1, unit=R, epsilon=F(1, 10), source=seeded(61))
     assert gr.cost_for(2) == Cost(F(1, 5)) and g.cost_for(2) == g.cost
+
+
+def test_equal_amounts_are_equal_keys() -> None:
+    # the ledger memoises by value: equal costs, budgets and ledgers must be one key, and
+    # different ones never
+    assert Cost(0.1) == Cost(F(1, 10)) and hash(Cost(0.1)) == hash(Cost(F(1, 10)))
+    assert Ledger(F(1, 2), 0, 1) == Ledger(0.5, F(0), 1) and hash(Ledger(0.5, 0, 1)) == hash(
+        Ledger(F(1, 2), 0, 1))
+    assert Budget(3, F(1, 10**6)) == Budget(F(3), 1e-6)
+    memo = {(Ledger(F(1, 2)), Cost(F(1, 2)), Budget(1)): True}
+    assert memo[(Ledger(0.5), Cost(0.5), Budget(1.0))] is True
+    assert (Ledger(F(1, 2), releases=1), Cost(F(1, 2)), Budget(1)) not in memo
+    assert (Ledger(F(1, 2)), Cost(rho=F(1, 2)), Budget(1)) not in memo
 
 
 @given(rho=fractions, delta_exp=st.integers(2, 12), eps=st.integers(0, 20))
@@ -570,7 +574,6 @@ def test_bad_inputs_are_refused_without_values_in_messages() -> None:
         lambda: Cost(-1),
         lambda: Budget(0),
         lambda: zcdp_epsilon(1, 0),
-        lambda: spend_pure(1, 0),
         lambda: exact(Decimal("sNaN")),
         lambda: exact(True),
         lambda: release_aggregate(good, low=0, high=4, grid_k=2**40, max_items_per_participant=2,

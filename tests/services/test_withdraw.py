@@ -112,7 +112,7 @@ def _build_lab(path: Path) -> dict[str, Any]:
         internal = _export(v, "primary-analysis", ["eeg-raw"], [t, *others])
         shared = _export(v, "external-sharing", ["scores-derived"], [t, *others, no_rec],
                          export=True, epsilon=0.5, recipient=RECIPIENT,
-                         budget_remaining=dict.fromkeys([t, *others, no_rec], 1.0))
+                         affordable=dict.fromkeys([t, *others, no_rec], True))
         without_t = _export(v, "primary-analysis", ["eeg-raw"], others)
     return {"t": t, "others": others, "no_rec": no_rec, "expired": expired,
             "manifests": {"internal": internal, "shared": shared, "without_t": without_t}}
@@ -660,7 +660,7 @@ def test_export_check_of_a_narrower_purpose_uses_the_consent_for_its_parent(lab)
     v, facts = lab
     members = [facts["t"], *facts["others"]]
     doc = _export(v, "recommender-training/canteen-menu", ["scores-derived"], members, export=True,
-                  epsilon=0.5, budget_remaining=dict.fromkeys(members, 3.0))
+                  epsilon=0.5, affordable=dict.fromkeys(members, True))
     assert not at(v, NOW).check_export(doc)["must_replace"]  # a fresh export still stands
 
 

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from vault import crypto
+from vault.crypto import sealing
 from vault.errors import IntegrityError, PolicyRefusal, StorageFull
 from vault.policy.engine import Admission
 from vault.storage.files import fsync_path
@@ -75,7 +76,7 @@ class BlobStore:
     def write(self, key: bytes, pid: str, blob_id: str, kind: str,
               chunks: Iterable[bytes]) -> BlobInfo:
         """Encrypt `chunks` into a new blob file; durable and in place when it returns."""
-        enc = crypto.ChunkedEncryptor(key, blob_context(self.vault_id, pid, blob_id))
+        enc = sealing.ChunkedEncryptor(key, blob_context(self.vault_id, pid, blob_id))
         tmp = self.tmp_dir / (crypto.random_id(8) + ".part")
         final = self.path(blob_id)
         stored = 0
@@ -173,11 +174,11 @@ class BlobStore:
                 parts = []
                 while block := os.read(fd, size + 1):  # to the end, even if the file grew
                     parts.append(block)
-                yield crypto.chunked_decrypt(key, context, b"".join(parts))
+                yield sealing.chunked_decrypt(key, context, b"".join(parts))
                 return
             with os.fdopen(fd, "rb", buffering=0) as fh:  # unbuffered: large readinto()s
                 fd = -1  # closed by the file object from here on
-                yield from crypto.ChunkedDecryptor(key, context, fh)
+                yield from sealing.ChunkedDecryptor(key, context, fh)
         finally:
             if fd >= 0:
                 os.close(fd)

@@ -19,6 +19,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 from vault import crypto
+from vault.crypto import sealing
 from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFound
 from vault.storage import db as storage
 
@@ -95,7 +96,7 @@ class KeyRing:
         try:
             conn.execute(
                 f"{verb} INTO keyslots (member, role, kdf, wrapped_master, created_at) "
-                "VALUES (?, ?, ?, ?, ?)", (member, role, doc, crypto.wrap_key(kek, secret), now))
+                "VALUES (?, ?, ?, ?, ?)", (member, role, doc, sealing.wrap_key(kek, secret), now))
         except sqlite3.IntegrityError as exc:
             raise Conflict(f"member '{member}' exists already") from exc
 
@@ -118,7 +119,7 @@ class KeyRing:
         doc, wrapped, role, created = json.loads(row[0]), row[1], str(row[2]), str(row[3])
         if "format" not in doc:  # legacy slot: the bare passphrase key wraps the master key
             params = crypto.KdfParams.from_dict(doc)
-            master = crypto.unwrap_master(crypto.passphrase_key(passphrase, params), wrapped)
+            master = sealing.unwrap_master(crypto.passphrase_key(passphrase, params), wrapped)
             ring = cls(vault_id, master)
             ring.load_secret(bytes.fromhex(storage.get_meta(conn, "wrapped_vault_secret")))
             with storage.transaction(conn):
@@ -130,7 +131,7 @@ class KeyRing:
             raise IntegrityError(f"the key slot of member '{member}' has an unknown format")
         params = crypto.KdfParams.from_dict(doc["kdf"])
         kek = cls._slot_kek(passphrase, params, vault_id, member, role, doc["kind"])
-        inner = crypto.unwrap_master(kek, wrapped)
+        inner = sealing.unwrap_master(kek, wrapped)
         if doc["kind"] == SLOT_MEMBER:
             return Unlocked(None, role, inner)
         if not reads_data(role):
@@ -150,7 +151,7 @@ class KeyRing:
         key = crypto.new_key()
         return NewParticipantKey(
             key=key,
-            wrapped=crypto.wrap_key(self._participant_kek(pid), key),
+            wrapped=sealing.wrap_key(self._participant_kek(pid), key),
             commitment=crypto.key_commitment(key, self.vault_id.encode(), pid.encode()),
         )
 
@@ -180,7 +181,7 @@ class KeyRing:
         if wrapped is None:
             raise NotFound(f"participant '{pid}' was erased; their data cannot be read")
         try:
-            return crypto.unwrap_key(self._participant_kek(pid), wrapped)
+            return sealing.unwrap_key(self._participant_kek(pid), wrapped)
         except IntegrityError as exc:
             raise IntegrityError(
                 f"the data key of participant '{pid}' failed its integrity check"
@@ -195,11 +196,11 @@ class KeyRing:
         if row is None or row[0] is None:
             return None
         kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
-        return int.from_bytes(crypto.unwrap_key_padded(kek, row[0]), "big", signed=True)
+        return int.from_bytes(sealing.unwrap_key_padded(kek, row[0]), "big", signed=True)
 
     def store_date_offset(self, conn: sqlite3.Connection, pid: str, days: int) -> None:
         kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
-        wrapped = crypto.wrap_key_padded(kek, days.to_bytes(8, "big", signed=True))
+        wrapped = sealing.wrap_key_padded(kek, days.to_bytes(8, "big", signed=True))
         conn.execute("UPDATE participants SET date_offset = ? WHERE pid = ? AND date_offset IS NULL",
                      (wrapped, pid))
 
@@ -227,10 +228,10 @@ class KeyRing:
         return crypto.derive_key(self._master, "vault-secret-wrap", self.vault_id.encode())
 
     def wrap_secret(self, secret: bytes) -> bytes:
-        return crypto.wrap_key(self._secret_kek(), secret)
+        return sealing.wrap_key(self._secret_kek(), secret)
 
     def load_secret(self, wrapped: bytes) -> None:
-        self._secret = crypto.unwrap_key(self._secret_kek(), wrapped)
+        self._secret = sealing.unwrap_key(self._secret_kek(), wrapped)
 
     def policy_pin(self, version: str) -> str:
         """Keyed tag of the pinned policy version: a policy swapped into the database by anyone
@@ -269,10 +270,10 @@ class KeyRing:
             "SELECT pid, wrapped_key FROM participants WHERE wrapped_key IS NOT NULL"
         ).fetchall()
         for pid, wrapped in rows:
-            key = crypto.unwrap_key(self._participant_kek(pid), wrapped)
+            key = sealing.unwrap_key(self._participant_kek(pid), wrapped)
             conn.execute(
                 "UPDATE participants SET wrapped_key = ? WHERE pid = ?",
-                (crypto.wrap_key(fresh._participant_kek(pid), key), pid),
+                (sealing.wrap_key(fresh._participant_kek(pid), key), pid),
             )
         conn.execute("DELETE FROM keyslots WHERE kdf NOT LIKE ?", (f'%"kind": "{SLOT_MEMBER}"%',))
         conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))

@@ -1,8 +1,8 @@
 """The decision function: may this request touch these participants' data?
 
 Pure: a policy set, a request, the current consent version of each participant,
-the time and (for releases that spend privacy budget) each participant's remaining
-budget go in; a `CohortDecision` comes out. Nothing is read or written.
+the time and (for releases that spend privacy budget) the exact accountant's verdict
+on each participant's budget go in; a `CohortDecision` comes out. Nothing is read or written.
 
 Deny by default. Request-wide rules are checked first (role, purpose, categories,
 special-category basis, export limits); if any fails, no consent is even looked
@@ -12,26 +12,28 @@ a status that permits processing (`given`/`renewed`), not expired at `now`;
 every requested category granted, and for derived data also what it is derived
 from (derived data inherits its recording's consent scope); explicit consent
 where the purpose relies on GDPR Art. 9(2)(a) for special-category data or data
-derived from it; enough budget. A cohort request is then refused as a whole when
+derived from it; enough budget (the caller's exact accountant decides that; see
+`vault.services.budget.affordable`). A cohort request is then refused as a whole when
 fewer than the purpose's minimum cohort remain.
 
 Speed: the request-wide work is done once; each participant costs a few dict
-lookups and one subset test (see `bench_decide`).
+lookups and one subset test (measured by `mindward bench`, target `decisions_per_s`).
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import time
+import math
 from array import array
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from enum import StrEnum
+from fractions import Fraction
 from types import MappingProxyType
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, StringConstraints, ValidationError
 
 from vault import crypto
 from vault.errors import UsageError
@@ -103,10 +105,25 @@ _STATUS_REASON: Mapping[ConsentStatus, Reason] = {
 Text = Annotated[str, StringConstraints(min_length=1, max_length=200)]
 
 
+def exact_amount(value: Any) -> Any:
+    """Floats by their shortest decimal form (0.1 is exactly 1/10), as the privacy accountant
+    and the policy's budgets read them; Fractions, ints and "a/b" strings exactly."""
+    if isinstance(value, bool):
+        raise ValueError("must be a number")
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise ValueError("must be finite")
+        return Fraction(str(value))
+    return value
+
+
+Epsilon = Annotated[Fraction, BeforeValidator(exact_amount), Field(gt=0)]
+
+
 class Request(BaseModel):
     """What someone asks for. `cohort` requests (exports, aggregates) enforce the
     purpose's minimum cohort; `export` requests enforce its noise and recipient rules;
-    `epsilon` is the budget the release would spend per participant."""
+    `epsilon` is the budget the release would spend per participant, exact (a Fraction)."""
 
     model_config = ConfigDict(frozen=True, extra="forbid")
 
@@ -117,7 +134,7 @@ class Request(BaseModel):
     participants: tuple[str, ...] | None = None  # None: every participant given to decide()
     cohort: bool = True
     export: bool = False
-    epsilon: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = None
+    epsilon: Epsilon | None = None
     privacy_unit: Literal["participant", "rating"] = "participant"
     recipient: Text | None = None
 
@@ -132,10 +149,18 @@ class Request(BaseModel):
 
 @dataclass(frozen=True, slots=True)
 class Decision:
-    """Per participant: permitted, or the reasons for refusal."""
+    """Per participant: permitted, or the reasons for refusal. Equal and hashed by value; the
+    hash is computed once (decisions are counted by value for every participant)."""
 
     permit: bool
     reasons: tuple[Reason, ...]
+    _hash: int = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_hash", hash((self.permit, self.reasons)))
+
+    def __hash__(self) -> int:
+        return self._hash
 
     def explain(self) -> str:
         if self.permit:
@@ -214,7 +239,7 @@ def request_reasons(policy: PolicySet, request: Request) -> tuple[Reason, ...]:
     if request.export and purpose.dp_required and request.epsilon is None:
         reasons.append(Reason.DP_NOISE_REQUIRED)
     if (request.epsilon is not None and purpose.epsilon_per_release is not None
-            and request.epsilon > purpose.epsilon_per_release):
+            and request.epsilon > exact_amount(purpose.epsilon_per_release)):
         reasons.append(Reason.RELEASE_EPSILON_EXCEEDS_CAP)
     if request.privacy_unit == "rating" and not purpose.per_rating_unit_allowed:
         reasons.append(Reason.PRIVACY_UNIT_NOT_ALLOWED)
@@ -241,14 +266,15 @@ _MISSING: Any = object()
 
 def decide(policy: PolicySet, request: Request,
            consents: Mapping[str, ConsentVersion | None], *, now: dt.datetime,
-           budget_remaining: Mapping[str, float] | None = None) -> CohortDecision:
+           affordable: Mapping[str, bool] | None = None) -> CohortDecision:
     """Decide `request` for every participant it names (or every key of `consents`).
 
     `consents` maps participant id -> current consent version (None: enrolled but
     no consent on record). A participant the request names but `consents` lacks is
-    'unknown-participant'. When the request spends `epsilon`, `budget_remaining`
-    must give each participant's remaining budget for the purpose; a participant
-    it omits counts as having none left.
+    'unknown-participant'. When the request spends `epsilon`, `affordable` must give
+    the exact accountant's verdict per participant: True when the release fits every
+    privacy budget of the purpose's chain (`vault.services.budget.affordable`); a
+    participant it omits cannot afford it.
     """
     _aware(now)
     named = request.participants
@@ -263,19 +289,16 @@ def decide(policy: PolicySet, request: Request,
                               decisions=MappingProxyType(dict.fromkeys(pids, refused)),
                               eligible=(), counts=MappingProxyType(counts), **base)
     epsilon = request.epsilon
-    if epsilon is not None and budget_remaining is None:
-        raise UsageError("a release that spends epsilon needs the participants' remaining budget")
+    if epsilon is not None and affordable is None:
+        raise UsageError("a release that spends epsilon needs the accountant's verdict per participant")
     purpose = policy.purposes[request.purpose]
     decisions, eligible, numbers, budget_only = _decide_each(policy, request, consents, pids,
-                                                             now, budget_remaining)
+                                                             now, affordable)
     base["consent_digest"] = consent_digest(pids, numbers)
     counts: dict[str, int] = {}
-    tally = Counter(map(id, decisions.values()))
-    for d in list(_INTERNED.values()):
-        n = tally.get(id(d))
-        if n:
-            for r in d.reasons:
-                counts[r.value] = counts.get(r.value, 0) + n
+    for d, n in Counter(decisions.values()).items():
+        for r in d.reasons:
+            counts[r.value] = counts.get(r.value, 0) + n
     reasons: list[Reason] = []
     if budget_only and purpose.on_budget_exceeded == "refuse":
         reasons.append(Reason.BUDGET_EXHAUSTED)
@@ -288,15 +311,15 @@ def decide(policy: PolicySet, request: Request,
 
 def _decide_each(policy: PolicySet, request: Request,
                  consents: Mapping[str, ConsentVersion | None], pids: tuple[str, ...],
-                 now: dt.datetime, budget_remaining: Mapping[str, float] | None,
+                 now: dt.datetime, affordable: Mapping[str, bool] | None,
                  ) -> tuple[dict[str, Decision], list[str], list[int], int]:
     purpose = policy.purposes[request.purpose]
     chain = policy.chain(request.purpose)
     wanted = policy.consent_scope(request.categories)  # derived data needs its source too
     need_explicit = (purpose.special_category_basis == ART9_EXPLICIT_CONSENT
                      and not wanted.isdisjoint(policy.special_categories()))
-    epsilon = request.epsilon
-    budget = budget_remaining if budget_remaining is not None else {}
+    fits = (affordable if affordable is not None else {}).get
+    spends = request.epsilon is not None
     unknown = _refusal((Reason.UNKNOWN_PARTICIPANT,))
     no_consent = _refusal((Reason.NO_CONSENT_FOR_PURPOSE,))
     expired = _refusal((Reason.CONSENT_EXPIRED,))
@@ -334,7 +357,7 @@ def _decide_each(policy: PolicySet, request: Request,
             decisions[pid] = expired
             continue
         if (wanted <= entry.categories and (not need_explicit or entry.explicit)
-                and (epsilon is None or budget.get(pid, 0.0) >= epsilon)):
+                and (not spends or fits(pid, False))):
             decisions[pid] = PERMIT
             eligible.append(pid)
             continue
@@ -343,76 +366,10 @@ def _decide_each(policy: PolicySet, request: Request,
             reasons += (cat,)
         if need_explicit and not entry.explicit:
             reasons += (special,)
-        if epsilon is not None and not budget.get(pid, 0.0) >= epsilon:
+        if spends and not fits(pid, False):
             reasons += (spent,)
         d = _refusal(reasons)
         decisions[pid] = d
         if d is only_budget:
             budget_only += 1
     return decisions, eligible, numbers, budget_only
-
-
-# --------------------------------------------------------------------------- benchmark
-
-
-def synthetic_cohort(n: int) -> tuple[PolicySet, Request, dict[str, ConsentVersion | None],
-                                      dict[str, float], dt.datetime]:
-    """`n` synthetic participants over four shared consent variants (benchmarks only)."""
-    from vault.policy.consent import ConsentTerms, record_consent
-    from vault.policy.policyset import load_default_policy
-
-    policy = load_default_policy()
-    at = dt.datetime(2026, 6, 15, 12, tzinfo=dt.UTC)
-    variants = []
-    for grant_rec in (True, False):
-        for expires in (dt.date(2031, 3, 1), dt.date(2026, 6, 1)):
-            answers = {
-                "primary-analysis": {"granted": ["eeg-raw", "scores-derived", "ratings-explicit",
-                                                 "demographics"], "explicit": True},
-                "recommender-training": {"granted": ["eeg-raw", "scores-derived",
-                                                     "ratings-explicit"] if grant_rec else []},
-            }
-            terms = ConsentTerms.model_validate({
-                "form_version": policy.meta.form_versions[0], "signed": dt.date(2026, 3, 2),
-                "expires": expires, "purposes": answers})
-            variants.append(record_consent(terms, policy, participant_id=crypto.random_id(16),
-                                           recorded_at=at))
-    pids = [f"{i:032x}" for i in range(n)]
-    consents: dict[str, ConsentVersion | None] = {
-        pid: (None if i % 50 == 0 else variants[i % len(variants)]) for i, pid in enumerate(pids)}
-    request = Request(actor="bench", role="analyst", purpose="recommender-training/canteen-menu",
-                      categories=frozenset({"scores-derived", "ratings-explicit"}), export=True,
-                      epsilon=0.25)
-    return policy, request, consents, dict.fromkeys(pids, 1.0), at
-
-
-def bench_decide(n: int = 100_000, *, repeat: int = 3) -> dict[str, float]:
-    """Time `decide` for a cohort of `n` synthetic participants against a baseline.
-
-    The baseline is a bare loop doing one dict lookup and one dict store per
-    participant (the least any decision needs), measured in the same run.
-    Returns seconds (best of `repeat`), decisions per second and the ratio.
-    """
-    policy, request, consents, budget, at = synthetic_cohort(n)
-    pids = list(consents)
-    best, base = float("inf"), float("inf")
-    result = None
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        result = decide(policy, request, consents, now=at, budget_remaining=budget)
-        best = min(best, time.perf_counter() - t0)
-        t0 = time.perf_counter()
-        out = {}
-        for pid in pids:
-            out[pid] = consents.get(pid)
-        base = min(base, time.perf_counter() - t0)
-    assert result is not None
-    return {
-        "participants": float(n),
-        "seconds": best,
-        "decisions_per_second": n / best,
-        "baseline_seconds": base,
-        "ratio_to_baseline": best / base,
-        "eligible": float(len(result.eligible)),
-        "meets_target": float(n / best >= 100_000),
-    }

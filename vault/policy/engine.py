@@ -140,18 +140,18 @@ class PolicyEngine:
         return found
 
     def decide(self, request: Request, *,
-               budget_remaining: Mapping[str, float] | None = None) -> CohortDecision:
+               affordable: Mapping[str, bool] | None = None) -> CohortDecision:
         """Decide without granting (what `access check` shows); audited."""
         decision = decide(self.policy, request, self._consents(request.participants),
-                          now=self._clock(), budget_remaining=budget_remaining)
+                          now=self._clock(), affordable=affordable)
         self._audit(decision_entries(decision, action="access.check"))
         return decision
 
     def authorize(self, request: Request, *,
-                  budget_remaining: Mapping[str, float] | None = None) -> Grant:
+                  affordable: Mapping[str, bool] | None = None) -> Grant:
         """A grant for the permitted participants, or PolicyRefusal with counted reasons."""
         decision = decide(self.policy, request, self._consents(request.participants),
-                          now=self._clock(), budget_remaining=budget_remaining)
+                          now=self._clock(), affordable=affordable)
         grant_id = "g-" + crypto.random_id(8)
         self._audit(decision_entries(decision, action="access.grant", grant_id=grant_id))
         if not decision.permit:
@@ -258,7 +258,7 @@ def decision_entries(decision: CohortDecision, *, action: str,
                     "policy_version": decision.policy_version,
                     "consent_digest": decision.consent_digest, "counts": dict(decision.counts),
                     **({"grant": grant_id} if grant_id else {}),
-                    **({"epsilon": request.epsilon} if request.epsilon is not None else {}),
+                    **({"epsilon": float(request.epsilon)} if request.epsilon is not None else {}),
                     **({"recipient": request.recipient} if request.recipient else {})},
     }
     by_outcome: dict[str, list[str]] = {}

@@ -3,9 +3,8 @@
 Pure: arrays in, noisy arrays and a stated `Guarantee` out; no I/O, no clock,
 no storage. Randomness comes from `vault.privacy.noise` (exact discrete Laplace and
 discrete Gaussian samplers on integer grids) through its byte `source`
-(default: `vault.crypto.random_bytes`, the operating system's CSPRNG or, for long
-requests, an AES-256-CTR keystream keyed from it). The caller persists the ledger and
-writes the manifest (`Guarantee.as_dict`).
+(default: `vault.crypto.random_bytes`, the operating system's CSPRNG). The caller persists
+the ledger and writes the manifest (`Guarantee.as_dict`).
 
 The matrix release (`release_matrix`), per privacy unit
 --------------------------------------------------------
@@ -49,7 +48,6 @@ from __future__ import annotations
 
 import math
 import numbers
-from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from decimal import Decimal, localcontext
 from enum import StrEnum
@@ -58,7 +56,7 @@ from typing import Literal
 
 import numpy as np
 
-from vault.errors import InvalidInput, PolicyRefusal, UsageError
+from vault.errors import InvalidInput, UsageError
 from vault.privacy import noise
 
 Exact = Fraction | int | float | str | Decimal | tuple[int, int]
@@ -160,6 +158,10 @@ def zcdp_epsilon(rho: Exact, delta: Exact) -> Fraction:
 
 # --------------------------------------------------------------------------- the guarantee
 
+# Frozen values: Cost, Budget and Ledger are equal and hashed by their fields. Their hash is
+# computed once, at construction, and kept (as str keeps its own): hashing two Fractions costs
+# microseconds, and the budget ledger keys its memo by these values for every participant.
+
 
 @dataclass(frozen=True)
 class Component:
@@ -189,6 +191,7 @@ class Cost:
 
     epsilon: Fraction = Fraction(0)
     rho: Fraction = Fraction(0)
+    _hash: int = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         for name in ("epsilon", "rho"):
@@ -196,6 +199,10 @@ class Cost:
             if value < 0:
                 raise UsageError(f"{name} must be non-negative")
             object.__setattr__(self, name, value)
+        object.__setattr__(self, "_hash", hash((self.epsilon, self.rho)))
+
+    def __hash__(self) -> int:
+        return self._hash  # computed once (see "frozen values" above)
 
     def __add__(self, other: Cost) -> Cost:
         return Cost(self.epsilon + other.epsilon, self.rho + other.rho)
@@ -439,12 +446,18 @@ class Budget:
     epsilon: Fraction
     delta: Fraction = Fraction(0)
 
+    _hash: int = field(init=False, repr=False, compare=False)
+
     def __post_init__(self) -> None:
         object.__setattr__(self, "epsilon", _positive(self.epsilon, "budget epsilon"))
         d = exact(self.delta, "delta")
         if not 0 <= d < 1:
             raise UsageError("delta must be in [0, 1)")
         object.__setattr__(self, "delta", d)
+        object.__setattr__(self, "_hash", hash((self.epsilon, self.delta)))
+
+    def __hash__(self) -> int:
+        return self._hash  # computed once (see "frozen values" above)
 
 
 @dataclass(frozen=True)
@@ -454,6 +467,7 @@ class Ledger:
     epsilon: Fraction = Fraction(0)
     rho: Fraction = Fraction(0)
     releases: int = 0
+    _hash: int = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         spent = Cost(self.epsilon, self.rho)  # validates: exact, non-negative
@@ -461,19 +475,13 @@ class Ledger:
         object.__setattr__(self, "rho", spent.rho)
         if self.releases < 0:
             raise UsageError("releases must be non-negative")
+        object.__setattr__(self, "_hash", hash((hash(spent), self.releases)))
+
+    def __hash__(self) -> int:
+        return self._hash  # computed once (see "frozen values" above)
 
     def spend(self, cost: Cost) -> Ledger:
         return Ledger(self.epsilon + cost.epsilon, self.rho + cost.rho, self.releases + 1)
-
-
-def spend_pure(remaining: Exact, epsilon: Exact) -> Fraction:
-    """Basic composition: the pure-DP budget left after spending `epsilon`; never below zero."""
-    left, cost = exact(remaining, "remaining"), _positive(epsilon, "epsilon")
-    if left < 0:
-        raise UsageError("remaining budget must be non-negative")
-    if cost > left:
-        raise PolicyRefusal("the release would exceed the remaining privacy budget")
-    return left - cost
 
 
 def spent_epsilon(ledger: Ledger, delta: Exact) -> Fraction:
@@ -495,45 +503,8 @@ def within(ledger: Ledger, budget: Budget) -> bool:
     return rest * rest >= 4 * ledger.rho * _ln_inverse_up(budget.delta)
 
 
-def would_exceed(ledger: Ledger, cost: Cost, budget: Budget) -> bool:
-    return not within(ledger.spend(cost), budget)
-
-
 def remaining_epsilon(ledger: Ledger, budget: Budget) -> Fraction:
     """Pure epsilon that may still be spent (a lower bound, 0 when spent)."""
     if ledger.rho and budget.delta == 0:
         return Fraction(0)
     return max(Fraction(0), budget.epsilon - spent_epsilon(ledger, budget.delta))
-
-
-def apply_policy(
-    ledger_by_pid: Mapping[str, Ledger],
-    cost: Cost | Mapping[str, Cost],
-    budget: Budget,
-    on_exceed: Literal["exclude", "refuse"],
-) -> tuple[tuple[str, ...], tuple[str, ...]]:
-    """(included, excluded) participant ids, in the mapping's order.
-
-    A participant whose ledger plus `cost` (one Cost for all, or one per id)
-    would exceed `budget` is excluded, or the whole release is refused with
-    PolicyRefusal when `on_exceed` is "refuse". Nothing is charged here: charge
-    the included ones with `charge` once the release is made.
-    """
-    if on_exceed not in ("exclude", "refuse"):
-        raise UsageError('on_exceed must be "exclude" or "refuse"')
-    included: list[str] = []
-    excluded: list[str] = []
-    for pid, ledger in ledger_by_pid.items():
-        their = cost[pid] if isinstance(cost, Mapping) else cost
-        (excluded if would_exceed(ledger, their, budget) else included).append(pid)
-    if excluded and on_exceed == "refuse":
-        raise PolicyRefusal(f"the release would exceed the privacy budget of {len(excluded)} "
-                            "participant(s); the purpose refuses the whole release")
-    return tuple(included), tuple(excluded)
-
-
-def charge(ledger_by_pid: Mapping[str, Ledger], pids: Sequence[str],
-           cost: Cost | Mapping[str, Cost]) -> dict[str, Ledger]:
-    """New ledgers of `pids` after one release (every request spends again)."""
-    return {pid: ledger_by_pid.get(pid, Ledger()).spend(cost[pid] if isinstance(cost, Mapping)
-                                                        else cost) for pid in pids}

@@ -24,7 +24,7 @@ Privacy statements these samplers support (the caller must do the accounting):
   Sundararajan 2009, restated by CKS 2020);
 - rho-zCDP: adding discrete Gaussian noise of variance parameter
   sigma^2 = Delta^2/(2 rho) to each coordinate of an integer-valued query of L2
-  sensitivity Delta (`gaussian_sigma2_for_rho`; CKS 2020, the discrete analogue
+  sensitivity Delta (`vault.privacy.accountant.noise_parameter`; CKS 2020, the discrete analogue
   of Bun and Steinke 2016).
 
 What it does NOT do, and what stays the caller's concern
@@ -501,19 +501,6 @@ def laplace_scale_for(epsilon: RationalLike, sensitivity: int) -> Fraction:
     return Fraction(delta) / eps
 
 
-def gaussian_sigma2_for_rho(rho: RationalLike, sensitivity: int) -> Fraction:
-    """Discrete Gaussian sigma^2 = Delta^2/(2 rho) for rho-zCDP.
-
-    For an integer-valued query (or vector) of L2 sensitivity `sensitivity`
-    under the caller's privacy unit (CKS 2020; Bun and Steinke 2016 for zCDP).
-    """
-    r = _rational(rho, "rho")
-    delta = _positive_int(sensitivity, "sensitivity")
-    if r <= 0:
-        raise UsageError("rho must be positive")
-    return Fraction(delta * delta) / (2 * r)
-
-
 # --------------------------------------------------------------------------- fixed-point data
 
 
@@ -522,9 +509,7 @@ class FixedPointGrid:
     """Real-valued scores in [low, high] on a grid of step 1/k, as integer units.
 
     Noise is added to integer units; `span_units` is the L1 sensitivity of one
-    quantised value moving anywhere in the range, and `sensitivity_units`
-    converts a sensitivity stated in score units for a query computed from
-    quantised values. Quantisation rounds in floating point (it is data
+    quantised value moving anywhere in the range. Quantisation rounds in floating point (it is data
     preparation, not a sampling decision) and then clips in integers, so the
     bound holds whatever the input. Both range ends must lie on the grid.
     """
@@ -558,16 +543,6 @@ class FixedPointGrid:
     @property
     def span_units(self) -> int:
         return self.high_units - self.low_units
-
-    def sensitivity_units(self, delta: RationalLike) -> int:
-        """Grid units a query on quantised values moves when it moves by <= delta score units."""
-        d = _rational(delta, "delta")
-        if d <= 0:
-            raise UsageError("delta must be positive")
-        units = math.floor(d * self.k)
-        if units < 1:
-            raise UsageError("delta is below one grid step; nothing can change")
-        return units
 
     def quantise(self, values: np.ndarray) -> np.ndarray:
         """Clip to [low, high] and round to the nearest grid point, as int64 units."""

@@ -19,7 +19,6 @@ manifest. Pure-DP spending never needs a delta.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterable, Mapping, Sequence
 from fractions import Fraction
 from typing import TYPE_CHECKING, Any
@@ -51,14 +50,13 @@ def budgets(policy: PolicySet, purpose: str) -> dict[str, Budget]:
 
 
 class _Memo:
-    """Participants mostly share a few ledger states: exact arithmetic once per state."""
+    """Participants mostly share a few ledger states: each stored state is parsed once and each
+    (ledger, cost, budget) judged once. Keys are values: the stored text, and the frozen
+    `Ledger`, `Cost` and `Budget` (equal by their fields, hashed once at construction)."""
 
     def __init__(self) -> None:
         self.parsed: dict[tuple[str, str, int], Ledger] = {}
-        # keyed by object identity (hashing Fractions per lookup is the slow part); each entry
-        # keeps its objects alive, so an id is never reused while the memo lives
-        self.fits: dict[tuple[int, int, int], tuple[bool, object]] = {}
-        self.left: dict[tuple[int, int], tuple[Fraction, object]] = {}
+        self.fits: dict[tuple[Ledger, Cost, Budget], bool] = {}
 
     def ledger(self, epsilon: str, rho: str, releases: int) -> Ledger:
         key = (epsilon, rho, int(releases))
@@ -68,18 +66,11 @@ class _Memo:
         return found
 
     def within(self, ledger: Ledger, cost: Cost, budget: Budget) -> bool:
-        key = (id(ledger), id(cost), id(budget))
+        key = (ledger, cost, budget)
         found = self.fits.get(key)
         if found is None:
-            found = self.fits[key] = (within(ledger.spend(cost), budget), (ledger, cost, budget))
-        return found[0]
-
-    def remaining(self, ledger: Ledger, budget: Budget) -> Fraction:
-        key = (id(ledger), id(budget))
-        found = self.left.get(key)
-        if found is None:
-            found = self.left[key] = (remaining_epsilon(ledger, budget), (ledger, budget))
-        return found[0]
+            found = self.fits[key] = within(ledger.spend(cost), budget)
+        return found
 
 
 def _ledgers(ctx: Context, purpose: str, pids: Sequence[str] | None = None,
@@ -112,46 +103,6 @@ def affordable(ctx: Context, purpose: str, costs: Mapping[str, Cost], memo: _Mem
                      for name, budget in plan.items()) for pid in costs}
 
 
-def _float_below(value: Fraction) -> float:
-    """The largest float <= value (for the decision engine's float comparison)."""
-    f = float(value)
-    return math.nextafter(f, -math.inf) if Fraction(f) > value else f
-
-
-_ZERO = Fraction(0)  # one object for the lifetime of the process (it keys a memo by identity)
-
-
-def remaining_for_decide(ctx: Context, purpose: str, costs: Mapping[str, Cost], request_epsilon: float,
-                         scale: Mapping[str, int] | None = None) -> dict[str, float]:
-    """What `decide(budget_remaining=...)` needs, agreeing with the exact check.
-
-    The decision engine compares a float per participant with the request's
-    float epsilon (per privacy unit). This returns, per participant, their
-    remaining pure epsilon (divided by `scale[pid]`, the number of units a
-    rating-unit release charges them for), rounded down, but nudged so that
-    the float comparison gives exactly the verdict of `affordable`: never
-    above what is left for someone who cannot afford the release, never below
-    `request_epsilon` for someone who can.
-    """
-    memo = _Memo()
-    plan = budgets(ctx.policy, purpose)
-    held = _chain_ledgers(ctx, purpose, list(costs), memo)
-    verdict = affordable(ctx, purpose, costs, memo, held)
-    below_request = math.nextafter(request_epsilon, -math.inf)
-    empty = Ledger()
-    floats: dict[tuple[int, int], float] = {}  # by identity: `left` objects live in the memo
-    out: dict[str, float] = {}
-    for pid in costs:
-        left = min((memo.remaining(held[name].get(pid, empty), b) for name, b in plan.items()),
-                   default=_ZERO)
-        units = (scale or {}).get(pid, 1) or 1
-        value = floats.get((id(left), units))
-        if value is None:
-            value = floats[(id(left), units)] = _float_below(left / units)
-        out[pid] = max(value, request_epsilon) if verdict[pid] else min(value, below_request)
-    return out
-
-
 def charge(ctx: Context, purpose: str, costs: Mapping[str, Cost], *, export_id: str) -> None:
     """Spend `costs` from every budgeted purpose of the chain, in one transaction (audited).
 
@@ -182,7 +133,7 @@ def charge_in_transaction(ctx: Context, purpose: str, costs: Mapping[str, Cost],
     pids = list(costs)
     updates: list[tuple[str, str, str, str, int]] = []
     memo = _Memo()
-    after: dict[tuple[int, int], tuple[tuple[str, str, int], object]] = {}
+    after: dict[tuple[Ledger, Cost], tuple[str, str, int]] = {}
     empty = Ledger()
     for name, budget in plan.items():
         held = _ledgers(ctx, name, pids, memo)
@@ -191,12 +142,11 @@ def charge_in_transaction(ctx: Context, purpose: str, costs: Mapping[str, Cost],
             if not memo.within(old, cost, budget):
                 raise PolicyRefusal("the release would exceed a participant's privacy budget; "
                                     "nothing was charged")
-            known = after.get((id(old), id(cost)))
+            known = after.get((old, cost))
             if known is None:
                 spent = old.spend(cost)
-                known = after[(id(old), id(cost))] = (
-                    (str(spent.epsilon), str(spent.rho), spent.releases), (old, cost))
-            updates.append((pid, name, *known[0]))
+                known = after[(old, cost)] = (str(spent.epsilon), str(spent.rho), spent.releases)
+            updates.append((pid, name, *known))
     ctx.conn.executemany(
         "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
         "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
@@ -276,9 +226,9 @@ def budget_report(ctx: Context, purpose: str | None = None, *,
             "purpose": name, "budget_epsilon": str(budget.epsilon), "delta": str(budget.delta),
             "participants": len(living), "participants_charged": len(held),
             "releases_max": max((led.releases for led in held.values()), default=0),
-            "spent_min": _s(min(spent.values(), default=_ZERO) if len(held) == len(living)
+            "spent_min": _s(min(spent.values(), default=Fraction(0)) if len(held) == len(living)
                             else Fraction(0)),
-            "spent_max": _s(max(spent.values(), default=_ZERO)),
+            "spent_max": _s(max(spent.values(), default=Fraction(0))),
             "spent_total": _s(sum(spent.values(), Fraction(0))),
             "remaining_min": _s(min(left.values(), default=budget.epsilon)),
             "participants_exhausted": sum(1 for x in left.values() if x == 0),

@@ -71,13 +71,13 @@ class Context:
     # -- grants and reads ---------------------------------------------------------------------
 
     def authorize_release(self, purpose: str, categories: Iterable[str], *,
-                          budget_remaining: Mapping[str, float] | None = None,
+                          affordable: Mapping[str, bool] | None = None,
                           **options: Any) -> Grant:
-        """Export grants (cohort, noise, recipient rules); the export modules compute
-        `budget_remaining` from the vault's own ledger."""
+        """Export grants (cohort, noise, recipient rules); the export modules take
+        `affordable` from the vault's own exact ledger (`budget.affordable`)."""
         request = Request(actor=self.member, role=self.role, purpose=purpose,
                           categories=frozenset(categories), **options)
-        return self.engine.authorize(request, budget_remaining=budget_remaining)
+        return self.engine.authorize(request, affordable=affordable)
 
     def grant_participants(self, grant: Grant) -> frozenset[str]:
         """The vault ids a grant covers (holders other than stewards see pseudonyms)."""

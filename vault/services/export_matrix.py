@@ -29,7 +29,6 @@ with neither the release is refused.
 from __future__ import annotations
 
 import datetime as dt
-import math
 import os
 import re
 from collections.abc import Mapping, Sequence
@@ -177,11 +176,6 @@ def _scale_of(ctx: Context, category: str, grid_k: int | None) -> tuple[Fraction
     k = grid_k or (1 if spec.value_type == "integer" else DEFAULT_REAL_GRID)
     low, high = (Fraction(str(x)) for x in spec.value_range)
     return low, high, k
-
-
-def _float_above(value: Fraction) -> float:
-    f = float(value)
-    return math.nextafter(f, math.inf) if Fraction(f) < value else f
 
 
 def _audit_refusal(ctx: Context, purpose: str, reason: str, now: dt.datetime) -> None:
@@ -425,14 +419,11 @@ def export_matrix(
     per_rating = privacy_unit is PrivacyUnit.RATING
     scaled = {n: unit_cost.times(n) for n in set(n_rows.values())} if per_rating else {}
     bound = {pid: scaled[n_rows[pid]] if per_rating else unit_cost for pid in batches}
-    request_eps = _float_above(stated) if mech == LAPLACE else _float_above(
-        zcdp_epsilon(stated, budget.ZCDP_DELTA))
-    remaining = (budget.remaining_for_decide(ctx, purpose, bound, request_eps,
-                                             scale=n_rows if per_rating else None)
-                 if purpose in ctx.policy.purposes else {})
+    request_eps = stated if mech == LAPLACE else zcdp_epsilon(stated, budget.ZCDP_DELTA)
+    verdict = budget.affordable(ctx, purpose, bound) if purpose in ctx.policy.purposes else {}
     grant = ctx.authorize_release(purpose, [category], export=True, epsilon=request_eps,
                         privacy_unit=privacy_unit.value, recipient=recipient,
-                        participants=tuple(batches), budget_remaining=remaining)
+                        participants=tuple(batches), affordable=verdict)
     refused = dict(sorted(grant.counts.items()))
     low, high, k = _scale_of(ctx, category, grid_k)
 
