@@ -302,12 +302,12 @@ def test_budget_refund_credits_back_exactly(tmp_path: Path, policy_dir: Path) ->
     with v:
         budget.charge(ctx_at(v, NOW), MENU, {p: Cost(epsilon=Fraction(1, 10)) for p in pids}, export_id="x-a")
         with storage.transaction(v._conn):
-            purposes = budget._charge_in_transaction(
-                v, MENU, {p: Cost(epsilon=Fraction(1, 5)) for p in pids}, export_id="x-b",
+            purposes = budget.charge_in_transaction(
+                v._context(), MENU, {p: Cost(epsilon=Fraction(1, 5)) for p in pids}, export_id="x-b",
                 at="2026-06-15T12:00:00Z")
         assert purposes == [MENU, REC] and spent(v, REC) == dict.fromkeys(pids, ("3/10", "0", 2))
         with storage.transaction(v._conn):
-            budget._refund_in_transaction(v, MENU, purposes,
+            budget.refund_in_transaction(v._context(), MENU, purposes,
                                          {p: Cost(epsilon=Fraction(1, 5)) for p in pids},
                                          export_id="x-b", at="2026-06-15T12:00:00Z")
         for purpose in (MENU, REC):

@@ -681,7 +681,7 @@ def test_sweep_erases_ended_consent_with_receipts_and_is_idempotent(lab) -> None
     assert doc["body"]["trigger"] == "consent-expired" and doc["body"]["consent"]["change"].startswith("none")
     assert receipt.verify_receipt(doc, v.public_key) == (True, [])
     assert withdraw.sweep(ctx_at(v, NOW))["erased"] == []
-    later = withdraw.sweep(at(v, dt.datetime(2031, 3, 5, tzinfo=dt.UTC)), dry_run=True)
+    later = withdraw.sweep(ctx_at(v, dt.datetime(2031, 3, 5, tzinfo=dt.UTC)), dry_run=True)
     assert len(later["would_erase"]) == 22  # everyone else's retention ended on 2031-03-02 / 04
     assert {w["trigger"] for w in later["would_erase"]} == {"retention-ended", "consent-expired"}
     erases = [e for e in v.audit_entries() if e["action"] == "withdraw.erase"]
