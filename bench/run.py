@@ -10,6 +10,7 @@ throw-away vault in the system's temporary directory and deletes it.
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import os
 import shutil
@@ -26,6 +27,12 @@ from vault import crypto
 from vault.api import Vault
 from vault.audit import log as audit
 from vault.storage import db as storage
+
+# the [bench] extra: checked here, so that `mindward bench` without it says how to install it
+# (the CLI maps this ImportError) instead of failing halfway through a run
+for _name in ("edfio", "pandas", "opendp"):
+    if importlib.util.find_spec(_name) is None:
+        raise ModuleNotFoundError(f"mindward bench needs {_name} (the [bench] extra)", name=_name)
 
 MIB = 1 << 20
 _PASSPHRASE = "benchmark passphrase, not a secret"  # noqa: S105 (throw-away vault)

@@ -708,6 +708,12 @@ class Vault:
         show = self.role == "steward" if show_participants is None else show_participants
         return budget_report(self, purpose, show_participants=show)
 
+    def export_participants(self, export_id: str) -> list[str]:
+        """The participant ids an export contained (its lineage); stewards only (others:
+        PolicyRefusal, audited)."""
+        self._require_steward("export.members")
+        return registry.export_members(self._conn, export_id)
+
     def check_export(self, document: dict[str, Any]) -> dict[str, Any]:
         """Whether an export someone holds now contains withdrawn or expired participants."""
         from vault.services.exports import check_export

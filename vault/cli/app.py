@@ -19,6 +19,7 @@ import typer
 
 import vault  # light: its names load on first use (vault/__init__.py)
 from vault.cli import render
+from vault.cli.hints import cli_message
 from vault.errors import EXIT_CODES, AuthenticationFailed, VaultError
 
 app = typer.Typer(
@@ -567,7 +568,7 @@ def withdraw_process(
         try:
             vault.write_output(receipt, _receipt_bytes(result["receipt"]), "--receipt")
         except vault.VaultError as exc:
-            raise type(exc)(f"{exc.message}; the withdrawal WAS processed: get its receipt with "
+            raise type(exc)(f"{cli_message(exc)}; the withdrawal WAS processed: get its receipt with "
                             f"'mindward withdraw receipt {result['request_id']} --out FILE'"
                             ) from exc
     _emit(as_json, result, lambda: _withdrawal_text(result, receipt))
@@ -698,8 +699,7 @@ def demo(
 
 
 BENCH_GROUP = "mindward.commands"  # entry points other distributions add commands through
-BENCH_MISSING = ("the benchmarks are not installed: install them with "
-                 "pip install 'mindward[bench]' (from a source checkout: pip install -e '.[bench]')")
+BENCH_INSTALL = "pip install 'mindward[bench]' (from a source checkout: pip install -e '.[bench]')"
 
 
 @app.command()
@@ -721,11 +721,12 @@ def _bench_command() -> Callable[..., tuple[dict[str, Any], str]]:
 
     found = [ep for ep in entry_points(group=BENCH_GROUP) if ep.name == "bench"]
     if not found:
-        raise vault.UsageError(BENCH_MISSING)
+        raise vault.UsageError(f"the benchmarks are not installed: {BENCH_INSTALL}")
     try:
         return found[0].load()
     except ImportError as exc:
-        raise vault.UsageError(f"{BENCH_MISSING} ({exc.name or 'a module'} is missing)") from exc
+        raise vault.UsageError(f"the benchmarks need the [bench] extra ({exc.name or 'a module'} is "
+                               f"missing): {BENCH_INSTALL}") from exc
 
 
 def _print_version(as_json: bool) -> int:
@@ -770,7 +771,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         result = app(args=args, prog_name="mindward", standalone_mode=False)
     except VaultError as exc:
-        return _error(exc.message, exc.exit_code, "--json" in args)
+        return _error(cli_message(exc), exc.exit_code, "--json" in args)
     except typer.Exit as exc:
         return int(exc.exit_code)
     except typer.Abort:

@@ -117,3 +117,11 @@ def remove_member(conn: sqlite3.Connection, member: str) -> None:
     if roles[member] == "steward" and sum(r == "steward" for r in roles.values()) == 1:
         raise Conflict("refusing to remove the last steward")
     conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+
+
+def export_members(conn: sqlite3.Connection, export_id: str) -> list[str]:
+    """The participant ids an export in the lineage contains (NotFound for an unknown export)."""
+    if conn.execute("SELECT 1 FROM exports WHERE export_id = ?", (export_id,)).fetchone() is None:
+        raise NotFound(f"no export '{export_id}' in this vault's lineage")
+    return sorted(r[0] for r in conn.execute(
+        "SELECT pid FROM export_members WHERE export_id = ?", (export_id,)))
