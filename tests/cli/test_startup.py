@@ -62,6 +62,11 @@ def test_version_through_the_parser_gives_the_same_answer(capsys) -> None:
     assert capsys.readouterr().out.strip() == f"mindward {importlib.metadata.version('mindward')}"
 
 
+def test_json_before_the_command_is_refused_not_ignored(capsys) -> None:
+    assert main(["--json", "info", "--vault", "/nonexistent"]) == 2
+    assert json.loads(capsys.readouterr().out)["exit_code"] == 2
+
+
 def test_bench_says_how_to_install_it_when_the_entry_point_is_missing(capsys, monkeypatch) -> None:
     monkeypatch.setattr("importlib.metadata.entry_points", lambda group: [])
     assert main(["bench", "--quick", "--json"]) == 2

@@ -750,6 +750,8 @@ def _root(
 ) -> None:
     if show_version:
         raise typer.Exit(_print_version(as_json))
+    if as_json:  # `mindward --json info` would otherwise print text to a script expecting JSON
+        raise vault.UsageError("--json goes after the command (mindward COMMAND ... --json)")
     if ctx.invoked_subcommand is None:
         typer.echo(ctx.get_help())
         raise typer.Exit(0)
