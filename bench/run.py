@@ -10,6 +10,7 @@ throw-away vault in the system's temporary directory and deletes it.
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import os
 import shutil
@@ -28,6 +29,12 @@ from vault.audit import log as audit
 from vault.crypto import hazmat
 from vault.storage import db as storage
 
+# the [bench] extra: checked here, so that `mindward bench` without it says how to install it
+# (the CLI maps this ImportError) instead of failing halfway through a run
+for _name in ("edfio", "pandas", "opendp"):
+    if importlib.util.find_spec(_name) is None:
+        raise ModuleNotFoundError(f"mindward bench needs {_name} (the [bench] extra)", name=_name)
+
 MIB = 1 << 20
 _PASSPHRASE = "benchmark passphrase, not a secret"  # noqa: S105 (throw-away vault)
 _TARGETS = {
@@ -37,6 +44,7 @@ _TARGETS = {
     "ingest_vs_read_aes": (">=", 0.5), "ingest_peak_mib": ("<", 200.0),
     "withdraw_1gib_vs_1mib": ("<=", 2.0), "receipt_verify_ms": ("<", 50.0),
     "export_matrix_vs_pandas": ("<=", 1.5), "sampler_vs_opendp": (">=", 10.0),
+    "startup_vs_typer": ("<=", 1.5),
 }
 
 
@@ -311,6 +319,9 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
         else (256, 1024, 300, 100_000, 1_000_000, 100_000, 3600, 1024))
     workdir = Path(tempfile.mkdtemp(prefix="mindward-bench-"))
     figures: dict[str, Any] = {"quick": quick}
+    from mindward_bench.startup import bench_startup
+
+    figures.update(bench_startup(runs=5 if quick else 15))  # first, before the disk is busy
     try:
         data = crypto.random_bytes(MIB)
         v = Vault.init(workdir / "vault", _PASSPHRASE)
@@ -381,6 +392,16 @@ def format_report(figures: dict[str, Any]) -> str:
     lines.append("  export of {export_unit}-unit matrix: {export_s:.2f} s vs pandas pivot + Parquet "
                  "{export_pandas_s:.2f} s; discrete Laplace {sampler_laplace_per_s:.0f} samples/s"
                  .format(**figures))
+    lines.append("  start-up: {startup_command} {startup_version_s:.3f} s, --help {startup_help_s:.3f} s, "
+                 "python -c 'import typer' {startup_typer_s:.3f} s (medians of {startup_runs}); "
+                 "heavy modules at import: ".format(**figures)
+                 + (", ".join(figures["startup_heavy_modules"]) or "none"))
     if figures["quick"]:
         lines.append("  (quick sizes: the targets are stated for the full run)")
     return "\n".join(lines)
+
+
+def command(*, quick: bool = False) -> tuple[dict[str, Any], str]:
+    """`mindward bench`, as the `mindward.commands` entry point: the figures and their text."""
+    figures = run_all(quick=quick)
+    return figures, format_report(figures)

@@ -33,7 +33,7 @@ from vault.formats import strictjson
 from vault.policy.consent import parse_consent_form, record_consent, split_identity
 from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
-from vault.policy.policyset import PolicySet, describe_policy, load_default_policy, load_policy_dir
+from vault.policy.policyset import PolicySet, load_default_policy, load_policy_dir
 from vault.services.context import Context
 from vault.storage import db as storage
 from vault.storage import lineage, participants, registry
@@ -416,9 +416,6 @@ class Vault:
         return info
 
     # -- policy, enrolment and consent -----------------------------------------------------------
-
-    def describe_policy(self) -> list[str]:
-        return describe_policy(self.policy)
 
     def apply_policy(self, policy_dir: Path) -> dict[str, Any]:
         """Pin a new policy set (validated first); consent already given is not changed."""
@@ -914,33 +911,6 @@ def verify_proof(bundle: dict[str, Any], public_key: bytes) -> bool:
     return audit.verify_inclusion_bundle(bundle, public_key)
 
 
-def summarise_decision(decision: CohortDecision, *, show_ids: bool) -> dict[str, Any]:
-    """A decision as the CLI shows it: counts always, per-participant reasons to stewards only."""
-    summary: dict[str, Any] = {
-        "permit": decision.permit, "purpose": decision.request.purpose,
-        "categories": sorted(decision.request.categories),
-        "policy_version": decision.policy_version, "eligible": len(decision.eligible),
-        "included": len(decision.included),
-        "cohort_reasons": [r.value for r in decision.cohort_reasons],
-        "refused_by_reason": dict(sorted(decision.counts.items())),
-        "message": decision.refusal_message(),
-    }
-    if show_ids:
-        summary["participants"] = {pid: d.explain() for pid, d in decision.decisions.items()}
-    return summary
-
-
-def format_decision(summary: dict[str, Any]) -> str:
-    lines = [f"purpose {summary['purpose']} ({', '.join(summary['categories'])}): "
-             f"{summary['included']} included" + ("" if summary["permit"] else " - REFUSED"),
-             f"  {summary['message']}"]
-    for reason, count in summary["refused_by_reason"].items():
-        lines.append(f"  refused, {reason}: {count}")
-    for pid, why in summary.get("participants", {}).items():
-        lines.append(f"  {pid}  {why}")
-    return "\n".join(lines)
-
-
 def verify_export(out: Path, public_key: bytes) -> dict[str, Any]:
     """Check an export folder's manifest signature and file digests; no passphrase."""
     from vault.services.export_matrix import verify_export_dir
@@ -957,18 +927,6 @@ def verify_receipt_file(path: Path, public_key: bytes) -> tuple[bool, list[str]]
     except OSError as exc:
         raise NotFound(f"cannot read {path}") from exc
     return verify_text(text, public_key)
-
-
-def report_markdown(record: dict[str, Any]) -> str:
-    from vault.services.report import to_markdown
-
-    return to_markdown(record)
-
-
-def format_budget(rows: list[dict[str, Any]]) -> str:
-    from vault.services.budget import format_report
-
-    return format_report(rows)
 
 
 def read_items(path: Path) -> list[str]:

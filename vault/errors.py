@@ -9,13 +9,21 @@ from __future__ import annotations
 
 
 class VaultError(Exception):
-    """Base class. `exit_code` is what the CLI returns for it."""
+    """Base class. `exit_code` is what the CLI returns for it.
+
+    `message` says what is wrong in the library's terms. Two optional keys let a front end
+    say more in its own terms: `hint`, the next step (a key of HINTS;
+    tests/cli/test_hints.py checks every one used), and `param`, the
+    argument of the call that was at fault (the CLI names its option).
+    """
 
     exit_code = 1
 
-    def __init__(self, message: str) -> None:
+    def __init__(self, message: str, *, hint: str | None = None, param: str | None = None) -> None:
         super().__init__(message)
         self.message = message
+        self.hint = hint
+        self.param = param
 
 
 class UsageError(VaultError):
@@ -65,6 +73,19 @@ class StorageFull(VaultError):
 
     exit_code = 9
 
+
+# next steps an error can point to, in library terms (vault.cli words each as a command)
+HINTS: dict[str, str] = {
+    "create": "create a vault first (Vault.init)",
+    "enrol": "participant ids are the ones enrolment returned (Vault.enrol)",
+    "verify-audit": "verify the audit log (verify_audit)",
+    "amend-consent": "add a consent version instead (Vault.amend_consent)",
+    "key-free-checks": "use the checks that need no key (read_audit_log, verify_audit, prove)",
+    "public-key": "pass the public key you hold (Vault.public_key, describe)",
+    "withdraw-request": "record a withdrawal request first (Vault.withdraw_request)",
+    "withdraw-receipt": "the receipt is kept (Vault.withdraw_receipt)",
+    "check-export": "check the export against the vault (Vault.check_export)",
+}
 
 EXIT_CODES: dict[int, str] = {
     0: "success",

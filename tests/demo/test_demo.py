@@ -10,8 +10,9 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from vault import Conflict, run_demo, verify_audit, verify_export, verify_receipt_file
+from vault import Conflict, verify_audit, verify_export, verify_receipt_file
 from vault.cli.app import main
+from vault.cli.demo import run_demo
 
 
 @pytest.mark.slow

@@ -25,6 +25,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from vault import crypto
+from vault.cli.render import describe_policy
 from vault.errors import InvalidInput, UsageError
 from vault.policy.consent import ConsentStatus, ConsentVersion, PurposeConsent
 from vault.policy.decide import PERMIT, Reason, Request, decide, request_reasons
@@ -33,7 +34,6 @@ from vault.policy.policyset import (
     DEFAULT_POLICY_DIR,
     DIGEST_DOMAIN,
     PolicySet,
-    describe_policy,
     load_default_policy,
     load_policy_dir,
     parse_policy_files,

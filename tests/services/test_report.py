@@ -8,7 +8,7 @@ import json
 from tests.clock import at
 from tests.conftest import ROOT
 from vault import Vault
-from vault.services.report import to_markdown
+from vault.cli.render import report_markdown as to_markdown
 
 EXAMPLES = ROOT / "docs" / "examples"
 NOW = dt.datetime(2026, 6, 15, 12, 0, tzinfo=dt.UTC)

@@ -258,8 +258,8 @@ class AuditLog:
         if covered > size:
             raise IntegrityError(
                 f"audit entries {size}..{covered - 1} are missing although a signed tree head "
-                "covers them: the log was truncated; restore the vault from a backup and run "
-                "'mindward audit verify'")
+                "covers them: the log was truncated; restore the vault from a backup and verify "
+                "its audit log", hint="verify-audit")
         self._cache, self._head_text = frontier, None if head_row is None else head_row[0]
         if covered == size:
             return
@@ -268,7 +268,7 @@ class AuditLog:
             "SELECT entry FROM audit_log WHERE seq >= ? ORDER BY seq", (covered,))]
         if len(leaves) != size - covered:
             raise IntegrityError(f"the audit log has a gap before entry {size - 1} (rows out of "
-                                 "sequence): it cannot be extended; run 'mindward audit verify'")
+                                 "sequence): it cannot be extended", hint="verify-audit")
         frontier.extend(leaves)
         self._ranges = (*self._ranges, (covered, size - 1))
         flag = {"first": covered, "last": size - 1, "count": size - covered,

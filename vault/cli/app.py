@@ -17,7 +17,9 @@ from typing import Annotated, Any
 
 import typer
 
-import vault
+import vault  # light: its names load on first use (vault/__init__.py)
+from vault.cli import render
+from vault.cli.hints import cli_message
 from vault.errors import EXIT_CODES, AuthenticationFailed, VaultError
 
 app = typer.Typer(
@@ -293,8 +295,8 @@ def access_check(
 ) -> None:
     """Who a request would include and why others are not, without reading any data."""
     with _open(path, member) as v:
-        result = vault.summarise_decision(v.access_check(purpose, category), show_ids=v.role == "steward")
-    _emit(as_json, result, lambda: vault.format_decision(result))
+        result = render.summarise_decision(v.access_check(purpose, category), show_ids=v.role == "steward")
+    _emit(as_json, result, lambda: render.format_decision(result))
     if not result["permit"]:
         raise typer.Exit(vault.PolicyRefusal.exit_code)
 
@@ -304,7 +306,7 @@ def policy_check(directory: Annotated[Path, typer.Argument(help="A folder of pol
                  as_json: JsonOpt = False) -> None:
     """Validate a policy folder and print what it defines. No vault needed."""
     policy = vault.load_policy_dir(directory)
-    lines = vault.describe_policy(policy)
+    lines = render.describe_policy(policy)
     _emit(as_json, {"version": policy.version, "lines": lines}, "\n".join(lines))
 
 
@@ -312,7 +314,7 @@ def policy_check(directory: Annotated[Path, typer.Argument(help="A folder of pol
 def policy_show(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """The policy set pinned in the vault."""
     with _open(path, member) as v:
-        lines = v.describe_policy()
+        lines = render.describe_policy(v.policy)
         version = v.policy.version
     _emit(as_json, {"version": version, "lines": lines}, "\n".join(lines))
 
@@ -473,7 +475,7 @@ def budget(
     """Privacy budget spent per purpose (stewards also see each participant)."""
     with _open(path, member) as v:
         rows = v.budget(purpose)
-    _emit(as_json, rows, lambda: vault.format_budget(rows))
+    _emit(as_json, rows, lambda: render.format_budget(rows))
 
 
 @export_app.command("verify")
@@ -566,7 +568,7 @@ def withdraw_process(
         try:
             vault.write_output(receipt, _receipt_bytes(result["receipt"]), "--receipt")
         except vault.VaultError as exc:
-            raise type(exc)(f"{exc.message}; the withdrawal WAS processed: get its receipt with "
+            raise type(exc)(f"{cli_message(exc)}; the withdrawal WAS processed: get its receipt with "
                             f"'mindward withdraw receipt {result['request_id']} --out FILE'"
                             ) from exc
     _emit(as_json, result, lambda: _withdrawal_text(result, receipt))
@@ -652,7 +654,7 @@ def report(
         vault.check_output_path(out, "--out")
     with _open(path, member) as v:
         record = v.report()
-    text = vault.report_markdown(record)
+    text = render.report_markdown(record)
     if out is not None:
         vault.write_output(out, text.encode("utf-8"), "--out")
     _emit(as_json, record, text if out is None else f"wrote {out}")
@@ -670,14 +672,16 @@ def demo(
     from rich.console import Console
     from rich.progress import Progress
 
+    from vault.cli.demo import run_demo
+
     console = Console(stderr=as_json, highlight=False, soft_wrap=True)
     with Progress(console=console, transient=True) as bar:
         def progress(label: str, total: int) -> Callable[[], None]:
             task = bar.add_task(label, total=total)
             return lambda: bar.advance(task)
 
-        summary = vault.run_demo(directory, n_participants=participants,
-                                 say=console.print, progress=progress)
+        summary = run_demo(directory, n_participants=participants,
+                           say=console.print, progress=progress)
     if as_json:
         _emit(True, summary, "")
         return
@@ -694,16 +698,63 @@ def demo(
                   "ethics board's, data-protection officer's and local law's rules.")
 
 
+BENCH_GROUP = "mindward.commands"  # entry points other distributions add commands through
+BENCH_INSTALL = "pip install 'mindward[bench]' (from a source checkout: pip install -e '.[bench]')"
+
+
 @app.command()
 def bench(
     as_json: JsonOpt = False,
     quick: Annotated[bool, typer.Option("--quick", help="Small sizes (a smoke run).")] = False,
 ) -> None:
-    """Measure the vault against limits measured in the same run; prints ratios."""
-    from mindward_bench.run import format_report, run_all
+    """Measure the vault against limits measured in the same run; prints ratios.
 
-    report = run_all(quick=quick)
-    _emit(as_json, report, lambda: format_report(report))
+    The benchmarks need what the library does not: pip install 'mindward[bench]'."""
+    report, text = _bench_command()(quick=quick)
+    _emit(as_json, report, text)
+
+
+def _bench_command() -> Callable[..., tuple[dict[str, Any], str]]:
+    """The `bench` entry point of the mindward.commands group, or a UsageError saying how to
+    install it (entry point missing, or its dependencies: the [bench] extra)."""
+    from importlib.metadata import entry_points
+
+    found = [ep for ep in entry_points(group=BENCH_GROUP) if ep.name == "bench"]
+    if not found:
+        raise vault.UsageError(f"the benchmarks are not installed: {BENCH_INSTALL}")
+    try:
+        return found[0].load()
+    except ImportError as exc:
+        raise vault.UsageError(f"the benchmarks need the [bench] extra ({exc.name or 'a module'} is "
+                               f"missing): {BENCH_INSTALL}") from exc
+
+
+def _print_version(as_json: bool) -> int:
+    number = _version()
+    _emit(as_json, {"name": "mindward", "version": number}, f"mindward {number}")
+    return 0
+
+
+def _version() -> str:
+    """The installed distribution's version: pyproject takes it from vault.__version__ (reading
+    it through importlib.metadata would cost more than the rest of this start-up)."""
+    return vault.__version__
+
+
+@app.callback(invoke_without_command=True)
+def _root(
+    ctx: typer.Context,
+    show_version: Annotated[bool, typer.Option(
+        "--version", help="Print the installed version and exit.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="With --version: print JSON.")] = False,
+) -> None:
+    if show_version:
+        raise typer.Exit(_print_version(as_json))
+    if as_json:  # `mindward --json info` would otherwise print text to a script expecting JSON
+        raise vault.UsageError("--json goes after the command (mindward COMMAND ... --json)")
+    if ctx.invoked_subcommand is None:
+        typer.echo(ctx.get_help())
+        raise typer.Exit(0)
 
 
 def _read_text(path: Path) -> str:
@@ -715,10 +766,14 @@ def _read_text(path: Path) -> str:
 
 def main(argv: list[str] | None = None) -> int:
     args = sys.argv[1:] if argv is None else argv
+    if "--version" in args and set(args) <= {"--version", "--json"}:
+        # answered before typer builds the parser of every command (about 0.3 s with typer's
+        # per-parameter validators); the same answer as the --version option below
+        return _print_version("--json" in args)
     try:
         result = app(args=args, prog_name="mindward", standalone_mode=False)
     except VaultError as exc:
-        return _error(exc.message, exc.exit_code, "--json" in args)
+        return _error(cli_message(exc), exc.exit_code, "--json" in args)
     except typer.Exit as exc:
         return int(exc.exit_code)
     except typer.Abort:

@@ -15,8 +15,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from vault import crypto
-from vault.api import Vault, prove, verify_audit, verify_proof, verify_receipt_file
+from vault import Vault, prove, verify_audit, verify_proof, verify_receipt_file
 from vault.errors import Conflict, InvalidInput, PolicyRefusal
 
 DEMO_PASSPHRASE = "tasting lab demo passphrase (demo only)"  # noqa: S105 (invented data)
@@ -56,7 +55,7 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
     summary: dict[str, Any] = {"participants": len(files.eeg)}
     with Vault.init(vault_dir, DEMO_PASSPHRASE) as v:
         public_key = v.public_key
-        say(f"   vault {v.vault_id}, signing key {crypto.fingerprint(public_key)}")
+        say(f"   vault {v.vault_id}, signing key {v.info()['fingerprint']}")
         say("3. Enrolment: each filled consent form is checked against the policy set; identity "
             "and contact details go only into a record encrypted under the participant's own key.")
         forms = write_forms(files.root, v.policy)
@@ -139,7 +138,7 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
         done = v.withdraw_process(leaving)
         receipt_path.write_text(json.dumps(done["receipt"], indent=2, sort_keys=True) + "\n")
         recall = v.check_export(_manifest(export_dir))
-        readable = _still_readable(v, leaving)
+        readable = bool(v.blobs(leaving)) or not done["data_key_destroyed"]
     receipt_ok, _ = verify_receipt_file(receipt_path, public_key)
     say(f"   data key destroyed, {done['blobs_deleted']} blobs deleted; receipt verifies with the "
         f"public key alone: {receipt_ok}; recipients to notify: "

@@ -8,17 +8,20 @@ pyplot): no global backend switch, no figure registry, no rcParams changes.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 from vault.errors import UsageError
-from vault.privacy.recommend import UtilityReport
 
 WIDTH_PX = 800
 HEIGHT_PX = 500
 DPI = 100
 
 
-def plot_utility(report: UtilityReport, path: Path) -> Path:
-    """Write RMSE vs epsilon (log x) with the no-noise and random baselines as a PNG."""
+def plot_utility(report: Any, path: Path) -> Path:
+    """Write RMSE vs epsilon (log x) with the no-noise and random baselines as a PNG.
+
+    `report` is a vault.privacy.recommend.UtilityReport, read by attribute (this module
+    imports nothing from the library but its errors)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 

@@ -82,7 +82,8 @@ def _rows(reader: Any, category: str, spec: Category) -> list[ScoreRow]:
         pid, item, text_value = (cells[index[c]].strip() for c in COLUMNS)
         if not _PID.fullmatch(pid):
             raise InvalidInput(f"scores file: row {number}: participant_id is not a vault "
-                               "participant id (32 hex digits, as 'mindward enrol' printed)")
+                               "participant id (32 hex digits, as enrolment returned it)",
+                               hint="enrol")
         if not _ITEM.fullmatch(item):
             raise InvalidInput(f"scores file: row {number}: item_id must be 1-64 letters, digits "
                                "or . _ : / -")

@@ -50,7 +50,6 @@ from vault.policy.policyset import (
     parse_toml,
     safe_id,
 )
-from vault.times import iso_utc
 
 RECORD_SCHEMA = 1
 DIGEST_DOMAIN = b"mindward/v1/consent-version\n"
@@ -559,20 +558,3 @@ def verify_history(versions: Sequence[ConsentVersion]) -> None:
             raise IntegrityError(f"{where}: belongs to another participant")
         if version.recorded_at < before.recorded_at:
             raise IntegrityError(f"{where}: recorded before version {i}")
-
-
-def describe_history(versions: Sequence[ConsentVersion], *, now: dt.datetime) -> list[str]:
-    """What `mindward consent show` prints: no identity, statuses as DPV terms."""
-    _aware(now, "now")
-    lines: list[str] = []
-    for v in versions:
-        end = "expired" if v.is_expired(now) else "valid"
-        lines.append(f"version {v.number} ({v.change}, recorded {iso_utc(v.recorded_at)}"
-                     f", form {v.form_version}, policy {v.policy_version}): signed {v.signed}, "
-                     f"expires {v.expires} [{end}]")
-        for pid, entry in sorted(v.purposes.items()):
-            status = v.status_at(pid, now) or entry.status
-            cats = ", ".join(sorted(entry.categories)) or "-"
-            explicit = "; explicit" if entry.explicit else ""
-            lines.append(f"  {pid}: {status} ({status.dpv}); categories: {cats}{explicit}")
-    return lines

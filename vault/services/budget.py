@@ -19,7 +19,7 @@ manifest. Pure-DP spending never needs a delta.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from fractions import Fraction
 from typing import TYPE_CHECKING, Any
 
@@ -244,23 +244,3 @@ def budget_report(ctx: Context, purpose: str | None = None, *,
 
 def _s(value: Fraction) -> str:
     return str(value)
-
-
-def format_report(rows: Iterable[Mapping[str, Any]]) -> str:
-    """Plain text for `mindward budget`."""
-    lines = []
-    for r in rows:
-        lines.append(f"{r['purpose']}: budget epsilon {r['budget_epsilon']} per participant "
-                     f"(zCDP judged at delta {r['delta']})")
-        lines.append(f"  {r['participants_charged']} of {r['participants']} participants charged, "
-                     f"up to {r['releases_max']} release(s); spent min {r['spent_min']}, "
-                     f"max {r['spent_max']}, total {r['spent_total']}; lowest remaining "
-                     f"{r['remaining_min']}; exhausted {r['participants_exhausted']}")
-        for p in r.get("by_participant", []):
-            lines.append(f"  {p['participant_id']}  spent {p['spent']}  remaining {p['remaining']}  "
-                         f"({p['releases']} release(s))")
-    if not lines:
-        lines.append("no purpose of the policy sets a per-participant privacy budget")
-    lines.append("Caution: a budget bounds what differential privacy promises, no more; whether it "
-                 "is enough is for your ethics board and DPO to decide.")
-    return "\n".join(lines)

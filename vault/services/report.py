@@ -69,35 +69,3 @@ def record_of_processing(ctx: Context) -> dict[str, Any]:
                      "purpose-bound grants checked at every read"],
         "caution": CAUTION,
     }
-
-
-def to_markdown(record: dict[str, Any]) -> str:
-    lines = [f"# Record of processing: {record['policy']['title']}", "",
-             f"Generated {record['generated_at']} from vault `{record['vault_id']}`, policy "
-             f"`{record['policy']['name']}` version `{record['policy']['version']}`.", "",
-             f"> {record['caution']}", "", "## Purposes", "",
-             "| purpose | DPV | lawful basis | categories | consent now | DP | budget spent (max) |",
-             "|---|---|---|---|---|---|---|"]
-    for p in record["purposes"]:
-        lines.append(f"| {p['title']} (`{p['purpose']}`) | {p['dpv']} | {p['lawful_basis']} | "
-                     f"{', '.join(p['categories'])} | {p['participants_with_consent_now']} | "
-                     f"{'required' if p['dp_required'] else 'no'} | {p['max_epsilon_spent']:g} |")
-    people = record["participants"]
-    lines += ["", "## Data subjects and data", "",
-              f"- participants enrolled: {people['enrolled']} (active {people['active']}, "
-              f"erased {people['erased']}, consent expired {people['consent_expired']})",
-              f"- recordings: {record['data']['recordings']}; score batches: "
-              f"{record['data']['score_batches']}",
-              "- categories: " + ", ".join(
-                  c["title"] + (" (special category)" if c["special_category"] else "")
-                  for c in record["categories"]),
-              "", "## Recipients", ""]
-    lines += [f"- {r['recipient']}: {r['exports']} {r['kind']} export(s) for {r['purpose']}, last "
-              f"{r['last']}" for r in record["recipients"]] or ["- none"]
-    w = record["withdrawals"]
-    lines += ["", "## Retention and requests", "",
-              f"- withdrawal requests are due within {record['retention']['withdrawal_deadline_days']} "
-              f"days; open: {w['open']} (overdue {w['overdue']}), processed: {w['processed']}",
-              f"- {record['retention']['consent_ends']}", "", "## Security measures", ""]
-    lines += [f"- {m}" for m in record["security"]]
-    return "\n".join(lines) + "\n"

@@ -17,8 +17,6 @@ from contextlib import contextmanager, suppress
 from pathlib import Path
 from typing import Any
 
-import sqlite_utils
-
 from vault.errors import Conflict, IntegrityError, StorageFull
 
 SCHEMA_VERSION = 1
@@ -160,19 +158,44 @@ def connect(directory: Path, *, readonly: bool = False) -> sqlite3.Connection:
 
 
 
+_SQL_TYPES = {str: "TEXT", int: "INTEGER", bytes: "BLOB", float: "REAL"}
+_INDEXES: tuple[tuple[str, tuple[str, ...], bool], ...] = (
+    ("blobs", ("pid",), False),
+    ("participants", ("lab_code_tag",), True),
+    ("score_batches", ("pid", "category", "batch_tag"), True),
+    ("recordings", ("pid",), False),
+    ("export_members", ("pid",), False),
+    ("withdrawals", ("pid",), False),
+)
+
+
+def _table_sql(name: str) -> str:
+    """CREATE TABLE for one entry of _TABLES (the text sqlite-utils wrote for it before:
+    tests/storage compares the two)."""
+    columns, pk = _TABLES[name]
+    single = pk if isinstance(pk, str) else None
+    lines = [f'   "{column}" {_SQL_TYPES[kind]}' + (" PRIMARY KEY" if column == single else "")
+             + (" NOT NULL" if column in _NOT_NULL[name] else "") for column, kind in columns.items()]
+    if single is None:
+        lines.append("   PRIMARY KEY (" + ", ".join(f'"{c}"' for c in pk) + ")")
+    return f'CREATE TABLE "{name}" (\n' + ",\n".join(lines) + "\n)"
+
+
+def _index_sql(table: str, columns: tuple[str, ...], unique: bool) -> str:
+    return (f'CREATE {"UNIQUE " if unique else ""}INDEX "idx_{table}_{"_".join(columns)}"\n'
+            f'    ON "{table}" (' + ", ".join(f'"{c}"' for c in columns) + ")")
+
+
 def create_schema(conn: sqlite3.Connection) -> None:
     conn.execute("PRAGMA auto_vacuum = INCREMENTAL")
     conn.execute("VACUUM")  # auto_vacuum takes effect only on an empty database after VACUUM
-    db = sqlite_utils.Database(conn)
-    for name, (columns, pk) in _TABLES.items():
-        db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
-    db["blobs"].create_index(["pid"])  # type: ignore[union-attr]
-    db["participants"].create_index(["lab_code_tag"], unique=True)  # type: ignore[union-attr]
-    db["score_batches"].create_index(["pid", "category", "batch_tag"], unique=True)  # type: ignore[union-attr]
-    db["recordings"].create_index(["pid"])  # type: ignore[union-attr]
+    for name in _TABLES:
+        conn.execute(_table_sql(name))
+    for table, columns, unique in _INDEXES[:4]:
+        conn.execute(_index_sql(table, columns, unique))
     _additive_indexes(conn)
-    db["export_members"].create_index(["pid"])  # type: ignore[union-attr]
-    db["withdrawals"].create_index(["pid"])  # type: ignore[union-attr]
+    for table, columns, unique in _INDEXES[4:]:
+        conn.execute(_index_sql(table, columns, unique))
     for table in ("audit_log", "tree_heads", "consents", "policy_versions"):
         conn.executescript(_APPEND_ONLY_TRIGGERS.format(table=table))
 
@@ -199,14 +222,13 @@ def add_missing_columns(conn: sqlite3.Connection) -> list[str]:
 
 def add_missing_tables(conn: sqlite3.Connection) -> None:
     """Create the tables added within schema 1 in a vault made before them (additive only)."""
-    db = sqlite_utils.Database(conn)
-    missing = [name for name in _TABLES if not db[name].exists()]
+    have = {row[0] for row in conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+    missing = [name for name in _TABLES if name not in have]
     if not missing:
         return
     with transaction(conn):
         for name in missing:
-            columns, pk = _TABLES[name]
-            db[name].create(columns, pk=pk, not_null=_NOT_NULL[name])  # type: ignore[union-attr]
+            conn.execute(_table_sql(name))
 
 
 @contextmanager

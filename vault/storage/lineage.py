@@ -5,6 +5,8 @@ from __future__ import annotations
 import sqlite3
 from collections.abc import Mapping
 
+from vault.errors import NotFound
+
 EXPORT_COLUMNS = ("export_id", "kind", "purpose", "recipient", "created_at")
 
 
@@ -18,7 +20,9 @@ def exports_containing(conn: sqlite3.Connection, pid: str) -> list[dict[str, str
 
 
 def members(conn: sqlite3.Connection, export_id: str) -> set[str]:
-    """The vault ids an export holds."""
+    """The vault ids an export holds (NotFound for an export not in the lineage)."""
+    if conn.execute("SELECT 1 FROM exports WHERE export_id = ?", (export_id,)).fetchone() is None:
+        raise NotFound(f"no export '{export_id}' in this vault's lineage")
     return {r[0] for r in conn.execute("SELECT pid FROM export_members WHERE export_id = ?",
                                        (export_id,))}
 

@@ -118,3 +118,4 @@ def remove_member(conn: sqlite3.Connection, member: str) -> None:
     if roles[member] == "steward" and sum(r == "steward" for r in roles.values()) == 1:
         raise Conflict("refusing to remove the last steward")
     conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+
