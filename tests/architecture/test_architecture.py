@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import ast
 import functools
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -81,11 +81,12 @@ class Violation:
         return f"{self.check}: vault/{self.rel}:{self.line}: {self.token}"
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)  # hashed by identity: one per file text
 class Source:
     rel: str
     module: str  # dotted name
     tree: ast.Module
+    nodes: tuple[ast.AST, ...]  # every node, walked once
 
     @property
     def room(self) -> str:
@@ -99,45 +100,54 @@ def sources(root: Path) -> list[Source]:
         parts = [root.name, *rel[:-3].split("/")]
         if parts[-1] == "__init__":
             parts.pop()
-        found.append(Source(rel, ".".join(parts), _parse(str(path), path.stat().st_mtime_ns)))
+        found.append(_source(path.read_text(), rel, ".".join(parts)))
     return found
 
 
 @functools.lru_cache(maxsize=4096)
-def _parse(path: str, mtime_ns: int) -> ast.Module:
-    """Parsed once per file version (the checks run over the same tree many times)."""
-    return ast.parse(Path(path).read_text(), filename=path)
+def _source(text: str, rel: str, module: str) -> Source:
+    """Parsed once per file text (the checks run over the same trees many times)."""
+    tree = ast.parse(text, filename=rel)
+    return Source(rel, module, tree, tuple(ast.walk(tree)))
 
 
-def imports(src: Source) -> Iterator[tuple[ast.stmt, str]]:
+def imports(src: Source) -> list[tuple[ast.stmt, str]]:
     """Every module or module.name imported, relative imports resolved."""
+    return _imports_of(src)
+
+
+@functools.lru_cache(maxsize=4096)
+def _imports_of(src: Source) -> list[tuple[ast.stmt, str]]:
     package = src.module if src.rel.endswith("__init__.py") else src.module.rpartition(".")[0]
-    for node in ast.walk(src.tree):
+    found: list[tuple[ast.stmt, str]] = []
+    for node in src.nodes:
         if isinstance(node, ast.Import):
-            for alias in node.names:
-                yield node, alias.name
+            found += [(node, alias.name) for alias in node.names]
         elif isinstance(node, ast.ImportFrom):
             base = node.module or ""
             if node.level:
                 anchor = package.split(".")[: len(package.split(".")) - (node.level - 1)]
                 base = ".".join([*anchor, base] if base else anchor)
-            yield node, base
-            for alias in node.names:
-                yield node, f"{base}.{alias.name}"
+            found.append((node, base))
+            found += [(node, f"{base}.{alias.name}") for alias in node.names]
+    return found
 
 
-def names(src: Source) -> Iterator[tuple[ast.AST, str]]:
+@functools.lru_cache(maxsize=4096)
+def names(src: Source) -> list[tuple[ast.AST, str]]:
     """Every identifier used: names, attributes and imported names (with their aliases)."""
-    for node in ast.walk(src.tree):
+    found: list[tuple[ast.AST, str]] = []
+    for node in src.nodes:
         if isinstance(node, ast.Name):
-            yield node, node.id
+            found.append((node, node.id))
         elif isinstance(node, ast.Attribute):
-            yield node, node.attr
+            found.append((node, node.attr))
         elif isinstance(node, ast.ImportFrom):
             for alias in node.names:
-                yield node, alias.name
+                found.append((node, alias.name))
                 if alias.asname:
-                    yield node, alias.asname
+                    found.append((node, alias.asname))
+    return found
 
 
 def _hit(check: str, src: Source, node: ast.AST, token: str) -> Violation:
@@ -194,7 +204,7 @@ def check_grant_minting(root: Path) -> list[Violation]:
         if src.rel == "policy/engine.py":
             continue
         found += [_hit("grant-minting", src, node, name) for node, name in names(src) if name == "_MINT"]
-        for node in ast.walk(src.tree):
+        for node in src.nodes:
             if isinstance(node, ast.Call) and _last_name(node.func) in MINTED:
                 found.append(_hit("grant-minting", src, node, f"{_last_name(node.func)}("))
     return found
@@ -216,7 +226,7 @@ def check_clock(root: Path) -> list[Violation]:
         for node, name in names(src):
             if name in CLOCK_NAMES - {"moment"}:
                 found.append(_hit("clock", src, node, name))
-        for node in ast.walk(src.tree):
+        for node in src.nodes:
             if isinstance(node, ast.Call) and _last_name(node.func) == "moment":
                 found.append(_hit("clock", src, node, "moment("))
             if not (isinstance(node, ast.Attribute) and isinstance(node.ctx, ast.Load)):
@@ -229,10 +239,11 @@ def check_clock(root: Path) -> list[Violation]:
     return found
 
 
-def _literal_loop_names(tree: ast.AST) -> dict[int, set[str]]:
+@functools.lru_cache(maxsize=4096)
+def _literal_loop_names(src: Source) -> dict[int, set[str]]:
     """For each loop over a tuple of public string literals: the loop variable, by line of each use."""
     safe: dict[int, set[str]] = {}
-    for loop in ast.walk(tree):
+    for loop in src.nodes:
         if not (isinstance(loop, ast.For) and isinstance(loop.target, ast.Name)
                 and isinstance(loop.iter, ast.Tuple | ast.List)):
             continue
@@ -245,10 +256,11 @@ def _literal_loop_names(tree: ast.AST) -> dict[int, set[str]]:
     return safe
 
 
-def _functions(tree: ast.AST) -> dict[int, str]:
+@functools.lru_cache(maxsize=4096)
+def _functions(src: Source) -> dict[int, str]:
     """Line -> name of the innermost enclosing function."""
     where: dict[int, str] = {}
-    for fn in ast.walk(tree):
+    for fn in src.nodes:
         if isinstance(fn, ast.FunctionDef | ast.AsyncFunctionDef):
             for line in range(fn.lineno, (fn.end_lineno or fn.lineno) + 1):
                 where[line] = fn.name  # walk is breadth-first: inner functions overwrite
@@ -258,7 +270,7 @@ def _functions(tree: ast.AST) -> dict[int, str]:
 def check_reflection(root: Path) -> list[Violation]:
     found = []
     for src in sources(root):
-        safe, where = _literal_loop_names(src.tree), _functions(src.tree)
+        safe, where = _literal_loop_names(src), _functions(src)
 
         def needed(node: ast.AST, src: Source = src, where: dict[int, str] = where) -> bool:
             return (src.rel, where.get(getattr(node, "lineno", 0), "")) in REFLECTION_NEEDS
@@ -266,7 +278,7 @@ def check_reflection(root: Path) -> list[Violation]:
         for node, name in imports(src):
             if name.split(".")[0] in BANNED_MODULES and (src.rel, name.split(".")[0]) not in MODULE_NEEDS:
                 found.append(_hit("reflection", src, node, name))
-        for node in ast.walk(src.tree):
+        for node in src.nodes:
             if isinstance(node, ast.Name) and node.id in BANNED_NAMES:
                 found.append(_hit("reflection", src, node, f"{node.id}"))
             elif isinstance(node, ast.Attribute) and node.attr in BANNED_DUNDERS and not needed(node):
@@ -303,11 +315,11 @@ def _reflective_call(src: Source, call: ast.Call, safe: dict[int, set[str]]) -> 
 def check_lazy_matplotlib(root: Path) -> list[Violation]:
     found = []
     for src in sources(root):
-        nested = {id(n) for fn in ast.walk(src.tree) if isinstance(fn, ast.FunctionDef | ast.AsyncFunctionDef)
+        hits = [(node, name) for node, name in imports(src) if name.split(".")[0] == "matplotlib"]
+        nested = {id(n) for fn in src.nodes if hits and isinstance(fn, ast.FunctionDef | ast.AsyncFunctionDef)
                   for n in ast.walk(fn)}
-        for node, name in imports(src):
-            if name.split(".")[0] == "matplotlib" and (src.rel != "cli/plot.py" or id(node) not in nested):
-                found.append(_hit("lazy-matplotlib", src, node, name))
+        found += [_hit("lazy-matplotlib", src, node, name) for node, name in hits
+                  if src.rel != "cli/plot.py" or id(node) not in nested]
     return found
 
 
