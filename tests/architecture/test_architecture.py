@@ -12,9 +12,14 @@ tests/architecture/test_cheating.py runs the same checks on a copy with a plante
 5. Grants are minted only in vault/policy/engine.py.
 6. The clock is read only in vault/api.py.
 7. No reflection around the checks above: no getattr/setattr/delattr/hasattr with a private or
-   computed name, no __dict__, vars(), globals(), eval/exec, object.__getattribute__ on another
-   object, and no gc, ctypes, pickle, importlib, inspect.
+   computed name (nor an alias of them), no __dict__, vars(), globals(), eval/exec,
+   __getattribute__, an object's pickled state, other frames, sys.modules, and no gc, ctypes,
+   pickle, importlib, inspect, builtins.
 8. matplotlib only in vault/cli/plot.py, inside a function (import vault stays light).
+9. No blanket `# noqa`, no `# ruff: noqa`, no SLF001 suppression unless listed with its reason.
+
+What a file truly needs is listed below with the reason (MODULE_NEEDS, REFLECTION_NEEDS,
+SLF001_NEEDS); today's known violations (PENDING) name who removes them.
 """
 
 from __future__ import annotations
@@ -58,7 +63,7 @@ SYS_HOOKS = {"sys.modules", "sys._getframe", "sys.settrace", "sys.setprofile", "
 MODULE_NEEDS = {
     ("formats/bids.py", "importlib"): "importlib.metadata: the installed version, for dataset_description",
 }
-# Reflection that reads a public field named by data the package itself validates, with the reason.
+# Reflection a function truly needs, by (file, function), with the reason.
 REFLECTION_NEEDS = {
     ("policy/consent.py", "_check_permissions"): "form_permission is a Literal of the form's public fields",
     ("policy/consent.py", "from_json"): "__dict__ seeds the cached_property `digest` from the stored bytes",
@@ -380,39 +385,39 @@ def violations(check: str, root: Path = PACKAGE) -> list[Violation]:
 
 
 def test_only_crypto_touches_primitives() -> None:
-    assert not violations("primitives"), "use vault.crypto's recipes (random_bytes, not os.urandom)"
+    assert not [str(v) for v in violations("primitives")], "use vault.crypto's recipes, not os.urandom"
 
 
 def test_only_the_door_decrypts() -> None:
-    assert not violations("decryptors")
+    assert not [str(v) for v in violations("decryptors")]
 
 
 def test_only_the_door_imports_keys_and_blobs_and_nothing_imports_hazmat() -> None:
-    assert not violations("door-imports")
+    assert not [str(v) for v in violations("door-imports")]
 
 
 def test_storage_never_sees_keys() -> None:
-    assert not violations("storage-keyless")
+    assert not [str(v) for v in violations("storage-keyless")]
 
 
 def test_only_the_policy_engine_mints_grants() -> None:
-    assert not violations("grant-minting")
+    assert not [str(v) for v in violations("grant-minting")]
 
 
 def test_only_api_reads_the_clock() -> None:
-    assert not violations("clock"), "take the time from the caller (services: ctx.now())"
+    assert not [str(v) for v in violations("clock")], "take the time from the caller (services: ctx.now())"
 
 
 def test_no_reflection_around_the_checks() -> None:
-    assert not violations("reflection")
+    assert not [str(v) for v in violations("reflection")]
 
 
 def test_matplotlib_is_imported_lazily_by_the_plot_only() -> None:
-    assert not violations("lazy-matplotlib")
+    assert not [str(v) for v in violations("lazy-matplotlib")]
 
 
 def test_no_blanket_or_private_access_suppressions() -> None:
-    assert not violations("suppressions"), "name the rule in each noqa; SLF001 only in SLF001_NEEDS"
+    assert not [str(v) for v in violations("suppressions")], "name each noqa's rule; SLF001 only if listed"
 
 
 def test_pending_allowances_are_still_needed() -> None:
