@@ -7,7 +7,6 @@ import json
 import os
 import re
 import shutil
-import sqlite3
 import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import replace
@@ -37,6 +36,7 @@ from vault.policy.policyset import PolicySet, load_default_policy, load_policy_d
 from vault.services.context import Context
 from vault.storage import db as storage
 from vault.storage import lineage, participants, registry
+from vault.storage.db import Connection, DatabaseError
 from vault.times import iso_utc, parse_utc
 
 LOCK_NAME = "lock"
@@ -89,7 +89,7 @@ def _take_lock(path: Path) -> int:
 CLOCK_ALLOWANCE = timedelta(minutes=2)
 
 
-def _newest_entry_time(conn: sqlite3.Connection) -> datetime:
+def _newest_entry_time(conn: Connection) -> datetime:
     row = conn.execute("SELECT entry FROM audit_log ORDER BY seq DESC LIMIT 1").fetchone()
     try:
         stamp = json.loads(row[0])["at"] if row else None
@@ -114,7 +114,7 @@ class Vault:
     `member` and `role` are fixed when the vault is opened (the role is bound to the
     member's key slot); decisions read the vault's own clock."""
 
-    def __init__(self, path: Path, conn: sqlite3.Connection, unlocked: Opened, member: str,
+    def __init__(self, path: Path, conn: Connection, unlocked: Opened, member: str,
                  lock_fd: int, clock: Clock | None = None) -> None:
         if unlocked.door is None:
             raise UsageError("this member's slot opens no vault keys")
@@ -263,7 +263,7 @@ class Vault:
         path = Path(path)
         _require_vault(path)
         lock_fd = _take_lock(path)
-        conn: sqlite3.Connection | None = None
+        conn: Connection | None = None
         try:
             conn = storage.connect(path)
             vault_id = _check_schema(conn)
@@ -761,23 +761,23 @@ def _consent_details(version: Any) -> dict[str, Any]:
             "purposes": {p: c.status.value for p, c in sorted(version.purposes.items())}}
 
 
-def _check_schema(conn: sqlite3.Connection) -> str:
+def _check_schema(conn: Connection) -> str:
     try:
         version = int(storage.get_meta(conn, "schema_version"))
         vault_id = storage.get_meta(conn, "vault_id")
-    except sqlite3.DatabaseError as exc:
+    except DatabaseError as exc:
         raise IntegrityError("the vault database is unreadable or not a vault") from exc
     if version != storage.SCHEMA_VERSION:
         raise IntegrityError(f"vault schema {version} is not supported by this version")
     return vault_id
 
 
-def _readonly(path: Path) -> sqlite3.Connection:
+def _readonly(path: Path) -> Connection:
     _require_vault(Path(path))
     try:
         conn = storage.connect(Path(path), readonly=True)
         _check_schema(conn)
-    except sqlite3.DatabaseError as exc:
+    except DatabaseError as exc:
         raise IntegrityError("the vault database is unreadable or not a vault") from exc
     return conn
 

@@ -9,7 +9,6 @@ decryptor: callers get ciphertext facts (`BlobInfo`), tags, pseudonyms and admit
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,6 +21,7 @@ from vault.errors import IntegrityError, NotFound, UsageError
 from vault.policy.engine import Grant, PolicyEngine
 from vault.storage import db as storage
 from vault.storage import participants as rows
+from vault.storage.db import Connection
 
 __all__ = ["BlobInfo", "Door", "NewParticipant", "Opened", "new_vault_keys", "unlock"]
 
@@ -51,7 +51,7 @@ class NewParticipant:
     blob: BlobInfo | None = None
 
 
-def unlock(conn: sqlite3.Connection, root: Path, vault_id: str, member: str, passphrase: str,
+def unlock(conn: Connection, root: Path, vault_id: str, member: str, passphrase: str,
            reads_data: Callable[[str], bool]) -> Opened:
     """Check a member's passphrase against their slot; a wrong passphrase and an edited
     slot fail alike. Members whose role reads no data get no door."""
@@ -60,7 +60,7 @@ def unlock(conn: sqlite3.Connection, root: Path, vault_id: str, member: str, pas
     return Opened(door, unlocked.role, unlocked.member_key, unlocked.upgraded)
 
 
-def new_vault_keys(root: Path, conn: sqlite3.Connection, member: str, passphrase: str, at: str,
+def new_vault_keys(root: Path, conn: Connection, member: str, passphrase: str, at: str,
                    policy_version: str) -> tuple[str, crypto.SigningKey]:
     """A new vault's keys (inside the caller's transaction): master key, signing key, vault
     secret, the policy pin and the first steward's slot; returns (vault id, signing key)."""
@@ -84,7 +84,7 @@ def new_vault_keys(root: Path, conn: sqlite3.Connection, member: str, passphrase
 class Door:
     """The one door of an open vault (built by `unlock`)."""
 
-    def __init__(self, conn: sqlite3.Connection, root: Path, ring: KeyRing) -> None:
+    def __init__(self, conn: Connection, root: Path, ring: KeyRing) -> None:
         self._conn = conn
         self._ring = ring
         self._blobs = BlobStore(root, ring.vault_id)

@@ -4,7 +4,6 @@ engine and who is acting, with the vault's clock as a callable (api.py alone rea
 from __future__ import annotations
 
 import datetime as dt
-import sqlite3
 from collections.abc import Callable, Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -19,6 +18,7 @@ from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet
 from vault.storage import db as storage
 from vault.storage import participants, registry
+from vault.storage.db import Connection
 from vault.times import iso_utc
 
 
@@ -26,7 +26,7 @@ from vault.times import iso_utc
 class Context:
     """One use case's view of an open vault (built by `Vault` for each call)."""
 
-    conn: sqlite3.Connection = field(repr=False)
+    conn: Connection = field(repr=False)
     door: Door = field(repr=False)
     audit: AuditLog = field(repr=False)
     engine: PolicyEngine = field(repr=False)

@@ -19,6 +19,10 @@ from typing import Any
 
 from vault.errors import Conflict, IntegrityError, StorageFull
 
+# The connection type and SQLite's error, for the rooms above storage (only storage imports sqlite3).
+Connection = sqlite3.Connection
+DatabaseError = sqlite3.DatabaseError
+
 SCHEMA_VERSION = 1
 DB_NAME = "vault.db"
 IN_CHUNK = 500  # bound values per IN (...) query, under SQLite's old default limit of 999
