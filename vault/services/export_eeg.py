@@ -17,6 +17,7 @@ from vault.formats.bids import BidsWriter
 from vault.formats.edf import recording_meta
 from vault.formats.edf_header import demographics, parse_header, with_known_channels, without_demographics
 from vault.services import export_runs, exports
+from vault.storage import recordings
 from vault.times import iso_utc
 
 if TYPE_CHECKING:
@@ -59,11 +60,7 @@ def export_eeg(ctx: Context, *, purpose: str, out: Path, recipient: str | None,
     # Sex and age band leave only under a grant that covers demographics; otherwise the
     # exported headers and participants.tsv carry none.
     keep_demographics = "demographics" in grant.categories
-    marks = ",".join("?" * len(ctx.grant_participants(grant)))
-    rows = ctx.conn.execute(
-        f"SELECT r.blob_id, r.pid, b.plain_size FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
-        f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id",
-        sorted(ctx.grant_participants(grant))).fetchall()
+    rows = recordings.recordings_of(ctx.conn, ctx.grant_participants(grant))
     if not rows:
         raise NotFound("the granted participants hold no recordings")
     labels = exports.pseudonyms(ctx, purpose, {pid for _, pid, _ in rows})

@@ -63,6 +63,7 @@ from vault.privacy.accountant import (
 )
 from vault.privacy.aggregate import AggregateRelease, release_aggregate
 from vault.services import budget, export_runs, exports
+from vault.storage import recordings
 from vault.times import iso_utc
 
 if TYPE_CHECKING:
@@ -96,10 +97,7 @@ EXPORT_CAUTIONS = (
 
 def _candidates(ctx: Context, category: str) -> dict[str, list[tuple[str, int]]]:
     """Living participants with score batches of `category`: pid -> [(blob id, rows)]."""
-    rows = ctx.conn.execute(
-        "SELECT s.pid, s.blob_id, s.rows FROM score_batches s JOIN participants p ON p.pid = s.pid "
-        "WHERE s.category = ? AND p.wrapped_key IS NOT NULL ORDER BY s.pid, s.blob_id",
-        (category,)).fetchall()
+    rows = recordings.living_batches(ctx.conn, category)
     out: dict[str, list[tuple[str, int]]] = {}
     for pid, blob_id, n in rows:
         out.setdefault(pid, []).append((blob_id, int(n)))

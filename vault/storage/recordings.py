@@ -49,3 +49,20 @@ def insert_batch(conn: sqlite3.Connection, *, blob_id: str, pid: str, category: 
     conn.executemany(
         "INSERT INTO score_items (pid, category, item_tag, blob_id) VALUES (?, ?, ?, ?)",
         [(pid, category, tag, blob_id) for tag in tags])
+
+
+def recordings_of(conn: sqlite3.Connection, pids: Iterable[str]) -> list[tuple[str, str, int]]:
+    """(blob id, pid, plain size) of the participants' recordings, by pid then time stored."""
+    wanted = sorted(pids)
+    marks = ",".join("?" * len(wanted))
+    return conn.execute(
+        f"SELECT r.blob_id, r.pid, b.plain_size FROM recordings r JOIN blobs b ON b.blob_id = r.blob_id "  # noqa: S608
+        f"WHERE r.pid IN ({marks}) ORDER BY r.pid, b.created_at, r.blob_id", wanted).fetchall()
+
+
+def living_batches(conn: sqlite3.Connection, category: str) -> list[tuple[str, str, int]]:
+    """(pid, blob id, rows) of the score batches of `category` whose participant was not erased."""
+    return conn.execute(
+        "SELECT s.pid, s.blob_id, s.rows FROM score_batches s JOIN participants p ON p.pid = s.pid "
+        "WHERE s.category = ? AND p.wrapped_key IS NOT NULL ORDER BY s.pid, s.blob_id",
+        (category,)).fetchall()
