@@ -15,7 +15,7 @@ tests/architecture/test_cheating.py runs the same checks on a copy with a plante
    computed name (nor an alias of them), no __dict__, vars(), globals(), eval/exec,
    __getattribute__, an object's pickled state, other frames, sys.modules, and no gc, ctypes,
    pickle, importlib, inspect, builtins.
-8. matplotlib only in vault/cli/plot.py, inside a function (import vault stays light).
+8. matplotlib only in vault/formats/plot.py, inside a function (import vault stays light).
 9. No blanket `# noqa`, no `# ruff: noqa`, no SLF001 suppression unless listed with its reason.
 
 What a file truly needs is listed below with the reason (MODULE_NEEDS, REFLECTION_NEEDS,
@@ -346,7 +346,7 @@ def check_lazy_matplotlib(root: Path) -> list[Violation]:
         nested = {id(n) for fn in src.nodes if hits and isinstance(fn, ast.FunctionDef | ast.AsyncFunctionDef)
                   for n in ast.walk(fn)}
         found += [_hit("lazy-matplotlib", src, node, name) for node, name in hits
-                  if src.rel != "cli/plot.py" or id(node) not in nested]
+                  if src.rel != "formats/plot.py" or id(node) not in nested]
     return found
 
 

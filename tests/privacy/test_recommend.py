@@ -1,4 +1,4 @@
-"""vault.privacy.recommend and vault.cli.plot against outside references.
+"""vault.privacy.recommend and vault.formats.plot against outside references.
 
 Outside sources:
 - scipy.stats.norm.fit: the maximum-likelihood normal fit (loc = mean,
@@ -35,8 +35,8 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from demo_data.study import build_study
-from vault.cli.plot import plot_utility
 from vault.errors import InvalidInput, UsageError, VaultError
+from vault.formats.plot import plot_utility
 from vault.privacy.recommend import (
     fit_normal_mle,
     fit_svd,
@@ -405,7 +405,7 @@ def test_plot_leaves_global_matplotlib_state_alone(tmp_path: Path) -> None:
 import sys, numpy as np, matplotlib
 from pathlib import Path
 from vault.privacy.recommend import UtilityReport
-from vault.cli.plot import plot_utility
+from vault.formats.plot import plot_utility
 # raw values via _get: get_backend() or a plain copy would resolve the backend via pyplot
 def raw():
     return {k: matplotlib.rcParams._get(k) for k in matplotlib.rcParams}

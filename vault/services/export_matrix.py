@@ -600,7 +600,7 @@ def export_utility(
     two runs.
     """
     now = ctx.now()
-    from vault.cli.plot import plot_utility
+    from vault.formats.plot import plot_utility
     from vault.privacy.recommend import utility_curve
 
     ctx.require_steward("export.utility")
