@@ -11,7 +11,6 @@ import json
 import shutil
 import time
 from collections.abc import Callable
-from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -134,7 +133,7 @@ def run_demo(root: Path, *, n_participants: int = 30, say: Say = print,
     with Vault.open(vault_dir, DEMO_PASSPHRASE) as v:
         members = _members(v, export_dir)
         leaving = next(pid for pid in kept.values() if pid in members)
-        v.withdraw_request(leaving, received=datetime.now(UTC).date())
+        v.withdraw_request(leaving, received=v.now().date())  # the vault's own clock
         done = v.withdraw_process(leaving)
         receipt_path.write_text(json.dumps(done["receipt"], indent=2, sort_keys=True) + "\n")
         recall = v.check_export(_manifest(export_dir))
