@@ -69,7 +69,7 @@ def moment(clock: Clock | None = None) -> datetime:
 
 def _require_vault(path: Path) -> None:
     if not (path / storage.DB_NAME).is_file():
-        raise NotFound(f"no vault at {path} (create one with 'mindward init')")
+        raise NotFound(f"no vault at {path}", hint="create")
 
 
 def _take_lock(path: Path) -> int:
@@ -275,8 +275,8 @@ class Vault:
                 notes.add(conn, vault_id, member, unlocked, "vault.open", "refuse",
                           iso_utc(moment(clock)))
                 raise PolicyRefusal(
-                    f"member '{member}' ({unlocked.role}) holds no key to participant data; "
-                    "use 'mindward audit show', 'audit verify' and the other key-free checks")
+                    f"member '{member}' ({unlocked.role}) holds no key to participant data",
+                    hint="key-free-checks")
             vault = cls(path, conn, unlocked, member, lock_fd, clock)
             vault._check_audit()
             with storage.transaction(conn):
@@ -444,8 +444,8 @@ class Vault:
         tag = self._door.lab_code_tag(identity.code)
         existing = registry.pid_for_tag(self._conn, tag)
         if existing is not None:
-            raise Conflict(f"this participant code is enrolled already (participant {existing}); "
-                           "use 'mindward consent amend'")
+            raise Conflict(f"this participant code is enrolled already (participant {existing})",
+                           hint="amend-consent")
         pid = crypto.random_id(16)
         version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when)
         key = self._door.new_participant(pid, ("identity-contact", [identity.to_bytes()]))
@@ -846,7 +846,7 @@ def parse_public_key(text: str) -> bytes:
     except ValueError:
         key = b""
     if len(key) != 32:
-        raise UsageError("a public key is 64 hex digits (see 'mindward info')")
+        raise UsageError("a public key is 64 hex digits", hint="public-key", param="public_key")
     return key
 
 
@@ -863,7 +863,7 @@ def verify_audit(path: Path, *, public_key: bytes | None = None,
         report = audit.verify_log(conn, public_key or stored, trusted or [])
         if public_key is None:
             report.notes.append("checked against the public key stored in the vault; "
-                                "pass --key with the key you hold to rule out a swapped key")
+                                "pass the public key you hold to rule out a swapped key")
         return report
     finally:
         conn.close()

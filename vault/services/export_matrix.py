@@ -139,11 +139,12 @@ def release_items(ctx: Context, category: str, items: Sequence[str] | None) -> t
         if declared is None:
             raise PolicyRefusal(
                 f"refused: a noised release needs a public item catalogue: declare 'items' for "
-                f"category {category} in the policy set or give --items")
+                f"category {category} in the policy set or give the items", param="items")
         return declared, f"the policy set's catalogue for {category} (version {ctx.policy.version})"
     chosen = _check_items(items)
     if declared is not None and not set(chosen) <= set(declared):
-        raise InvalidInput(f"--items names an item outside the policy set's catalogue for {category}")
+        raise InvalidInput(f"an item given lies outside the policy set's catalogue for {category}",
+                           param="items")
     return chosen, "the public item catalogue given with the request"
 
 
@@ -384,15 +385,16 @@ def export_matrix(
     """
     now = ctx.now()
     if release not in RELEASES:
-        raise UsageError("--release is 'matrix' or 'aggregate'")
+        raise UsageError("the release is 'matrix' or 'aggregate'", param="release")
     try:
         privacy_unit = PrivacyUnit(unit)
     except ValueError:
-        raise UsageError("--unit is 'participant' or 'rating'") from None
+        raise UsageError("the privacy unit is 'participant' or 'rating'", param="unit") from None
     if release == "aggregate" and privacy_unit is not PrivacyUnit.PARTICIPANT:
-        raise UsageError("the aggregate release protects whole participants: --unit participant")
+        raise UsageError("the aggregate release protects whole participants: the privacy unit is "
+                         "'participant'", param="unit")
     if mechanism is not None and mechanism not in MECHANISMS:
-        raise UsageError("--mechanism is 'laplace' or 'gaussian'")
+        raise UsageError("the mechanism is 'laplace' or 'gaussian'", param="mechanism")
     mech, amount = choose_mechanism(epsilon, rho, MECHANISMS[mechanism] if mechanism else None)
     if not formats or any(f not in FORMATS for f in formats):
         raise UsageError("formats are 'parquet' and/or 'csv'")
@@ -607,7 +609,7 @@ def export_utility(
     try:
         privacy_unit = PrivacyUnit(unit)
     except ValueError:
-        raise UsageError("--unit is 'participant' or 'rating'") from None
+        raise UsageError("the privacy unit is 'participant' or 'rating'", param="unit") from None
     if Path(out_png).suffix.lower() != ".png":
         raise UsageError("the utility plot is written as PNG: give a path ending in .png")
     catalogue = _check_items(items) if items is not None else declared_items(ctx, category)

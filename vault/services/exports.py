@@ -31,8 +31,8 @@ DEFAULT_EXPORT_DAYS = 365
 CAUTIONS = (
     "Pseudonymised data is still personal data (GDPR Recital 26): keep it under the data use "
     "agreement, do not try to re-identify anyone, and do not link it with other data.",
-    "A participant may withdraw later; check this export with 'mindward export check' before "
-    "each use and replace it when told to.",
+    "A participant may withdraw later; check this export against the vault (an export check) "
+    "before each use and replace it when told to.",
     "Follow your ethics board's, data-protection officer's and local law's rules.",
 )
 

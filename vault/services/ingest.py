@@ -87,7 +87,7 @@ def event_codes_for(ctx: Context, event_codes: str | Sequence[str] | None) -> Ev
         declared = ctx.policy.categories[EEG].event_codes
         return EventCodes(declared) if declared else None
     items = event_codes.split(",") if isinstance(event_codes, str) else list(event_codes)
-    return EventCodes([i.strip() for i in items], what="--event-codes entry")
+    return EventCodes([i.strip() for i in items], what="event code")
 
 
 def _file_digests(paths: Sequence[Path]) -> list[crypto.StreamingDigest]:
@@ -148,7 +148,8 @@ def ingest_eeg(ctx: Context, pid: str, path: Path, *, sidecar: Path | None,
     path = Path(path)
     numpy_input = path.suffix.lower() in (".npy", ".npz")
     if numpy_input and sidecar is None:
-        raise UsageError("NumPy recordings need --sidecar (JSON: sampling rate, channels, units)")
+        raise UsageError("NumPy recordings need a sidecar (JSON: sampling rate, channels, units)",
+                         param="sidecar")
     inputs = [path, Path(sidecar)] if numpy_input and sidecar is not None else [path]
     tag = None
     if numpy_input:  # NumPy: hashed first (and again after reading); EDF: while it streams
@@ -229,7 +230,7 @@ def ingest_scores(ctx: Context, path: Path, kind: str) -> dict[str, Any]:
     ctx.require_steward("ingest.scores")
     now = ctx.now()
     if kind not in SCORE_KINDS:
-        raise UsageError("--kind is 'derived' or 'explicit'")
+        raise UsageError("the score kind is 'derived' or 'explicit'", param="kind")
     category = SCORE_KINDS[kind]
     rows = scores.read_rows(path, category, ctx.policy.categories[category])
     groups = scores.by_participant(rows)

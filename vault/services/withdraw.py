@@ -101,7 +101,7 @@ BACKUP_NOTE = (
     "on its backup schedule, and must not restore this participant from them.")
 EXPORT_NOTE = (
     "Exports made earlier (listed) are outside the vault: the lab must tell each recipient "
-    "(GDPR Art. 19) and have the copy deleted or replaced ('mindward export check').")
+    "(GDPR Art. 19) and have the copy deleted or replaced (an export check tells which).")
 CAUTIONS = (
     "This receipt records what the vault destroyed; it does not cover paper forms, e-mails, "
     "analysis results or other copies outside the vault.",
@@ -120,7 +120,7 @@ def parse_scope(text: str) -> str:
         return text
     if text.startswith(PURPOSE_PREFIX) and _PURPOSE_ID.fullmatch(text[len(PURPOSE_PREFIX):]):
         return text
-    raise UsageError("--scope is 'full' or 'purpose:PURPOSE_ID'")
+    raise UsageError("the scope is 'full' or 'purpose:PURPOSE_ID'", param="scope")
 
 
 def _purpose(scope: str) -> str:
@@ -157,9 +157,10 @@ def _named_purposes(policy: PolicySet, consent: ConsentVersion, purpose: str) ->
         return named
     broader = answering_purpose(consent, policy.chain(purpose)[1:] if purpose in policy.purposes else ())
     if broader is not None:
-        raise InvalidInput(f"--scope: the consent answers {purpose} only through {broader}; "
-                           f"withdraw purpose:{broader}, or amend the consent with a signed form")
-    raise InvalidInput(f"--scope: the consent does not answer purpose {purpose}")
+        raise InvalidInput(f"the consent answers {purpose} only through {broader}; "
+                           f"withdraw purpose:{broader}, or amend the consent with a signed form",
+                           param="scope")
+    raise InvalidInput(f"the consent does not answer purpose {purpose}", param="scope")
 
 
 def _earliest_request(ctx: Context, pid: str, history: list[ConsentVersion]) -> dt.date:
@@ -176,14 +177,15 @@ def request_withdrawal(ctx: Context, pid: str, *, received: dt.date,
     ctx.require_steward("withdraw.request")
     scope = parse_scope(scope)
     if not isinstance(received, dt.date) or isinstance(received, dt.datetime):
-        raise UsageError("--received is a date (YYYY-MM-DD)")
+        raise UsageError("the date received is a date (YYYY-MM-DD)", param="received")
     if received > (now.astimezone(dt.UTC) + dt.timedelta(hours=14)).date():
-        raise UsageError("--received lies in the future")
+        raise UsageError("the date received lies in the future", param="received")
     _require_living(ctx, pid)
     history = registry.consent_history(ctx.conn, pid)
     if received < _earliest_request(ctx, pid, history):
-        raise UsageError("--received lies before the participant's consent was signed (or, "
-                         "with no consent on record, before their enrolment): check the date")
+        raise UsageError("the date received lies before the participant's consent was signed "
+                         "(or, with no consent on record, before their enrolment): check the date",
+                         param="received")
     if scope != SCOPE_FULL:
         if not history:
             raise Conflict(f"participant '{pid}' has no consent on record; request a full withdrawal")
@@ -237,8 +239,8 @@ def _resolve(ctx: Context, target: str) -> tuple[str, ...]:
     _require_living(ctx, target)
     rows = requests.requests_of(ctx.conn, target, PENDING)
     if not rows:
-        raise NotFound(f"no open withdrawal request for participant '{target}'; record one with "
-                       "'mindward withdraw request'")
+        raise NotFound(f"no open withdrawal request for participant '{target}'",
+                       hint="withdraw-request")
     full = [r for r in rows if r[2] == SCOPE_FULL]
     if full or len(rows) == 1:
         return tuple((full or rows)[0])
@@ -263,9 +265,8 @@ def process(ctx: Context, target: str, *, reclaim_space: bool = True
         raise Conflict(exc.message + _flush_note(_finish_interrupted(ctx))) from None
     if status != PENDING:
         done = _finish_interrupted(ctx, _receipt_blobs(ctx, request_id))
-        raise Conflict(f"request {request_id} was {status} already; nothing to do"
-                       + (" (see 'mindward withdraw receipt')" if status == PROCESSED else "")
-                       + _flush_note(done))
+        raise Conflict(f"request {request_id} was {status} already; nothing to do" + _flush_note(done),
+                       hint="withdraw-receipt" if status == PROCESSED else None)
     keys: list[bytes] = []
     if scope == SCOPE_FULL:
         result, blobs = _erase(ctx, pid, request_id=request_id, received=received,
