@@ -709,7 +709,7 @@ def bench(
 ) -> None:
     """Measure the vault against limits measured in the same run; prints ratios.
 
-    The benchmarks need what the library does not: pip install 'mindward[bench]'."""
+    The benchmarks need what the library does not: pip install 'mindward\\[bench]'."""
     report, text = _bench_command()(quick=quick)
     _emit(as_json, report, text)
 
