@@ -30,6 +30,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
+from tests.privacy.ratio_test import worst_ratio_pvalue
 from vault.errors import InvalidInput, UsageError, VaultError
 from vault.privacy import noise
 from vault.privacy.accountant import GAUSSIAN, noise_parameter
@@ -290,28 +291,6 @@ def test_gaussian_calibration_matches_opendp_privacy_map(
 
 
 # --------------------------------------------------------------------------- empirical privacy
-
-
-def worst_ratio_pvalue(a: np.ndarray, b: np.ndarray, epsilon: float, min_count: int) -> float:
-    """Smallest Bonferroni-corrected p-value of H0: P_a(v) <= e^eps P_b(v) (and vice versa).
-
-    With equal sample sizes, given c_a + c_b = m the count c_a is Binomial(m, pi)
-    with pi = P_a/(P_a + P_b) <= e^eps/(1 + e^eps) under H0: an exact
-    conditional test (scipy.stats.binomtest, one-sided).
-    """
-    assert a.size == b.size
-    lo, hi = int(min(a.min(), b.min())), int(max(a.max(), b.max()))
-    ca = np.bincount(a - lo, minlength=hi - lo + 1)
-    cb = np.bincount(b - lo, minlength=hi - lo + 1)
-    bins = np.flatnonzero((ca >= min_count) & (cb >= min_count))
-    pi0 = math.exp(epsilon) / (1 + math.exp(epsilon))
-    worst = 1.0
-    for j in bins:
-        m = int(ca[j] + cb[j])
-        for count in (int(ca[j]), int(cb[j])):
-            p = stats.binomtest(count, m, pi0, alternative="greater").pvalue
-            worst = min(worst, p * 2 * bins.size)
-    return worst
 
 
 def test_neighbouring_inputs_stay_within_e_to_the_epsilon() -> None:

@@ -31,6 +31,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
+from tests.privacy.ratio_test import worst_ratio_pvalue
 from vault.errors import InvalidInput, VaultError
 from vault.privacy import noise
 from vault.privacy.accountant import (
@@ -208,29 +209,6 @@ def test_missingness_pattern_is_hidden_for_the_participant_unit() -> None:
 
 
 # --------------------------------------------------------------------------- empirical privacy
-
-
-def worst_ratio_pvalue(a: np.ndarray, b: np.ndarray, epsilon: float, min_count: int) -> float:
-    """Smallest Bonferroni-corrected p-value of H0: P_a(bin) <= e^eps P_b(bin) (and back).
-
-    Given c_a + c_b = m (equal sample sizes), c_a ~ Binomial(m, pi) with
-    pi <= e^eps / (1 + e^eps) under H0: scipy.stats.binomtest, one-sided.
-    Any binning is a valid event set (pooled tails included).
-    """
-    assert a.size == b.size
-    lo = int(min(a.min(), b.min()))
-    ca = np.bincount(a - lo)
-    cb = np.bincount(b - lo, minlength=ca.size)
-    ca = np.pad(ca, (0, cb.size - ca.size))
-    bins = np.flatnonzero((ca >= min_count) & (cb >= min_count))
-    pi0 = math.exp(epsilon) / (1 + math.exp(epsilon))
-    worst = 1.0
-    for j in bins:
-        m = int(ca[j] + cb[j])
-        for count in (int(ca[j]), int(cb[j])):
-            p = stats.binomtest(count, m, pi0, alternative="greater").pvalue
-            worst = min(worst, p * 2 * bins.size)
-    return worst
 
 
 def row_codes(out: np.ndarray, lo: int, hi: int) -> np.ndarray:
