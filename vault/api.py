@@ -34,8 +34,8 @@ from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet, load_default_policy, load_policy_dir
 from vault.services.context import Context
+from vault.storage import audit_rows, counts, lineage, participants, registry
 from vault.storage import db as storage
-from vault.storage import lineage, participants, registry
 from vault.storage.db import Connection, DatabaseError
 from vault.times import iso_utc, parse_utc
 
@@ -90,9 +90,9 @@ CLOCK_ALLOWANCE = timedelta(minutes=2)
 
 
 def _newest_entry_time(conn: Connection) -> datetime:
-    row = conn.execute("SELECT entry FROM audit_log ORDER BY seq DESC LIMIT 1").fetchone()
+    raw = audit_rows.newest_entry(conn)
     try:
-        stamp = json.loads(row[0])["at"] if row else None
+        stamp = json.loads(raw)["at"] if raw is not None else None  # type: ignore[arg-type]
         return parse_utc(stamp)
     except (ValueError, TypeError, KeyError):
         return datetime.min.replace(tzinfo=UTC)
@@ -139,13 +139,13 @@ class Vault:
         """The pinned policy version, checked against its keyed tag (set by init and
         `apply_policy`; a vault from before the tag gets one now, on trust, audited at recovery)."""
         version = storage.get_meta(self._conn, "policy_version")
-        row = self._conn.execute("SELECT value FROM meta WHERE key = 'policy_pin'").fetchone()
+        pin = storage.find_meta(self._conn, "policy_pin")
         expected = self._door.policy_pin(version)
-        if row is None:
+        if pin is None:
             self._pin_added = True
             return version
         self._pin_added = False
-        if not crypto.constant_time_equal(row[0].encode(), expected.encode()):
+        if not crypto.constant_time_equal(pin.encode(), expected.encode()):
             raise IntegrityError("the pinned policy set was changed without the vault's keys; "
                                  "restore the database from a backup and tell your DPO")
         return version
@@ -787,12 +787,7 @@ def describe(path: Path) -> dict[str, Any]:
     conn = _readonly(path)
     try:
         public = bytes.fromhex(storage.get_meta(conn, "signing_public_key"))
-
-        def count(sql: str) -> int:
-            return int(conn.execute(sql).fetchone()[0])
-
-        head = conn.execute(
-            "SELECT body, signature FROM tree_heads ORDER BY tree_size DESC LIMIT 1").fetchone()
+        head = audit_rows.latest_tree_head(conn)
         return {
             "path": str(path), "vault_id": storage.get_meta(conn, "vault_id"),
             "created_at": storage.get_meta(conn, "created_at"),
@@ -800,8 +795,8 @@ def describe(path: Path) -> dict[str, Any]:
             "public_key": public.hex(), "fingerprint": crypto.fingerprint(public),
             "participants": participants.count(conn),
             "participants_erased": participants.count(conn, erased=True),
-            "blobs": count("SELECT COUNT(*) FROM blobs"),
-            "audit_entries": count("SELECT COUNT(*) FROM audit_log"),
+            "blobs": counts.rows(conn, "blobs"),
+            "audit_entries": counts.rows(conn, "audit_log"),
             "latest_tree_head": None if head is None else audit.TreeHead.from_row(*head).to_dict(),
         }
     finally:

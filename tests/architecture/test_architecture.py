@@ -334,6 +334,29 @@ def _public_name(arg: ast.expr, safe: dict[int, set[str]]) -> bool:
     return isinstance(arg, ast.Name) and arg.id in safe.get(arg.lineno, set())
 
 
+SQL_TEXT = re.compile(  # the opening of a statement, in the upper case every statement here uses
+    r"\s*(SELECT\s+\S|INSERT\s+(OR\s+[A-Z]+\s+)?INTO\s|UPDATE\s+\w+\s+SET\s|DELETE\s+FROM\s"
+    r"|REPLACE\s+INTO\s|CREATE\s+(TABLE|INDEX|UNIQUE|TRIGGER|VIEW|VIRTUAL)\s|DROP\s+(TABLE|INDEX)\s"
+    r"|ALTER\s+TABLE\s|PRAGMA\s|VACUUM\b|BEGIN\b|WITH\s+(RECURSIVE\s+)?\w+\s+AS\s*\()")
+SQL_CALLS = {"execute", "executemany", "executescript", "rows_in"}
+
+
+def check_sql(root: Path) -> list[Violation]:
+    """Every SQL statement lives in vault/storage: elsewhere no string that opens one (f-strings
+    included) and no call that runs one."""
+    found = []
+    for src in sources(root):
+        if src.room == "storage":
+            continue
+        for node in src.nodes:
+            if (isinstance(node, ast.Constant) and isinstance(node.value, str)
+                    and SQL_TEXT.match(node.value)):
+                found.append(_hit("sql", src, node, node.value.strip()[:20]))
+            elif isinstance(node, ast.Call) and _last_name(node.func) in SQL_CALLS:
+                found.append(_hit("sql", src, node, _last_name(node.func)))
+    return found
+
+
 def check_lazy_matplotlib(root: Path) -> list[Violation]:
     found = []
     for src in sources(root):
@@ -369,6 +392,7 @@ CHECKS: dict[str, Callable[[Path], list[Violation]]] = {
     "grant-minting": check_grant_minting,
     "clock": check_clock,
     "reflection": check_reflection,
+    "sql": check_sql,
     "lazy-matplotlib": check_lazy_matplotlib,
     "suppressions": check_suppressions,
 }
@@ -405,6 +429,21 @@ def test_only_api_reads_the_clock() -> None:
 
 def test_no_reflection_around_the_checks() -> None:
     assert not [str(v) for v in violations("reflection")]
+
+
+def test_every_sql_statement_lives_in_storage() -> None:
+    assert not [str(v) for v in violations("sql")], "put the statement behind a function in vault/storage"
+
+
+@pytest.mark.parametrize(("text", "is_sql"), [
+    ("SELECT wrapped_key FROM participants", True), ("  select 1", False),  # statements are upper case
+    ("INSERT OR REPLACE INTO keyslots", True), ("UPDATE participants SET x = 1", True),
+    ("DELETE FROM blobs", True), ("WITH living AS (SELECT 1)", True), ("PRAGMA journal_mode", True),
+    ("Create a new vault", False), ("REPLACE this export", False), ("Update the policy", False),
+    ("DELETE the copy", False), ("BEGINNER", False),
+])
+def test_sql_text_tells_statements_from_prose(text: str, is_sql: bool) -> None:
+    assert bool(SQL_TEXT.match(text)) is is_sql
 
 
 def test_matplotlib_is_imported_lazily_by_the_plot_only() -> None:
@@ -471,15 +510,18 @@ PLANTED = {
     "reflection": "def door(v, name):\n    return getattr(v, name)\n",
     "lazy-matplotlib": "import matplotlib\n",
     "suppressions": "def door(v):\n    return v._door  # noqa\n",
+    "sql": "def keys(conn):\n    return conn.execute(f'SELECT wrapped_key FROM participants')\n",
 }
+PLANTED_IN = {"sql": "audit"}  # a room the check watches (storage, where the others plant, is exempt)
 
 
 @pytest.mark.parametrize("check", sorted(CHECKS))
 def test_each_check_flags_its_planted_route(check: str, tmp_path: Path) -> None:
     """Guard against a vacuous check: a one-line plant in an otherwise empty package is seen."""
     root = tmp_path / "vault"
-    (root / "storage").mkdir(parents=True)
-    (root / "storage" / "planted.py").write_text(PLANTED[check])
+    room = PLANTED_IN.get(check, "storage")
+    (root / room).mkdir(parents=True)
+    (root / room / "planted.py").write_text(PLANTED[check])
     assert [v.rel for v in CHECKS[check](root)], f"{check} missed: {PLANTED[check]!r}"
     assert not CHECKS[check](tmp_path / "empty"), "an empty tree has no violations"
 

@@ -96,6 +96,17 @@ def leak(db_path, vault_id, member, passphrase, pid):
     ring = keys.KeyRing.unlock(conn, vault_id, member, passphrase, True)
     return ring.participant_key(conn, pid)
 """, "lint:sqlite", "lint:one-door", "ast:decryptors", "ast:door-imports"),
+    route("own-select-on-the-vaults-connection", """
+def leak(v, pid):
+    conn = v.describe_connection()
+    return conn.execute("SELECT wrapped_key, date_offset FROM participants WHERE pid = ?", (pid,))
+""", "ast:sql"),
+    route("own-statement-through-a-helper", """
+from vault.storage import db
+
+def leak(conn, pids):
+    return list(db.rows_in(conn, f"SELECT pid, wrapped_key FROM participants WHERE pid", pids))
+""", "ast:sql"),
     route("sqlite-readonly-and-unwrap", """
 import sqlite3
 
@@ -105,7 +116,7 @@ def leak(db_path, kek, pid):
     conn = sqlite3.connect(f"file:{db_path}?mode=ro", uri=True)
     (wrapped,) = conn.execute("SELECT wrapped_key FROM participants WHERE id = ?", (pid,)).fetchone()
     return crypto.unwrap_key(kek, wrapped)
-""", "lint:sqlite", "ast:decryptors"),
+""", "lint:sqlite", "ast:decryptors", "ast:sql"),
     route("getattr-private", """
 def leak(v):
     return getattr(v, "_door")

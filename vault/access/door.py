@@ -174,8 +174,7 @@ class Door:
             raise UsageError("this door is not bound to a vault")
         engine, audit_batch = self._engine(), self._audit
         record = engine.record(grant)
-        found: dict[str, tuple[str, str]] = {b: (p, k) for b, p, k in storage.rows_in(
-            self._conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
+        found = rows.blob_owners(self._conn, blob_ids)
         missing = [b for b in blob_ids if b not in found]
         if missing:
             raise NotFound(f"no blob '{missing[0]}'")

@@ -14,14 +14,14 @@ Destroying a participant's wrapped data key erases all of their data
 from __future__ import annotations
 
 import json
-import sqlite3
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 from vault import crypto
 from vault.crypto import sealing
-from vault.errors import AuthenticationFailed, Conflict, IntegrityError, NotFound
+from vault.errors import AuthenticationFailed, IntegrityError, NotFound
 from vault.storage import db as storage
+from vault.storage import participants, slots
 
 SLOT_FORMAT = 2
 SLOT_MASTER = "master"
@@ -84,7 +84,7 @@ class KeyRing:
         survives rekeys; stewards recompute it to check notes)."""
         return member_key_from_secret(self._secret, self.vault_id, member, role)
 
-    def _write_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+    def _write_slot(self, conn: storage.Connection, member: str, role: str, passphrase: str,
                     now: str, *, reads_data: bool, replace: bool = False) -> None:
         params = crypto.KdfParams.fresh()
         kind = SLOT_MASTER if reads_data else SLOT_MEMBER
@@ -92,31 +92,23 @@ class KeyRing:
         secret = self._master if reads_data else self.member_key(member, role)
         doc = json.dumps({"format": SLOT_FORMAT, "kind": kind, "kdf": params.as_dict()},
                          sort_keys=True)
-        verb = "INSERT OR REPLACE" if replace else "INSERT"
-        try:
-            conn.execute(
-                f"{verb} INTO keyslots (member, role, kdf, wrapped_master, created_at) "
-                "VALUES (?, ?, ?, ?, ?)", (member, role, doc, sealing.wrap_key(kek, secret), now))
-        except sqlite3.IntegrityError as exc:
-            raise Conflict(f"member '{member}' exists already") from exc
+        slots.write_slot(conn, member, role, doc, sealing.wrap_key(kek, secret), now, replace=replace)
 
-    def add_slot(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+    def add_slot(self, conn: storage.Connection, member: str, role: str, passphrase: str,
                  now: str, *, reads_data: bool = True) -> None:
         self._write_slot(conn, member, role, passphrase, now, reads_data=reads_data)
 
     @classmethod
-    def unlock(cls, conn: sqlite3.Connection, vault_id: str, member: str, passphrase: str,
+    def unlock(cls, conn: storage.Connection, vault_id: str, member: str, passphrase: str,
                reads_data: Callable[[str], bool]) -> Unlocked:
         """Check a member's passphrase against their slot.
 
         Returns the key ring for members whose role reads data, and only the member key
         for the others. A wrong passphrase and an edited slot fail alike."""
-        row = conn.execute(
-            "SELECT kdf, wrapped_master, role, created_at FROM keyslots WHERE member = ?",
-            (member,)).fetchone()
+        row = slots.slot(conn, member)
         if row is None:
             raise AuthenticationFailed(f"no member '{member}' in this vault")
-        doc, wrapped, role, created = json.loads(row[0]), row[1], str(row[2]), str(row[3])
+        doc, wrapped, role, created = json.loads(row[0]), row[1], row[2], row[3]
         if "format" not in doc:  # legacy slot: the bare passphrase key wraps the master key
             params = crypto.KdfParams.from_dict(doc)
             master = sealing.unwrap_master(crypto.passphrase_key(passphrase, params), wrapped)
@@ -155,21 +147,18 @@ class KeyRing:
             commitment=crypto.key_commitment(key, self.vault_id.encode(), pid.encode()),
         )
 
-    def participant_key(self, conn: sqlite3.Connection, pid: str) -> bytes:
+    def participant_key(self, conn: storage.Connection, pid: str) -> bytes:
         """The data key of a participant. Callers: the blob store only."""
-        row = conn.execute(
-            "SELECT wrapped_key FROM participants WHERE pid = ?", (pid,)
-        ).fetchone()
-        if row is None:
+        found, wrapped = participants.wrapped_key(conn, pid)
+        if not found:
             raise NotFound(f"no participant '{pid}'")
-        return self._unwrap_participant_key(pid, row[0])
+        return self._unwrap_participant_key(pid, wrapped)
 
-    def participant_keys(self, conn: sqlite3.Connection, pids: Iterable[str]) -> dict[str, bytes]:
+    def participant_keys(self, conn: storage.Connection, pids: Iterable[str]) -> dict[str, bytes]:
         """The data keys of many participants, unwrapped in one pass. Caller: `Vault.read_blobs`,
         after the policy engine admitted the reads."""
         wanted = sorted(set(pids))
-        rows: dict[str, bytes | None] = dict(storage.rows_in(
-            conn, "SELECT pid, wrapped_key FROM participants WHERE pid", wanted))
+        rows = participants.wrapped_keys(conn, wanted)
         out = {}
         for pid in wanted:
             if pid not in rows:
@@ -187,24 +176,23 @@ class KeyRing:
                 f"the data key of participant '{pid}' failed its integrity check"
             ) from exc
 
-    def date_offset(self, conn: sqlite3.Connection, pid: str) -> int | None:
+    def date_offset(self, conn: storage.Connection, pid: str) -> int | None:
         """The participant's secret date shift in days, or None before their first recording.
 
         Stored only wrapped under a key derived from their data key (gone when they are erased).
         """
-        row = conn.execute("SELECT date_offset FROM participants WHERE pid = ?", (pid,)).fetchone()
-        if row is None or row[0] is None:
+        wrapped = participants.wrapped_date_offset(conn, pid)
+        if wrapped is None:
             return None
         kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
-        return int.from_bytes(sealing.unwrap_key_padded(kek, row[0]), "big", signed=True)
+        return int.from_bytes(sealing.unwrap_key_padded(kek, wrapped), "big", signed=True)
 
-    def store_date_offset(self, conn: sqlite3.Connection, pid: str, days: int) -> None:
+    def store_date_offset(self, conn: storage.Connection, pid: str, days: int) -> None:
         kek = crypto.derive_key(self.participant_key(conn, pid), "date-offset-wrap")
         wrapped = sealing.wrap_key_padded(kek, days.to_bytes(8, "big", signed=True))
-        conn.execute("UPDATE participants SET date_offset = ? WHERE pid = ? AND date_offset IS NULL",
-                     (wrapped, pid))
+        participants.set_wrapped_date_offset(conn, pid, wrapped)
 
-    def participant_tag(self, conn: sqlite3.Connection, pid: str, label: str, message: bytes) -> str:
+    def participant_tag(self, conn: storage.Connection, pid: str, label: str, message: bytes) -> str:
         """HMAC under the participant's own data key: links their rows, dies with their key."""
         key = crypto.derive_key(self.participant_key(conn, pid), label)
         return crypto.hmac_sha256(key, message).hex()
@@ -255,7 +243,7 @@ class KeyRing:
 
     # -- rekey ----------------------------------------------------------------------------------
 
-    def rekeyed(self, conn: sqlite3.Connection, member: str, role: str, passphrase: str,
+    def rekeyed(self, conn: storage.Connection, member: str, role: str, passphrase: str,
                 wrapped_signing: bytes, now: str) -> tuple[KeyRing, bytes, bytes]:
         """Re-wrap every key under a fresh master key (inside the caller's transaction).
 
@@ -266,16 +254,10 @@ class KeyRing:
         fresh = KeyRing(self.vault_id, crypto.new_key())
         fresh._secret = self._secret
         signing = self.signing_key(wrapped_signing)
-        rows = conn.execute(
-            "SELECT pid, wrapped_key FROM participants WHERE wrapped_key IS NOT NULL"
-        ).fetchall()
-        for pid, wrapped in rows:
+        for pid, wrapped in participants.living_wrapped_keys(conn):
             key = sealing.unwrap_key(self._participant_kek(pid), wrapped)
-            conn.execute(
-                "UPDATE participants SET wrapped_key = ? WHERE pid = ?",
-                (sealing.wrap_key(fresh._participant_kek(pid), key), pid),
-            )
-        conn.execute("DELETE FROM keyslots WHERE kdf NOT LIKE ?", (f'%"kind": "{SLOT_MEMBER}"%',))
-        conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+            participants.set_wrapped_key(conn, pid, sealing.wrap_key(fresh._participant_kek(pid), key))
+        slots.drop_slots_except_kind(conn, SLOT_MEMBER)
+        slots.drop_slot(conn, member)
         fresh._write_slot(conn, member, role, passphrase, now, reads_data=True)
         return fresh, fresh.wrap_signing_key(signing), fresh.wrap_secret(self._secret)

@@ -11,7 +11,6 @@ participant ids, decision and reasons, never names or data values.
 from __future__ import annotations
 
 import json
-import sqlite3
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -20,7 +19,8 @@ from vault import crypto
 from vault.audit import merkle
 from vault.errors import IntegrityError, NotFound, UsageError
 from vault.formats import strictjson
-from vault.storage.db import get_meta
+from vault.storage import audit_rows
+from vault.storage.db import Connection, find_meta, get_meta
 
 HEAD_DOMAIN = "tree-head"
 FLAG_ACTION = "audit.unauthenticated"
@@ -153,7 +153,7 @@ class AuditLog:
     read-only (proofs, entries).
     """
 
-    def __init__(self, conn: sqlite3.Connection, vault_id: str,
+    def __init__(self, conn: Connection, vault_id: str,
                  signer: crypto.SigningKey | None = None,
                  stamp: Callable[[], str] | None = None) -> None:
         self.conn = conn
@@ -168,8 +168,7 @@ class AuditLog:
     # -- state --------------------------------------------------------------------------------
 
     def _db_size(self) -> int:
-        row = self.conn.execute("SELECT MAX(seq) FROM audit_log").fetchone()
-        return 0 if row[0] is None else row[0] + 1
+        return audit_rows.size(self.conn)
 
     @property
     def size(self) -> int:
@@ -178,8 +177,8 @@ class AuditLog:
 
     def current_head(self) -> TreeHead | None:
         """The head the latest write transaction signed (not checked here)."""
-        row = self.conn.execute("SELECT value FROM meta WHERE key = ?", (_HEAD_KEY,)).fetchone()
-        return None if row is None else TreeHead.from_dict(json.loads(row[0]))
+        text = find_meta(self.conn, _HEAD_KEY)
+        return None if text is None else TreeHead.from_dict(json.loads(text))
 
     def _ready(self, at: str) -> merkle.CompactRange:
         """The frontier of the whole log under the stored current head, flagging rows first.
@@ -193,10 +192,7 @@ class AuditLog:
                              "and cannot be appended to")
         if not self.conn.in_transaction:
             raise UsageError("audit entries are appended inside a write transaction")
-        size, head_text = self.conn.execute(
-            "SELECT (SELECT MAX(seq) FROM audit_log), (SELECT value FROM meta WHERE key = ?)",
-            (_HEAD_KEY,)).fetchone()
-        size = 0 if size is None else size + 1
+        size, head_text = audit_rows.size_and_meta(self.conn, _HEAD_KEY)
         cache = self._cache
         if cache is None or cache.size != size or head_text != self._head_text:
             self._reconcile(at)
@@ -219,9 +215,9 @@ class AuditLog:
         return sorted(heads, key=lambda h: h.tree_size, reverse=True)
 
     def _stored_frontier(self) -> merkle.CompactRange | None:
-        row = self.conn.execute("SELECT value FROM meta WHERE key = ?", (_FRONTIER_KEY,)).fetchone()
+        text = find_meta(self.conn, _FRONTIER_KEY)
         try:
-            return None if row is None else merkle.CompactRange.from_bytes(bytes.fromhex(row[0]))
+            return None if text is None else merkle.CompactRange.from_bytes(bytes.fromhex(text))
         except (IntegrityError, ValueError):
             return None
 
@@ -238,8 +234,7 @@ class AuditLog:
         best: tuple[merkle.CompactRange, Ranges] = (merkle.CompactRange(), ())
         frontier = merkle.CompactRange()
         top = max(by_size, default=0)
-        for seq, leaf in self.conn.execute(
-                "SELECT seq, leaf_hash FROM audit_log WHERE seq < ? ORDER BY seq", (top,)):
+        for seq, leaf in audit_rows.leaf_rows_below(self.conn, top):
             if seq != frontier.size or type(leaf) is not bytes or len(leaf) != merkle.HASH_SIZE:
                 break
             frontier.append(leaf)
@@ -250,8 +245,7 @@ class AuditLog:
 
     def _reconcile(self, at: str) -> None:
         """Line the cache up with the signed heads; flag rows no head covers."""
-        head_row = self.conn.execute(
-            "SELECT value FROM meta WHERE key = ?", (_HEAD_KEY,)).fetchone()
+        head_text = find_meta(self.conn, _HEAD_KEY)
         size = self._db_size()
         frontier, self._ranges = self._signed_prefix(self._signed_heads())
         covered = frontier.size
@@ -260,12 +254,12 @@ class AuditLog:
                 f"audit entries {size}..{covered - 1} are missing although a signed tree head "
                 "covers them: the log was truncated; restore the vault from a backup and verify "
                 "its audit log", hint="verify-audit")
-        self._cache, self._head_text = frontier, None if head_row is None else head_row[0]
+        self._cache, self._head_text = frontier, head_text
         if covered == size:
             return
         # the tree commits to the rows as stored, whatever their leaf_hash column claims
-        leaves = [crypto.merkle_leaf_hash(_stored_bytes(r[0])) for r in self.conn.execute(
-            "SELECT entry FROM audit_log WHERE seq >= ? ORDER BY seq", (covered,))]
+        leaves = [crypto.merkle_leaf_hash(_stored_bytes(raw))
+                  for raw in audit_rows.entries_from(self.conn, covered)]
         if len(leaves) != size - covered:
             raise IntegrityError(f"the audit log has a gap before entry {size - 1} (rows out of "
                                  "sequence): it cannot be extended", hint="verify-audit")
@@ -315,9 +309,7 @@ class AuditLog:
             rows.append((seq, raw, leaf))
         if not rows:
             return []
-        self.conn.executemany(
-            "INSERT INTO audit_log (seq, entry, leaf_hash) VALUES (?, ?, ?)", rows
-        )
+        audit_rows.insert_rows(self.conn, rows)
         head = self._sign(frontier, self._signer, at)
         self._store_current(frontier, head)
         return [r[0] for r in rows]
@@ -330,10 +322,8 @@ class AuditLog:
 
     def _store_current(self, frontier: merkle.CompactRange, head: TreeHead) -> None:
         text = canonical_json(head.to_dict()).decode("ascii")
-        self.conn.execute(  # both rows in one statement: this runs in every write transaction
-            "INSERT INTO meta (key, value) VALUES (?, ?), (?, ?) "
-            "ON CONFLICT(key) DO UPDATE SET value = excluded.value",
-            (_FRONTIER_KEY, frontier.to_bytes().hex(), _HEAD_KEY, text))
+        audit_rows.set_meta_pair(self.conn, (_FRONTIER_KEY, frontier.to_bytes().hex()),
+                                 (_HEAD_KEY, text))
         self._cache, self._head_text = frontier, text
 
     def sign_head(self, key: crypto.SigningKey, at: str) -> TreeHead:
@@ -344,32 +334,21 @@ class AuditLog:
         frontier = self._ready(at)
         head = self._sign(frontier, key, at)
         self._store_current(frontier, head)
-        self.conn.execute(
-            "INSERT OR IGNORE INTO tree_heads (tree_size, body, signature) VALUES (?, ?, ?)",
-            (head.tree_size, head.body(), head.signature),
-        )
+        audit_rows.insert_tree_head(self.conn, head.tree_size, head.body(), head.signature)
         return self.latest_head() or head
 
     def latest_head(self) -> TreeHead | None:
-        row = self.conn.execute(
-            "SELECT body, signature FROM tree_heads ORDER BY tree_size DESC LIMIT 1"
-        ).fetchone()
-        return None if row is None else TreeHead.from_row(row[0], row[1])
+        row = audit_rows.latest_tree_head(self.conn)
+        return None if row is None else TreeHead.from_row(*row)
 
     def entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
-        rows = self.conn.execute(
-            "SELECT entry FROM audit_log WHERE seq >= ? ORDER BY seq LIMIT ?",
-            (start, -1 if limit is None else limit),
-        )
-        return [decode_entry(r[0]) for r in rows]
+        return [decode_entry(raw) for raw in audit_rows.entries_from(self.conn, start, limit)]
 
     def _leaf_hashes(self, size: int) -> list[bytes]:
-        rows = self.conn.execute(
-            "SELECT leaf_hash FROM audit_log WHERE seq < ? ORDER BY seq", (size,)
-        ).fetchall()
-        if len(rows) != size:
+        leaves = audit_rows.leaf_hashes_below(self.conn, size)
+        if len(leaves) != size:
             raise IntegrityError("the audit log is shorter than its signed tree head")
-        return [r[0] for r in rows]
+        return leaves
 
     def inclusion_bundle(self, seq: int) -> dict[str, Any]:
         """Entry `seq`, its inclusion proof and the signed head it is proven against."""
@@ -379,10 +358,10 @@ class AuditLog:
         if not head.vouches_for(seq):
             raise IntegrityError(f"audit entry {seq} was written without the vault's key "
                                  "(flagged): there is no proof to give")
-        row = self.conn.execute("SELECT entry FROM audit_log WHERE seq = ?", (seq,)).fetchone()
+        raw = audit_rows.entry_at(self.conn, seq)
         proof = merkle.inclusion_proof(self._leaf_hashes(head.tree_size), seq)
         return {
-            "entry": row[0].decode("ascii"), "leaf_index": seq,
+            "entry": _stored_bytes(raw).decode("ascii"), "leaf_index": seq,
             "proof": [p.hex() for p in proof], "tree_head": head.to_dict(),
         }
 
@@ -435,12 +414,12 @@ def verify_inclusion_bundle(bundle: Mapping[str, Any], public_key: bytes) -> boo
         crypto.merkle_leaf_hash(entry), index, head.tree_size, proof, head.root_hash)
 
 
-def _stored_current_head(conn: sqlite3.Connection) -> TreeHead | None:
-    row = conn.execute("SELECT value FROM meta WHERE key = ?", (_HEAD_KEY,)).fetchone()
-    if row is None:
+def _stored_current_head(conn: Connection) -> TreeHead | None:
+    text = find_meta(conn, _HEAD_KEY)
+    if text is None:
         return None
     try:
-        return TreeHead.from_dict(json.loads(row[0]))
+        return TreeHead.from_dict(json.loads(text))
     except (ValueError, TypeError, AttributeError) as exc:
         raise IntegrityError("the current tree head is malformed") from exc
 
@@ -460,7 +439,7 @@ def _flag_of(seq: int, raw: bytes) -> dict[str, Any] | None:
         return {"first": None, "last": None, "flagged_at": seq}
 
 
-def verify_log(conn: sqlite3.Connection, public_key: bytes,
+def verify_log(conn: Connection, public_key: bytes,
                trusted: Sequence[TreeHead] = ()) -> VerifyReport:
     """Recompute every leaf and every signed root; needs no passphrase.
 
@@ -471,8 +450,7 @@ def verify_log(conn: sqlite3.Connection, public_key: bytes,
     longer contains them, or whose prefix hashes differently, fails.
     """
     vault_id = get_meta(conn, "vault_id")
-    heads = [TreeHead.from_row(b, s) for b, s in conn.execute(
-        "SELECT body, signature FROM tree_heads ORDER BY tree_size")]
+    heads = [TreeHead.from_row(b, s) for b, s in audit_rows.tree_heads(conn)]
     checks: dict[int, list[tuple[str, TreeHead]]] = {}
     for head in heads:
         checks.setdefault(head.tree_size, []).append(("signed tree head", head))
@@ -519,7 +497,7 @@ def verify_log(conn: sqlite3.Connection, public_key: bytes,
             return report
         next_check = pending.pop(0) if pending else -1
     mark = _FLAG_MARK
-    rows = conn.execute("SELECT seq, entry, leaf_hash FROM audit_log ORDER BY seq")
+    rows = audit_rows.all_rows(conn)
     try:
         for seq, raw, stored in rows:
             if seq != expected:

@@ -11,13 +11,12 @@ as rejected, without its claims), then deletes the notes in the same transaction
 from __future__ import annotations
 
 import json
-import sqlite3
 from collections.abc import Callable
 from typing import Any, Protocol
 
 from vault import crypto
-
-TABLE = "member_notes"
+from vault.storage import notes as stored_notes
+from vault.storage.db import Connection
 
 
 class _Member(Protocol):
@@ -30,22 +29,20 @@ def _body(vault_id: str, fields: dict[str, Any]) -> bytes:
                       separators=(",", ":"), ensure_ascii=True).encode()
 
 
-def add(conn: sqlite3.Connection, vault_id: str, member: str, unlocked: _Member, action: str,
+def add(conn: Connection, vault_id: str, member: str, unlocked: _Member, action: str,
         decision: str, at: str, **details: Any) -> None:
     """Record a note by `member` (authenticated by the member key they unlocked)."""
     body = _body(vault_id, {"member": member, "role": unlocked.role, "action": action,
                             "decision": decision, "at": at, "details": details,
                             "nonce": crypto.random_id(8)})
-    conn.execute(f"INSERT INTO {TABLE} (body, mac) VALUES (?, ?)",  # noqa: S608
-                 (body, crypto.hmac_sha256(unlocked.member_key, body)))
+    stored_notes.add(conn, body, crypto.hmac_sha256(unlocked.member_key, body))
 
 
-def fold(conn: sqlite3.Connection, vault_id: str,
+def fold(conn: Connection, vault_id: str,
          member_key: Callable[[str, str], bytes]) -> list[dict[str, Any]]:
     """Audit entries for every stored note; checked notes keep their claims."""
     entries: list[dict[str, Any]] = []
-    rows = conn.execute(f"SELECT id, body, mac FROM {TABLE} ORDER BY id").fetchall()  # noqa: S608
-    for _, body, mac in rows:
+    for body, mac in stored_notes.all_notes(conn):
         try:
             note = json.loads(body)
             ok = (isinstance(note, dict) and note.get("vault_id") == vault_id
@@ -65,5 +62,5 @@ def fold(conn: sqlite3.Connection, vault_id: str,
     return entries
 
 
-def clear(conn: sqlite3.Connection) -> None:
-    conn.execute(f"DELETE FROM {TABLE}")  # noqa: S608
+def clear(conn: Connection) -> None:
+    stored_notes.clear(conn)

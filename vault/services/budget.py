@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, Any
 
 from vault.errors import PolicyRefusal, UsageError
 from vault.privacy.accountant import Budget, Cost, Ledger, remaining_epsilon, spent_epsilon, within
+from vault.storage import budget_ledger, participants
 from vault.storage import db as storage
 from vault.times import iso_utc
 
@@ -77,11 +78,7 @@ def _ledgers(ctx: Context, purpose: str, pids: Sequence[str] | None = None,
             memo: _Memo | None = None) -> dict[str, Ledger]:
     """Stored ledgers for `purpose` (all rows, or those of `pids`); absent means nothing spent."""
     parse = (memo or _Memo()).ledger
-    sql = "SELECT pid, epsilon, rho, releases FROM budget_ledger WHERE purpose = ?"
-    if pids is None:
-        return {pid: parse(e, r, n) for pid, e, r, n in ctx.conn.execute(sql, (purpose,))}
-    rows = storage.rows_in(ctx.conn, sql + " AND pid", pids, (purpose,))
-    return {pid: parse(e, r, n) for pid, e, r, n in rows}
+    return {pid: parse(e, r, n) for pid, e, r, n in budget_ledger.rows(ctx.conn, purpose, pids)}
 
 
 def _chain_ledgers(ctx: Context, purpose: str, pids: Sequence[str],
@@ -147,10 +144,7 @@ def charge_in_transaction(ctx: Context, purpose: str, costs: Mapping[str, Cost],
                 spent = old.spend(cost)
                 known = after[(old, cost)] = (str(spent.epsilon), str(spent.rho), spent.releases)
             updates.append((pid, name, *known))
-    ctx.conn.executemany(
-        "INSERT INTO budget_ledger (pid, purpose, epsilon, rho, releases) VALUES (?, ?, ?, ?, ?) "
-        "ON CONFLICT(pid, purpose) DO UPDATE SET epsilon = excluded.epsilon, "
-        "rho = excluded.rho, releases = excluded.releases", updates)
+    budget_ledger.upsert(ctx.conn, updates)
     entries, ordered = [], sorted(pids)
     for start in range(0, max(len(ordered), 1), _AUDIT_CHUNK):
         chunk = ordered[start : start + _AUDIT_CHUNK]
@@ -185,9 +179,8 @@ def refund_in_transaction(ctx: Context, purpose: str, purposes: Sequence[str],
                 gone.append((pid, name))
             else:
                 updates.append((str(epsilon), str(rho), releases, pid, name))
-    ctx.conn.executemany("UPDATE budget_ledger SET epsilon = ?, rho = ?, releases = ? "
-                        "WHERE pid = ? AND purpose = ?", updates)
-    ctx.conn.executemany("DELETE FROM budget_ledger WHERE pid = ? AND purpose = ?", gone)
+    budget_ledger.set_totals(ctx.conn, updates)
+    budget_ledger.delete(ctx.conn, gone)
     ordered = sorted(costs)
     ctx.audit.append_many([
         {"actor": ctx.member, "action": "budget.refund", "purpose": purpose,
@@ -211,8 +204,7 @@ def budget_report(ctx: Context, purpose: str | None = None, *,
     names = [purpose] if purpose is not None else sorted(ctx.policy.purposes)
     if purpose is not None and purpose not in ctx.policy.purposes:
         raise UsageError(f"unknown purpose '{purpose}'")
-    living = [r[0] for r in ctx.conn.execute(
-        "SELECT pid FROM participants WHERE wrapped_key IS NOT NULL ORDER BY pid")]
+    living = participants.living_pids(ctx.conn)
     out: list[dict[str, Any]] = []
     for name in names:
         cap = ctx.policy.purposes[name].epsilon_per_participant

@@ -8,11 +8,13 @@ _COUNTS = {
     "participants": "SELECT COUNT(*) FROM participants",
     "recordings": "SELECT COUNT(*) FROM recordings",
     "score_batches": "SELECT COUNT(*) FROM score_batches",
+    "blobs": "SELECT COUNT(*) FROM blobs",
+    "audit_log": "SELECT COUNT(*) FROM audit_log",
 }
 
 
 def rows(conn: sqlite3.Connection, table: str) -> int:
-    """How many rows `table` holds (participants, recordings or score_batches)."""
+    """How many rows `table` holds (participants, recordings, score_batches, blobs, audit_log)."""
     return int(conn.execute(_COUNTS[table]).fetchone()[0])
 
 

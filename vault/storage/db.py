@@ -263,6 +263,12 @@ def get_meta(conn: sqlite3.Connection, key: str) -> str:
     return str(row[0])
 
 
+def find_meta(conn: sqlite3.Connection, key: str) -> str | None:
+    """A meta value, or None where it is not set."""
+    row = conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+    return None if row is None else str(row[0])
+
+
 def set_meta(conn: sqlite3.Connection, key: str, value: str) -> None:
     conn.execute(
         "INSERT INTO meta (key, value) VALUES (?, ?) "

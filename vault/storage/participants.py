@@ -5,6 +5,8 @@ from __future__ import annotations
 import sqlite3
 from typing import Any
 
+from vault.storage.db import rows_in
+
 BLOB_COLUMNS = ("blob_id", "pid", "kind", "plain_size", "stored_size", "created_at")
 
 
@@ -60,3 +62,47 @@ def living_blobs(conn: sqlite3.Connection) -> list[tuple[str, str, int]]:
 
 def count_other_slots(conn: sqlite3.Connection, member: str) -> int:
     return int(conn.execute("SELECT COUNT(*) FROM keyslots WHERE member != ?", (member,)).fetchone()[0])
+
+
+def wrapped_key(conn: sqlite3.Connection, pid: str) -> tuple[bool, bytes | None]:
+    """(the participant exists, their wrapped data key or None once erased)."""
+    row = conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (pid,)).fetchone()
+    return (False, None) if row is None else (True, row[0])
+
+
+def wrapped_keys(conn: sqlite3.Connection, pids: list[str]) -> dict[str, bytes | None]:
+    """pid -> wrapped data key (None once erased) of those of `pids` that exist."""
+    return dict(rows_in(conn, "SELECT pid, wrapped_key FROM participants WHERE pid", pids))
+
+
+def living_wrapped_keys(conn: sqlite3.Connection) -> list[tuple[str, bytes]]:
+    """(pid, wrapped data key) of every participant not erased."""
+    return [(str(p), bytes(w)) for p, w in conn.execute(
+        "SELECT pid, wrapped_key FROM participants WHERE wrapped_key IS NOT NULL").fetchall()]
+
+
+def set_wrapped_key(conn: sqlite3.Connection, pid: str, wrapped: bytes) -> None:
+    conn.execute("UPDATE participants SET wrapped_key = ? WHERE pid = ?", (wrapped, pid))
+
+
+def wrapped_date_offset(conn: sqlite3.Connection, pid: str) -> bytes | None:
+    row = conn.execute("SELECT date_offset FROM participants WHERE pid = ?", (pid,)).fetchone()
+    return None if row is None or row[0] is None else bytes(row[0])
+
+
+def set_wrapped_date_offset(conn: sqlite3.Connection, pid: str, wrapped: bytes) -> None:
+    """Only the first shift is kept: a later one would move the participant's dates."""
+    conn.execute("UPDATE participants SET date_offset = ? WHERE pid = ? AND date_offset IS NULL",
+                 (wrapped, pid))
+
+
+def living_pids(conn: sqlite3.Connection) -> list[str]:
+    """Every participant not erased, sorted."""
+    return [str(r[0]) for r in conn.execute(
+        "SELECT pid FROM participants WHERE wrapped_key IS NOT NULL ORDER BY pid")]
+
+
+def blob_owners(conn: sqlite3.Connection, blob_ids: list[str]) -> dict[str, tuple[str, str]]:
+    """blob_id -> (pid, kind) of those of `blob_ids` that exist."""
+    return {str(b): (str(p), str(k)) for b, p, k in rows_in(
+        conn, "SELECT blob_id, pid, kind FROM blobs WHERE blob_id", blob_ids)}
