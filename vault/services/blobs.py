@@ -39,7 +39,7 @@ def put_blob(ctx: Context, pid: str, kind: str, chunks: Iterable[bytes], *,
             participants.insert_blob(ctx.conn, info, at)
             ctx.audit.append({"actor": ctx.member, "action": "blob.store", "subjects": [pid],
                               "decision": "done",
-                              "details": {"blob": info.blob_id, "kind": kind, **(details or {})}},
+                              "details": {**(details or {}), "blob": info.blob_id, "kind": kind}},
                              at)
     except BaseException:
         ctx.door.discard(info.blob_id)
