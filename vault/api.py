@@ -30,7 +30,7 @@ from vault.formats import strictjson
 from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet, load_default_policy, load_policy_dir
-from vault.services import blobs, consent, members, policy_apply, rekeying
+from vault.services import auditing, blobs, consent, members, policy_apply, rekeying
 from vault.services.context import Context
 from vault.services.members import check_member_name, check_passphrase, reads_data
 from vault.storage import db as storage
@@ -579,28 +579,14 @@ class Vault:
 
     def verify(self, *, trusted: list[audit.TreeHead] | None = None) -> dict[str, Any]:
         """Check the audit log and authenticate every stored blob (no plaintext leaves)."""
-        self._require_steward("vault.verify")
-        report = audit.verify_log(self._conn, self.public_key, trusted or [])
-        checked, bad = self._door.authenticate_all()
-        return {"audit": report.as_dict(), "blobs_checked": checked, "blobs_failed": bad,
-                "ok": report.ok and not bad}
+        return auditing.verify(self._context(), trusted)
 
     def audit_entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
         """Entries of the log, for roles the policy set lets read it (audited)."""
-        role = self.policy.roles.get(self.role)
-        if role is None or not role.reads_audit:
-            self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "refuse",
-                                "reasons": ["role-not-allowed"], "details": {"role": self.role}}])
-            raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not read the audit log")
-        entries = self._audit.entries(start, limit)
-        self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "done",
-                            "details": {"start": start, "entries": len(entries)}}])
-        return entries
+        return auditing.audit_entries(self._context(), start, limit)
 
     def sign_head(self) -> audit.TreeHead:
-        self._require_steward("audit.head")
-        with storage.transaction(self._conn):
-            return self._audit.sign_head(self._signing, self._stamp())
+        return auditing.sign_head(self._context())
 
 
 

@@ -33,6 +33,8 @@ CALLS = [
     ("blobs", (), "blobs.list"),
     ("readable", ("{pid}",), "participant.readable"),
     ("export_members", ("x",), "export.members"),
+    ("verify", (), "vault.verify"),
+    ("sign_head", (), "audit.head"),
 ]
 
 
