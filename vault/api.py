@@ -354,10 +354,6 @@ class Vault:
 
     # -- participants and blobs -----------------------------------------------------------------
 
-    def _require_steward(self, action: str = "steward-only") -> None:
-        """Refuse (audited) unless this member is a steward."""
-        self._context().require_steward(action)
-
     def _refuse_role(self, action: str) -> None:
         self._context().refuse_role(action)
 
