@@ -5,10 +5,9 @@ from __future__ import annotations
 import fcntl
 import json
 import os
-import re
 import shutil
 import time
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
@@ -23,24 +22,23 @@ from vault.audit import notes
 from vault.errors import (
     Conflict,
     IntegrityError,
-    InvalidInput,
     NotFound,
     PolicyRefusal,
     UsageError,
 )
 from vault.formats import strictjson
-from vault.policy.consent import parse_consent_form, record_consent, split_identity
 from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet, load_default_policy, load_policy_dir
+from vault.services import auditing, blobs, consent, members, policy_apply, rekeying
 from vault.services.context import Context
-from vault.storage import audit_rows, counts, lineage, participants, registry
+from vault.services.members import check_member_name, check_passphrase, reads_data
+from vault.storage import audit_rows, counts, participants, registry
 from vault.storage import db as storage
 from vault.storage.db import Connection, DatabaseError
 from vault.times import iso_utc, parse_utc
 
 LOCK_NAME = "lock"
-_MEMBER_NAME = re.compile(r"[A-Za-z0-9._-]{1,40}")
 _LOCK_WAIT_S = 10.0
 
 
@@ -96,16 +94,6 @@ def _newest_entry_time(conn: Connection) -> datetime:
         return parse_utc(stamp)
     except (ValueError, TypeError, KeyError):
         return datetime.min.replace(tzinfo=UTC)
-
-
-def _reads_data(policy: PolicySet) -> Callable[[str], bool]:
-    """Which roles get a key slot that opens participant data (stewards always)."""
-    return lambda role: role == "steward" or (role in policy.roles and policy.roles[role].reads_data)
-
-
-def _check_passphrase(passphrase: str) -> None:
-    if len(passphrase) < 12:
-        raise UsageError("choose a passphrase of at least 12 characters")
 
 
 class Vault:
@@ -209,9 +197,8 @@ class Vault:
         The policy set (the shipped default, or `policy_dir`) is validated and pinned
         in the vault; later changes go through `apply_policy`.
         """
-        _check_passphrase(passphrase)
-        if not _MEMBER_NAME.fullmatch(member):
-            raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
+        check_passphrase(passphrase)
+        check_member_name(member)
         policy = load_policy_dir(Path(policy_dir)) if policy_dir else load_default_policy()
         path = Path(path)
         if path.exists() and any(path.iterdir()):
@@ -270,7 +257,7 @@ class Vault:
             storage.add_missing_tables(conn)
             storage.add_missing_columns(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
-            unlocked = access.unlock(conn, path, vault_id, member, passphrase, _reads_data(policy))
+            unlocked = access.unlock(conn, path, vault_id, member, passphrase, reads_data(policy))
             if unlocked.door is None:
                 notes.add(conn, vault_id, member, unlocked, "vault.open", "refuse",
                           iso_utc(moment(clock)))
@@ -280,7 +267,7 @@ class Vault:
             vault = cls(path, conn, unlocked, member, lock_fd, clock)
             vault._check_audit()
             with storage.transaction(conn):
-                tagged = vault._check_consent_heads()
+                tagged = consent.check_consent_heads(vault._context())
                 if tagged:
                     vault._audit.append_many(tagged, vault._stamp())
         except BaseException:
@@ -363,74 +350,29 @@ class Vault:
 
     def rekey(self, new_passphrase: str) -> dict[str, Any]:
         """New master key and new passphrase for this member; re-wraps keys, never data."""
-        self._require_steward("vault.rekey")
-        _check_passphrase(new_passphrase)
-        at = self._stamp()
-        with storage.transaction(self._conn):
-            others = participants.count_other_slots(self._conn, self.member)
-            swap = self._door.rekey(self.member, self.role, new_passphrase, at)
-            count = participants.count(self._conn)
-            self._audit.append({"actor": self.member, "action": "vault.rekey", "decision": "done",
-                                "details": {"keys_rewrapped": count, "slots_dropped": others}}, at)
-        swap()
-        return {"keys_rewrapped": count, "member_slots_dropped": others}
+        return rekeying.rekey(self._context(), new_passphrase)
 
     # -- participants and blobs -----------------------------------------------------------------
-
-    def _require_steward(self, action: str = "steward-only") -> None:
-        """Refuse (audited) unless this member is a steward."""
-        self._context().require_steward(action)
 
     def _refuse_role(self, action: str) -> None:
         self._context().refuse_role(action)
 
     def new_participant(self) -> str:
         """Create a participant with a fresh data key; returns their random id."""
-        self._require_steward("participant.create")
-        at = self._stamp()
-        pid = crypto.random_id(16)
-        key = self._door.new_participant(pid)
-        with storage.transaction(self._conn):
-            participants.insert_participant(self._conn, pid, key.wrapped, key.commitment, at)
-            self._audit.append({"actor": self.member, "action": "participant.create",
-                                "subjects": [pid], "decision": "done"}, at)
-        return pid
+        return blobs.new_participant(self._context())
 
     def put_blob(self, pid: str, kind: str, chunks: Iterable[bytes], *,
                  details: dict[str, Any] | None = None) -> BlobInfo:
         """Encrypt and store a blob for `pid`: file first, then row and audit entry at once."""
-        self._require_steward("blob.store")
-        at = self._stamp()
-        info = self._door.write_blob(pid, kind, chunks)
-        blob_id = info.blob_id
-        try:
-            with storage.transaction(self._conn):
-                participants.insert_blob(self._conn, info, at)
-                self._audit.append({"actor": self.member, "action": "blob.store",
-                                    "subjects": [pid], "decision": "done",
-                                    "details": {"blob": blob_id, "kind": kind, **(details or {})}},
-                                   at)
-        except BaseException:
-            self._door.discard(blob_id)
-            raise
-        return info
+        return blobs.put_blob(self._context(), pid, kind, chunks, details=details)
 
     # -- policy, enrolment and consent -----------------------------------------------------------
 
     def apply_policy(self, policy_dir: Path) -> dict[str, Any]:
         """Pin a new policy set (validated first); consent already given is not changed."""
-        self._require_steward("policy.apply")
-        policy = load_policy_dir(Path(policy_dir))
-        at = self._stamp()
-        previous = self.policy.version
-        with storage.transaction(self._conn):
-            new = registry.store_policy(self._conn, policy, at)
-            storage.set_meta(self._conn, "policy_version", policy.version)
-            storage.set_meta(self._conn, "policy_pin", self._door.policy_pin(policy.version))
-            self._audit.append({"actor": self.member, "action": "policy.apply", "decision": "done",
-                                "details": {"version": policy.version, "previous": previous}}, at)
+        policy, applied = policy_apply.apply_policy(self._context(), Path(policy_dir))
         self._set_policy(policy)
-        return {"version": policy.version, "previous": previous, "new": new}
+        return applied
 
     def enrol(self, form: bytes) -> dict[str, Any]:
         """Enrol a participant from a filled consent form (TOML bytes).
@@ -438,91 +380,15 @@ class Vault:
         Identity and contact details are stored only encrypted under the new
         participant's own key; the consent terms become version 1 under a random id.
         """
-        self._require_steward("participant.enrol")
-        when = self.now()
-        identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
-        tag = self._door.lab_code_tag(identity.code)
-        existing = registry.pid_for_tag(self._conn, tag)
-        if existing is not None:
-            raise Conflict(f"this participant code is enrolled already (participant {existing})",
-                           hint="amend-consent")
-        pid = crypto.random_id(16)
-        version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when)
-        key = self._door.new_participant(pid, ("identity-contact", [identity.to_bytes()]))
-        assert key.blob is not None
-        info = key.blob
-        blob_id = info.blob_id
-        at = iso_utc(when)
-        try:
-            with storage.transaction(self._conn):
-                participants.insert_participant(self._conn, pid, key.wrapped, key.commitment, at,
-                                                lab_code_tag=tag)
-                participants.insert_blob(self._conn, info, at)
-                self._record_consent(version)
-                self._audit.append({"actor": self.member, "action": "participant.enrol",
-                                    "subjects": [pid], "decision": "done",
-                                    "details": _consent_details(version)}, at)
-        except BaseException:
-            self._door.discard(blob_id)
-            raise
-        return {"participant_id": pid, **_consent_details(version)}
+        return consent.enrol(self._context(), form)
 
     def amend_consent(self, pid: str, form: bytes) -> dict[str, Any]:
         """Add a consent version from a new filled form (a partial withdrawal is one)."""
-        self._require_steward("consent.amend")
-        when = self.now()
-        registry.require_participant(self._conn, pid)
-        identity, terms = split_identity(parse_consent_form(form, self.policy, now=when))
-        if registry.pid_for_tag(self._conn, self._door.lab_code_tag(identity.code)) != pid:
-            raise InvalidInput(f"consent form: participant.code: does not belong to participant {pid}")
-        history = registry.consent_history(self._conn, pid)
-        version = record_consent(terms, self.policy, participant_id=pid, recorded_at=when,
-                                 previous=history[-1] if history else None)
-        with storage.transaction(self._conn):
-            self._record_consent(version)
-            self._audit.append({"actor": self.member, "action": "consent.amend", "subjects": [pid],
-                                "decision": "done", "details": _consent_details(version)},
-                               iso_utc(when))
-        return {"participant_id": pid, **_consent_details(version)}
-
-    def _record_consent(self, version: Any) -> None:
-        """Add a consent version and re-tag the participant's newest one (inside a transaction)."""
-        self._context().record_consent(version)
-
-    def _check_consent_heads(self) -> list[dict[str, Any]]:
-        """Every living participant's newest consent against its keyed tag: a withdrawal deleted
-        or a status edited in the file stops the vault. Untagged heads (vaults from before the
-        tag) are tagged on trust and reported for the audit log."""
-        untagged, bad = [], []
-        for pid, tag, body in registry.consent_heads(self._conn):
-            if body is None:
-                continue
-            try:
-                head = registry.parse_consent(body)
-                expected = self._door.consent_tag(pid, head.number, head.digest)
-            except (IntegrityError, InvalidInput, ValueError):
-                bad.append(pid)
-                continue
-            if tag is None:
-                untagged.append((pid, expected))
-            elif not crypto.constant_time_equal(tag.encode(), expected.encode()):
-                bad.append(pid)
-        if bad:
-            raise IntegrityError(f"the newest consent of {len(bad)} participant(s) was changed or "
-                                 "removed without the vault's keys (first: "
-                                 f"{sorted(bad)[0]}); restore the database from a backup")
-        for pid, expected in untagged:
-            registry.set_consent_tag(self._conn, pid, expected)
-        return ([{"actor": self.member, "action": "consent.tagged", "decision": "done",
-                  "details": {"participants": len(untagged)}}] if untagged else [])
+        return consent.amend_consent(self._context(), pid, form)
 
     def consent_history(self, pid: str) -> list[dict[str, Any]]:
         """The consent versions, oldest first (kept after erasure: they name no one)."""
-        self._require_steward("consent.show")
-        if not participants.exists(self._conn, pid):
-            raise NotFound(f"no participant '{pid}'")
-        return [json.loads(v.to_json()) | {"digest": v.digest}
-                for v in registry.consent_history(self._conn, pid)]
+        return consent.consent_history(self._context(), pid)
 
     # -- the one door -----------------------------------------------------------------------------
 
@@ -684,81 +550,40 @@ class Vault:
 
     def add_member(self, name: str, role: str, passphrase: str) -> dict[str, str]:
         """A new member with their own passphrase (it wraps the same master key)."""
-        self._require_steward("member.add")
-        if role not in self.policy.roles:
-            raise UsageError(f"unknown role '{role}'; the policy set defines "
-                             + ", ".join(sorted(self.policy.roles)))
-        if not _MEMBER_NAME.fullmatch(name):
-            raise UsageError("member names are 1-40 letters, digits, '.', '_' or '-'")
-        _check_passphrase(passphrase)
-        at = self._stamp()
-        with storage.transaction(self._conn):
-            self._door.add_slot(name, role, passphrase, at, reads_data=_reads_data(self.policy)(role))
-            self._audit.append({"actor": self.member, "action": "member.add", "decision": "done",
-                                "details": {"member": name, "role": role}}, at)
-        return {"member": name, "role": role}
+        return members.add_member(self._context(), name, role, passphrase)
 
     def remove_member(self, name: str) -> dict[str, str]:
-        self._require_steward("member.remove")
-        at = self._stamp()
-        with storage.transaction(self._conn):
-            registry.remove_member(self._conn, name)
-            self._audit.append({"actor": self.member, "action": "member.remove", "decision": "done",
-                                "details": {"member": name}}, at)
-        return {"member": name, "removed": "yes"}
+        return members.remove_member(self._context(), name)
 
     def members(self) -> list[dict[str, str]]:
-        return registry.members(self._conn)
+        return members.members(self._context())
 
     def export_members(self, export_id: str) -> set[str]:
         """The vault ids an export holds (its lineage; stewards only)."""
-        self._require_steward("export.members")
-        return lineage.members(self._conn, export_id)
+        return members.export_members(self._context(), export_id)
 
     def readable(self, pid: str) -> bool:
         """Whether a participant's data key still opens (False once erased; stewards only)."""
-        self._require_steward("participant.readable")
-        return self._door.readable(pid)
+        return blobs.readable(self._context(), pid)
 
     # -- blobs --------------------------------------------------------------------------------------
 
     def blobs(self, pid: str | None = None) -> list[dict[str, Any]]:
-        self._require_steward("blobs.list")
-        return participants.blobs(self._conn, pid)
+        return blobs.blobs(self._context(), pid)
 
     # -- verification and the audit log ---------------------------------------------------------
 
     def verify(self, *, trusted: list[audit.TreeHead] | None = None) -> dict[str, Any]:
         """Check the audit log and authenticate every stored blob (no plaintext leaves)."""
-        self._require_steward("vault.verify")
-        report = audit.verify_log(self._conn, self.public_key, trusted or [])
-        checked, bad = self._door.authenticate_all()
-        return {"audit": report.as_dict(), "blobs_checked": checked, "blobs_failed": bad,
-                "ok": report.ok and not bad}
+        return auditing.verify(self._context(), trusted)
 
     def audit_entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
         """Entries of the log, for roles the policy set lets read it (audited)."""
-        role = self.policy.roles.get(self.role)
-        if role is None or not role.reads_audit:
-            self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "refuse",
-                                "reasons": ["role-not-allowed"], "details": {"role": self.role}}])
-            raise PolicyRefusal(f"member '{self.member}' ({self.role}) may not read the audit log")
-        entries = self._audit.entries(start, limit)
-        self._audit_batch([{"actor": self.member, "action": "audit.show", "decision": "done",
-                            "details": {"start": start, "entries": len(entries)}}])
-        return entries
+        return auditing.audit_entries(self._context(), start, limit)
 
     def sign_head(self) -> audit.TreeHead:
-        self._require_steward("audit.head")
-        with storage.transaction(self._conn):
-            return self._audit.sign_head(self._signing, self._stamp())
+        return auditing.sign_head(self._context())
 
-
-
-def _consent_details(version: Any) -> dict[str, Any]:
-    return {"consent_version": version.number, "consent_digest": version.digest,
-            "policy_version": version.policy_version,
-            "purposes": {p: c.status.value for p, c in sorted(version.purposes.items())}}
 
 
 def _check_schema(conn: Connection) -> str:
@@ -818,7 +643,7 @@ def read_audit_log(path: Path, passphrase: str, *, member: str, start: int = 0,
             vault_id = _check_schema(conn)
             storage.add_missing_tables(conn)
             policy = registry.load_policy(conn, storage.get_meta(conn, "policy_version"))
-            unlocked = access.unlock(conn, path, vault_id, member, passphrase, _reads_data(policy))
+            unlocked = access.unlock(conn, path, vault_id, member, passphrase, reads_data(policy))
             at = iso_utc(moment(clock))
             role = policy.roles.get(unlocked.role)
             allowed = role is not None and role.reads_audit

@@ -96,17 +96,6 @@ def leak(db_path, vault_id, member, passphrase, pid):
     ring = keys.KeyRing.unlock(conn, vault_id, member, passphrase, True)
     return ring.participant_key(conn, pid)
 """, "lint:sqlite", "lint:one-door", "ast:decryptors", "ast:door-imports"),
-    route("own-select-on-the-vaults-connection", """
-def leak(v, pid):
-    conn = v.describe_connection()
-    return conn.execute("SELECT wrapped_key, date_offset FROM participants WHERE pid = ?", (pid,))
-""", "ast:sql"),
-    route("own-statement-through-a-helper", """
-from vault.storage import db
-
-def leak(conn, pids):
-    return list(db.rows_in(conn, f"SELECT pid, wrapped_key FROM participants WHERE pid", pids))
-""", "ast:sql"),
     route("sqlite-readonly-and-unwrap", """
 import sqlite3
 
@@ -117,6 +106,25 @@ def leak(db_path, kek, pid):
     (wrapped,) = conn.execute("SELECT wrapped_key FROM participants WHERE id = ?", (pid,)).fetchone()
     return crypto.unwrap_key(kek, wrapped)
 """, "lint:sqlite", "ast:decryptors", "ast:sql"),
+    route("own-select", """
+from vault.storage.db import Connection
+
+def leak(conn: Connection, pid: str) -> bytes:
+    return conn.execute("SELECT wrapped_key FROM participants WHERE pid = ?", (pid,)).fetchone()[0]
+""", "ast:sql"),
+    route("own-select-hidden", """
+from vault.storage import db
+
+def leak(conn: db.Connection) -> list:
+    run = getattr(conn, "execute")
+    return run("SEL" + "ECT wrapped_key FROM participants").fetchall()
+""", "ast:sql"),
+    route("own-select-through-rows-in", """
+from vault.storage import db
+
+def leak(conn: db.Connection, pids: list[str]) -> list:
+    return list(db.rows_in(conn, "select pid, wrapped_key from participants where pid", pids))
+""", "ast:sql"),
     route("getattr-private", """
 def leak(v):
     return getattr(v, "_door")

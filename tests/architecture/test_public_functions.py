@@ -30,6 +30,23 @@ ANALYST = "analyst passphrase long enough"
 # and who may call it. A new one fails this test until it is listed (and, if for stewards, checks
 # the role).
 PUBLIC: dict[str, str] = {
+    "auditing.audit_entries": "anyone",  # roles the policy set lets read the log (audited)
+    "auditing.verify": "steward",
+    "auditing.sign_head": "steward",
+    "blobs.new_participant": "steward",
+    "blobs.put_blob": "steward",
+    "blobs.blobs": "steward",
+    "blobs.readable": "steward",
+    "consent.enrol": "steward",
+    "consent.amend_consent": "steward",
+    "consent.consent_history": "steward",
+    "consent.check_consent_heads": "anyone",  # what every open does (tags on trust, audited)
+    "members.add_member": "steward",
+    "members.remove_member": "steward",
+    "members.members": "anyone",  # names and roles only, no participant data
+    "members.export_members": "steward",
+    "policy_apply.apply_policy": "steward",
+    "rekeying.rekey": "steward",
     "budget.affordable": "anyone",  # reads remaining budget of ids the caller names
     "budget.charge": "steward",
     "budget.charge_in_transaction": "anyone",  # inside an export's transaction only (refused outside)
