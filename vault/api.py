@@ -266,10 +266,7 @@ class Vault:
                     hint="key-free-checks")
             vault = cls(path, conn, unlocked, member, lock_fd, clock)
             vault._check_audit()
-            with storage.transaction(conn):
-                tagged = consent.check_consent_heads(vault._context())
-                if tagged:
-                    vault._audit.append_many(tagged, vault._stamp())
+            consent.check_consent_heads(vault._context())
         except BaseException:
             if conn is not None:
                 conn.close()
@@ -583,7 +580,6 @@ class Vault:
 
     def sign_head(self) -> audit.TreeHead:
         return auditing.sign_head(self._context())
-
 
 
 def _check_schema(conn: Connection) -> str:

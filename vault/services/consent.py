@@ -85,11 +85,11 @@ def consent_history(ctx: Context, pid: str) -> list[dict[str, Any]]:
             for v in registry.consent_history(ctx.conn, pid)]
 
 
-def check_consent_heads(ctx: Context) -> list[dict[str, Any]]:
+def check_consent_heads(ctx: Context) -> int:
     """Every living participant's newest consent against its keyed tag: a withdrawal deleted
     or a status edited in the file stops the vault. Untagged heads (vaults from before the
-    tag) are tagged on trust and returned as entries for the audit log (inside the caller's
-    transaction)."""
+    tag) are tagged on trust, in one transaction with the audit entry that says so; returns
+    how many were tagged."""
     untagged, bad = [], []
     for pid, tag, body in registry.consent_heads(ctx.conn):
         if body is None:
@@ -108,7 +108,10 @@ def check_consent_heads(ctx: Context) -> list[dict[str, Any]]:
         raise IntegrityError(f"the newest consent of {len(bad)} participant(s) was changed or "
                              "removed without the vault's keys (first: "
                              f"{sorted(bad)[0]}); restore the database from a backup")
-    for pid, expected in untagged:
-        registry.set_consent_tag(ctx.conn, pid, expected)
-    return ([{"actor": ctx.member, "action": "consent.tagged", "decision": "done",
-              "details": {"participants": len(untagged)}}] if untagged else [])
+    if untagged:
+        with storage.transaction(ctx.conn):
+            for pid, expected in untagged:
+                registry.set_consent_tag(ctx.conn, pid, expected)
+            ctx.audit.append({"actor": ctx.member, "action": "consent.tagged", "decision": "done",
+                              "details": {"participants": len(untagged)}}, ctx.stamp())
+    return len(untagged)

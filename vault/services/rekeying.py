@@ -6,7 +6,7 @@ from typing import TYPE_CHECKING, Any
 
 from vault.services.members import check_passphrase
 from vault.storage import db as storage
-from vault.storage import participants
+from vault.storage import participants, slots
 
 if TYPE_CHECKING:
     from vault.services.context import Context
@@ -18,7 +18,7 @@ def rekey(ctx: Context, new_passphrase: str) -> dict[str, Any]:
     check_passphrase(new_passphrase)
     at = ctx.stamp()
     with storage.transaction(ctx.conn):
-        others = participants.count_other_slots(ctx.conn, ctx.member)
+        others = slots.count_other_slots(ctx.conn, ctx.member)
         swap = ctx.door.rekey(ctx.member, ctx.role, new_passphrase, at)
         count = participants.count(ctx.conn)
         ctx.audit.append({"actor": ctx.member, "action": "vault.rekey", "decision": "done",

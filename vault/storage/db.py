@@ -256,17 +256,18 @@ def transaction(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
         raise
 
 
-def get_meta(conn: sqlite3.Connection, key: str) -> str:
-    row = conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
-    if row is None:
-        raise IntegrityError(f"vault metadata '{key}' is missing")
-    return str(row[0])
-
-
 def find_meta(conn: sqlite3.Connection, key: str) -> str | None:
     """A meta value, or None where it is not set."""
     row = conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
     return None if row is None else str(row[0])
+
+
+def get_meta(conn: sqlite3.Connection, key: str) -> str:
+    """A meta value the vault cannot do without (IntegrityError where it is missing)."""
+    value = find_meta(conn, key)
+    if value is None:
+        raise IntegrityError(f"vault metadata '{key}' is missing")
+    return value
 
 
 def set_meta(conn: sqlite3.Connection, key: str, value: str) -> None:

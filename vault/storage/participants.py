@@ -60,9 +60,6 @@ def living_blobs(conn: sqlite3.Connection) -> list[tuple[str, str, int]]:
         "ON p.pid = b.pid WHERE p.wrapped_key IS NOT NULL").fetchall()]
 
 
-def count_other_slots(conn: sqlite3.Connection, member: str) -> int:
-    return int(conn.execute("SELECT COUNT(*) FROM keyslots WHERE member != ?", (member,)).fetchone()[0])
-
 
 def wrapped_key(conn: sqlite3.Connection, pid: str) -> tuple[bool, bytes | None]:
     """(the participant exists, their wrapped data key or None once erased)."""

@@ -14,6 +14,7 @@ from vault.errors import Conflict, IntegrityError, NotFound
 from vault.policy.consent import ConsentVersion, verify_history
 from vault.policy.policyset import PolicySet, parse_policy_json
 from vault.storage import db as storage
+from vault.storage import slots
 from vault.times import iso_utc
 
 
@@ -117,5 +118,5 @@ def remove_member(conn: sqlite3.Connection, member: str) -> None:
         raise NotFound(f"no member '{member}'")
     if roles[member] == "steward" and sum(r == "steward" for r in roles.values()) == 1:
         raise Conflict("refusing to remove the last steward")
-    conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+    slots.drop_slot(conn, member)
 

@@ -32,3 +32,7 @@ def drop_slots_except_kind(conn: sqlite3.Connection, kind: str) -> None:
 
 def drop_slot(conn: sqlite3.Connection, member: str) -> None:
     conn.execute("DELETE FROM keyslots WHERE member = ?", (member,))
+
+
+def count_other_slots(conn: sqlite3.Connection, member: str) -> int:
+    return int(conn.execute("SELECT COUNT(*) FROM keyslots WHERE member != ?", (member,)).fetchone()[0])
