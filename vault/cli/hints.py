@@ -16,18 +16,22 @@ COMMANDS: dict[str, str] = {
     "withdraw-request": "record one with 'mindward withdraw request'",
     "withdraw-receipt": "see 'mindward withdraw receipt'",
     "check-export": "check it with 'mindward export check'",
+    "serve-setup": "run 'mindward serve-setup' first",
 }
 
 # VaultError.param (an argument of a library call) -> the option that sets it
 OPTIONS: dict[str, str] = {
     "epsilons": "--epsilons",
+    "expires_days": "--expires-days",
     "event_codes": "--event-codes",
     "items": "--items",
     "kind": "--kind",
     "mechanism": "--mechanism",
     "public_key": "--key",
     "received": "--received",
+    "passphrase": "MINDWARD_NEW_PASSPHRASE",
     "release": "--release",
+    "role": "--role",
     "scope": "--scope",
     "sidecar": "--sidecar",
     "unit": "--unit",
