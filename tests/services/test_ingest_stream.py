@@ -7,7 +7,6 @@ Independent readers: pyedflib (EDFlib) and MNE read what the door hands back.
 from __future__ import annotations
 
 import io
-import random
 import shutil
 import tracemalloc
 from collections.abc import Iterator
@@ -20,6 +19,7 @@ import pytest
 
 from tests.clock import ManualClock, at
 from tests.conftest import ROOT, TEST_PASSPHRASE
+from tests.formats.test_edf_stream import Breaks, Trickle
 from tests.services.test_ingest import ENTERED, NOW, PYEDFLIB_DATA, _form, _read_back, _snapshot
 from vault import InvalidInput, PolicyRefusal, UsageError, Vault
 from vault.formats.edf_header import BLOCK, field, pack_header
@@ -37,19 +37,9 @@ def lab(fresh_vault: Vault) -> tuple[Vault, dict[str, str]]:
     return fresh_vault, pids
 
 
-class Upload:
+def Upload(data: bytes, seed: int = 1) -> Trickle:
     """A sequential reader over bytes, returning uneven short reads as a socket does."""
-
-    def __init__(self, data: bytes, seed: int = 1) -> None:
-        self.data, self.pos, self.rng = data, 0, random.Random(seed)
-        self.calls = 0
-
-    def read(self, n: int) -> bytes:
-        self.calls += 1
-        k = min(n, self.rng.randint(1, 65536))
-        out = self.data[self.pos : self.pos + k]
-        self.pos += len(out)
-        return out
+    return Trickle(data, seed, most=65536)
 
 
 def _one_sample_changed(data: bytes) -> tuple[bytes, int]:
@@ -110,17 +100,6 @@ def test_independent_readers_open_the_streamed_recording(lab, tmp_path: Path, na
     rb = reader(stored, preload=True, verbose="error")
     assert ra.info["sfreq"] == rb.info["sfreq"] and len(ra.ch_names) == len(rb.ch_names)
     np.testing.assert_array_equal(ra.get_data(), rb.get_data())
-
-
-class Breaks(Upload):
-    def __init__(self, data: bytes, after: int, error: BaseException) -> None:
-        super().__init__(data)
-        self.after, self.error = after, error
-
-    def read(self, n: int) -> bytes:
-        if self.pos >= self.after:
-            raise self.error
-        return super().read(min(n, self.after - self.pos))
 
 
 def _bad_streams(data: bytes) -> dict[str, tuple[object, int]]:
