@@ -306,9 +306,8 @@ def test_dest_must_be_an_existing_empty_folder(kind: str, tmp_path: Path) -> Non
     elif kind == "a-link":
         (tmp_path / "real").mkdir()
         dest.symlink_to(tmp_path / "real")
-    with pytest.raises(UsageError) as info:
+    with pytest.raises(UsageError, match="folder to unpack into"):
         unpack([_valid()], dest, **LIMITS)
-    assert info.value.param == "dest"
     if kind == "not-empty":
         assert [p.name for p in dest.iterdir()] == ["kept"]
 

@@ -201,7 +201,7 @@ def ingest_eeg_stream(ctx: Context, pid: str, stream: SupportsRead, size: int, *
     now, codes = _begin_eeg(ctx, pid, event_codes)
     if Path(str(name)).suffix.lower() in (".npy", ".npz"):
         raise UsageError("a streamed recording is EDF, EDF+ or BDF; NumPy arrays are ingested "
-                         "from a file with their sidecar", param="name")
+                         "from a file with their sidecar")
     header, raw, read = read_stream_header(stream, size)
     offset, new_offset = _date_offset(ctx, pid, known_start_date(header) or OFFSET_REFERENCE)
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
@@ -335,7 +335,7 @@ def ingest_scores_bytes(ctx: Context, data: bytes, kind: str, *, name: str) -> d
     """`ingest_scores` for the bytes of an uploaded CSV (`name`: its file name)."""
     ctx.require_steward("ingest.scores")
     if not isinstance(data, bytes | bytearray | memoryview):
-        raise UsageError("scores data must be bytes (the CSV file's content)", param="data")
+        raise UsageError("scores data must be bytes (the CSV file's content)")
     if Path(str(name)).suffix.lower() not in ("", ".csv"):
-        raise UsageError("a scores upload is a CSV file", param="name")
+        raise UsageError("a scores upload is a CSV file")
     return ingest_scores(ctx, bytes(data), kind)
