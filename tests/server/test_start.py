@@ -78,7 +78,7 @@ def test_a_vault_that_is_not_served_is_refused_with_the_conversion_hint(tmp_path
 
     Vault.init(tmp_path / "v", TEST_PASSPHRASE).close()
     code, body, err = _refused(launch(tmp_path / "v"))
-    assert code == 2 and "serve-setup" in err
+    assert code == 2 and body["exit_code"] == 2 and "serve-setup" in err
 
 
 def test_the_start_line_states_the_vault_and_the_sweep_and_a_stop_closes_the_vault(
