@@ -26,6 +26,8 @@ from vault.errors import (
     NotFound,
     PolicyRefusal,
     StorageFull,
+    Throttled,
+    Unreachable,
     UsageError,
     VaultError,
 )
@@ -60,6 +62,8 @@ __all__ = [
     "NotFound",
     "PolicyRefusal",
     "StorageFull",
+    "Throttled",
+    "Unreachable",
     "UsageError",
     "Vault",
     "VaultError",

@@ -75,13 +75,13 @@ class StorageFull(VaultError):
 
 
 class Throttled(VaultError):
-    """Too many attempts, or the service is busy; retry later."""
+    """Too many failed attempts from one client, or the service is at its limit; retry later."""
 
     exit_code = 10
 
 
 class Unreachable(VaultError):
-    """The service cannot be reached or broke off mid-way; nothing was kept locally."""
+    """The service could not be reached or stopped answering mid-way; nothing was kept locally."""
 
     exit_code = 11
 
@@ -97,7 +97,7 @@ HINTS: dict[str, str] = {
     "withdraw-request": "record a withdrawal request first (Vault.withdraw_request)",
     "withdraw-receipt": "the receipt is kept (Vault.withdraw_receipt)",
     "check-export": "check the export against the vault (Vault.check_export)",
-    "make-served": "convert the vault for serving first (Vault.make_served)",
+    "serve-setup": "convert the vault for the service first (Vault.make_served)",
 }
 
 EXIT_CODES: dict[int, str] = {
@@ -111,6 +111,6 @@ EXIT_CODES: dict[int, str] = {
     Conflict.exit_code: "conflict with the vault's state (exists already, busy, done)",
     InvalidInput.exit_code: "malformed input file or value; nothing was stored",
     StorageFull.exit_code: "not enough disk space; nothing was stored",
-    Throttled.exit_code: "too many attempts or the service is busy; retry later",
-    Unreachable.exit_code: "the service cannot be reached or broke off; nothing was kept",
+    Throttled.exit_code: "throttled: too many failed attempts, or the service is busy; retry later",
+    Unreachable.exit_code: "the service could not be reached or broke off; nothing was kept",
 }

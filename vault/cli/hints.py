@@ -16,12 +16,13 @@ COMMANDS: dict[str, str] = {
     "withdraw-request": "record one with 'mindward withdraw request'",
     "withdraw-receipt": "see 'mindward withdraw receipt'",
     "check-export": "check it with 'mindward export check'",
-    "make-served": "convert it with 'mindward serve-setup' first",
+    "serve-setup": "run 'mindward serve-setup' first",
 }
 
 # VaultError.param (an argument of a library call) -> the option that sets it
 OPTIONS: dict[str, str] = {
     "epsilons": "--epsilons",
+    "expires_days": "--expires-days",
     "event_codes": "--event-codes",
     "items": "--items",
     "host": "--host",
@@ -32,7 +33,9 @@ OPTIONS: dict[str, str] = {
     "port": "--port",
     "public_key": "--key",
     "received": "--received",
+    "passphrase": "MINDWARD_NEW_PASSPHRASE",
     "release": "--release",
+    "role": "--role",
     "scope": "--scope",
     "sidecar": "--sidecar",
     "sweep_every_hours": "--sweep-every-hours",

@@ -33,7 +33,7 @@ def serve(options: ServeOptions, passphrase: Callable[[], str],
         try:
             if not opened.served:
                 raise vault.UsageError("this vault is not set up to be served: its members still "
-                                       "hold key slots", hint="make-served")
+                                       "hold key slots", hint="serve-setup")
             service = Service(opened, worker, options)
             facts = worker.call(lambda: {**opened.info(), "sweep_every_hours": options.sweep_every_hours})
             config = uvicorn.Config(
