@@ -358,7 +358,7 @@ async def exports_check(body: models.ExportCheck, request: Request, credentials:
 async def policy_show(request: Request, credentials: Credentials) -> Response:
     """The pinned policy set (`policy show`)."""
     return await _call(request, credentials, "policy.show", lambda v: {
-        "version": v.policy.version, "lines": vault.describe_policy(v.policy)})
+        "version": v.policy.version, "lines": v.policy.lines()})
 
 
 @router.post("/policy", name="policy.apply", operation_id="policy_apply")
