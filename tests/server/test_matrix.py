@@ -174,6 +174,21 @@ def test_an_export_archive_is_only_for_the_member_who_made_it(lab, serve, tmp_pa
             data = b"".join(got.iter_bytes())
         # a tar stream (POSIX ustar magic at offset 257 of the first header: common practice)
         assert data[257:262] == b"ustar"
+        # read by the standard library's tar reader (independent of our packer), then verified
+        # with the vault's public key alone, as the remote client does before keeping it
+        import io
+        import tarfile
+
+        received = tmp_path / "received"
+        received.mkdir()
+        with tarfile.open(fileobj=io.BytesIO(data), mode="r:") as tar:
+            names = tar.getnames()
+            assert "manifest.json" in names and not any(n.startswith(("/", "..")) for n in names)
+            tar.extractall(received, filter="data")
+        from vault import describe, verify_export
+
+        key = bytes.fromhex(describe(lab.vault)["public_key"])
+        assert verify_export(received, key)["ok"]
         again = analyst.get(archive)  # downloaded completely once: gone
         assert again.status_code == 404
     assert not (lab.vault / "outbox" / made.json()["export_id"]).exists()
