@@ -109,8 +109,8 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _internal_error(request: Request, exc: Exception) -> Response:
-    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service operator "
-                                  "can rerun with MINDWARD_DEBUG=1", 1))
+    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service's own log "
+                                  "says where (a bug: please report it)", 1))
 
 
 # -- calling the library -------------------------------------------------------------------------------
@@ -162,7 +162,7 @@ async def access_check(body: models.AccessCheck, request: Request, credentials: 
 @router.get("/budget", name="budget", operation_id="budget")
 async def budget(request: Request, credentials: Credentials, purpose: str | None = None) -> Response:
     """Privacy budget spent per purpose (`budget`)."""
-    return await _call(request, credentials, "budget", lambda v: v.budget(purpose))
+    return await _call(request, credentials, "budget", lambda v: v.budget(purpose or None))
 
 
 # -- the audit log -------------------------------------------------------------------------------------
