@@ -25,8 +25,12 @@ OPTIONS: dict[str, str] = {
     "expires_days": "--expires-days",
     "event_codes": "--event-codes",
     "items": "--items",
+    "host": "--host",
     "kind": "--kind",
+    "max_exports": "--max-exports",
+    "max_upload_mb": "--max-upload-mb",
     "mechanism": "--mechanism",
+    "port": "--port",
     "public_key": "--key",
     "received": "--received",
     "passphrase": "MINDWARD_NEW_PASSPHRASE",
@@ -34,6 +38,8 @@ OPTIONS: dict[str, str] = {
     "role": "--role",
     "scope": "--scope",
     "sidecar": "--sidecar",
+    "sweep_every_hours": "--sweep-every-hours",
+    "tls_cert": "--tls-cert",
     "unit": "--unit",
 }
 
