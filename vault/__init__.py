@@ -26,6 +26,8 @@ from vault.errors import (
     NotFound,
     PolicyRefusal,
     StorageFull,
+    Throttled,
+    Unreachable,
     UsageError,
     VaultError,
 )
@@ -59,6 +61,8 @@ __all__ = [
     "NotFound",
     "PolicyRefusal",
     "StorageFull",
+    "Throttled",
+    "Unreachable",
     "UsageError",
     "Vault",
     "VaultError",

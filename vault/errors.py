@@ -74,6 +74,18 @@ class StorageFull(VaultError):
     exit_code = 9
 
 
+class Throttled(VaultError):
+    """Too many failed attempts from one client, or the service is at its limit; retry later."""
+
+    exit_code = 10
+
+
+class Unreachable(VaultError):
+    """The service could not be reached or stopped answering mid-way; nothing was kept locally."""
+
+    exit_code = 11
+
+
 # next steps an error can point to, in library terms (vault.cli words each as a command)
 HINTS: dict[str, str] = {
     "create": "create a vault first (Vault.init)",
@@ -98,4 +110,6 @@ EXIT_CODES: dict[int, str] = {
     Conflict.exit_code: "conflict with the vault's state (exists already, busy, done)",
     InvalidInput.exit_code: "malformed input file or value; nothing was stored",
     StorageFull.exit_code: "not enough disk space; nothing was stored",
+    Throttled.exit_code: "throttled: too many failed attempts, or the service is busy; retry later",
+    Unreachable.exit_code: "the service could not be reached or broke off; nothing was kept",
 }
