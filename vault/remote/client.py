@@ -189,7 +189,7 @@ class RemoteVault:
         return self._post(f"/members/{segment(member)}/revoke")
 
     def remove_member(self, name: str) -> dict[str, Any]:
-        return self._session.call("DELETE", f"/members/{segment(name)}")
+        return self._session.remove(f"/members/{segment(name)}")
 
     # -- enrolment and consent -------------------------------------------------------------------
 

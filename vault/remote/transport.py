@@ -115,6 +115,12 @@ class Session:
                                           content=content, headers=headers)
         return _document(response)
 
+    def remove(self, path: str) -> Any:
+        """An HTTP DELETE of `path`; the decoded JSON document of a success."""
+        with self._guard():
+            response = self._http.delete(path)
+        return _document(response)
+
     @contextmanager
     def stream(self, path: str) -> Iterator[Iterator[bytes]]:
         """The body of a GET as chunks; a break in the middle raises Unreachable."""
