@@ -12,7 +12,7 @@ from dataclasses import replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from types import MappingProxyType
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 from vault import crypto
 from vault.access import door as access
@@ -37,6 +37,9 @@ from vault.storage import audit_rows, counts, participants, registry
 from vault.storage import db as storage
 from vault.storage.db import Connection, DatabaseError
 from vault.times import iso_utc, parse_utc
+
+if TYPE_CHECKING:
+    from vault.formats.edf_header import SupportsRead
 
 LOCK_NAME = "lock"
 _LOCK_WAIT_S = 10.0
@@ -453,6 +456,22 @@ class Vault:
         return ingest_eeg(self._context(), pid, Path(path), sidecar=sidecar, event_codes=event_codes,
                           keep_sex=keep_sex, age_band_years=age_band_years,
                           keep_header_identity=keep_header_identity)
+
+    def ingest_eeg_stream(self, pid: str, stream: SupportsRead, size: int, *,
+                          name: str = "upload.edf", event_codes: str | list[str] | None = None,
+                          keep_sex: bool = False, age_band_years: int | None = None,
+                          keep_header_identity: bool = False) -> dict[str, Any]:
+        """`ingest_eeg` for an EDF/EDF+/BDF upload: `stream.read(n)` sequentially (no seek),
+        `size` the byte count announced for it. The header is checked against `size` first;
+        the records are de-identified and encrypted a block at a time (never the whole
+        recording in memory). A stream that ends early, sends more or fails is refused with
+        nothing stored. Same result document as `ingest_eeg`."""
+        from vault.services.ingest import ingest_eeg_stream
+
+        return ingest_eeg_stream(self._context(), pid, stream, size, name=name,
+                                 event_codes=event_codes, keep_sex=keep_sex,
+                                 age_band_years=age_band_years,
+                                 keep_header_identity=keep_header_identity)
 
     def ingest_scores(self, path: Path, kind: str) -> dict[str, Any]:
         """Store a CSV of derived scores or explicit ratings: all rows or none."""

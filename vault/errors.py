@@ -97,6 +97,7 @@ HINTS: dict[str, str] = {
     "withdraw-request": "record a withdrawal request first (Vault.withdraw_request)",
     "withdraw-receipt": "the receipt is kept (Vault.withdraw_receipt)",
     "check-export": "check the export against the vault (Vault.check_export)",
+    "make-served": "convert the vault for serving first (Vault.make_served)",
 }
 
 EXIT_CODES: dict[int, str] = {

@@ -13,7 +13,8 @@ import pytest
 
 from vault.cli.app import BENCH_GROUP, main
 
-HEAVY = ("pandas", "scipy", "matplotlib", "sqlite_utils", "pyarrow", "edfio", "opendp")
+HEAVY = ("pandas", "scipy", "matplotlib", "sqlite_utils", "pyarrow", "edfio", "opendp", "fastapi",
+         "starlette", "uvicorn", "httpx")
 
 
 def _loaded_after(code: str) -> list[str]:

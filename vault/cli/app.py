@@ -661,6 +661,42 @@ def report(
 
 
 @app.command()
+def serve(
+    path: VaultOpt,
+    host: Annotated[str, typer.Option(help="Address to listen on (loopback unless TLS is given).")]
+    = "127.0.0.1",
+    port: Annotated[int, typer.Option(min=0, max=65535, help="Port (0: any free port).")] = 8631,
+    tls_cert: Annotated[Path | None, typer.Option(help="TLS certificate chain (PEM).")] = None,
+    tls_key: Annotated[Path | None, typer.Option(help="The certificate's private key (PEM).")] = None,
+    credentials: Annotated[Path | None, typer.Option(
+        help="A file holding the steward's passphrase (yours alone: chmod 600).")] = None,
+    max_exports: Annotated[int, typer.Option(min=1, help="Exports running at a time.")] = 2,
+    max_upload_mb: Annotated[int, typer.Option(min=1, help="Largest recording upload, in MiB.")] = 4096,
+    sweep_every_hours: Annotated[float, typer.Option(
+        min=0, help="Run 'sweep' this often (0: never).")] = 24.0,
+    as_json: JsonOpt = False,
+) -> None:
+    """Serve the vault over HTTP(S) to its members' tokens; the keys stay in this process."""
+    from vault.server.options import ServeOptions, read_credentials
+    from vault.server.run import serve as run_service
+    from vault.server.run import start_json, start_line
+
+    options = ServeOptions(vault=path, host=host, port=port, tls_cert=tls_cert, tls_key=tls_key,
+                           max_exports=max_exports, max_upload_mb=max_upload_mb,
+                           sweep_every_hours=sweep_every_hours)
+
+    def secret() -> str:
+        return read_credentials(credentials) if credentials is not None else _passphrase()
+
+    def started(facts: dict[str, Any]) -> None:
+        typer.echo(start_json(facts) if as_json else start_line(facts))
+        if not as_json:
+            typer.echo(CAUTION, err=True)
+
+    run_service(options, secret, started)
+
+
+@app.command()
 def demo(
     directory: Annotated[Path, typer.Option("--dir", help="Where to write the demo (replaced if it "
                                             "holds an earlier demo).")] = Path("mindward-demo"),

@@ -16,6 +16,7 @@ COMMANDS: dict[str, str] = {
     "withdraw-request": "record one with 'mindward withdraw request'",
     "withdraw-receipt": "see 'mindward withdraw receipt'",
     "check-export": "check it with 'mindward export check'",
+    "make-served": "convert it with 'mindward serve-setup' first",
 }
 
 # VaultError.param (an argument of a library call) -> the option that sets it
@@ -23,13 +24,19 @@ OPTIONS: dict[str, str] = {
     "epsilons": "--epsilons",
     "event_codes": "--event-codes",
     "items": "--items",
+    "host": "--host",
     "kind": "--kind",
+    "max_exports": "--max-exports",
+    "max_upload_mb": "--max-upload-mb",
     "mechanism": "--mechanism",
+    "port": "--port",
     "public_key": "--key",
     "received": "--received",
     "release": "--release",
     "scope": "--scope",
     "sidecar": "--sidecar",
+    "sweep_every_hours": "--sweep-every-hours",
+    "tls_cert": "--tls-cert",
     "unit": "--unit",
 }
 

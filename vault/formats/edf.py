@@ -19,6 +19,7 @@ and law to decide.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import math
 import os
@@ -28,11 +29,11 @@ from collections.abc import Callable, Iterator
 from dataclasses import asdict, dataclass
 from decimal import ROUND_CEILING, ROUND_FLOOR, Decimal
 from pathlib import Path
-from typing import Any, BinaryIO, NamedTuple
+from typing import Any, BinaryIO, NamedTuple, Protocol
 
 import numpy as np
 
-from vault.errors import InvalidInput, NotFound
+from vault.errors import InvalidInput, NotFound, UsageError
 from vault.formats import strictjson
 from vault.formats.channels import is_known_label, is_known_unit, neutral_label
 from vault.formats.edf_header import (
@@ -40,12 +41,15 @@ from vault.formats.edf_header import (
     DeidOptions,
     EdfHeader,
     RemovedIdentity,
+    SupportsRead,
     date_or_none,
     deidentify_header,
     edf_date,
+    header_from,
     pack_header,
     parse_header,
     plus_date,
+    read_exactly,
     read_header,
     shifted_date,
 )
@@ -53,7 +57,8 @@ from vault.formats.edf_header import field as header_field
 
 __all__ = [
     "CAUTION", "AnnotationCounts", "DeidOptions", "DeidReport", "Deidentified", "RecordingMeta",
-    "RemovedIdentity", "deidentified_blocks", "npy_deidentified_blocks", "recording_meta",
+    "RemovedIdentity", "deidentified_blocks", "deidentified_stream", "npy_deidentified_blocks",
+    "read_stream_header", "recording_meta",
     "rewrite_annotations",
 ]  # fmt: skip
 
@@ -265,6 +270,27 @@ def deidentified_blocks(
     with _open(path, "recording") as f:
         size = os.fstat(f.fileno()).st_size
         header, raw = read_header(f, size)
+    return _deidentified(header, raw, size, _FileRecords(path, size, raw), options, block_bytes,
+                         observe)
+
+
+def deidentified_stream(
+    header: EdfHeader, raw_header: bytes, read: Callable[[int], bytes], size: int,
+    options: DeidOptions, block_bytes: int = DEFAULT_BLOCK_BYTES,
+    observe: Callable[[bytes], None] | None = None,
+) -> Deidentified:
+    """As `deidentified_blocks`, for a sequential reader whose first `raw_header` bytes were
+    read and parsed already (`read_header(stream, size)`, `size` the announced length): the
+    records are read from `read` as the blocks are consumed, and a stream that ends early,
+    sends more than `size` bytes or fails to read raises `InvalidInput` from the iterator."""
+    return _deidentified(header, raw_header, size, _StreamRecords(read), options, block_bytes,
+                         observe)
+
+
+def _deidentified(
+    header: EdfHeader, raw: bytes, size: int, source: _Records, options: DeidOptions,
+    block_bytes: int, observe: Callable[[bytes], None] | None,
+) -> Deidentified:
     deid = deidentify_header(header, options)
     report = DeidReport(
         list(deid.changed),
@@ -276,14 +302,84 @@ def deidentified_blocks(
         units_replaced=deid.units_replaced,
     )
     meta = recording_meta(parse_header(deid.header, size))  # what is stored, not the input
-    blocks = _edf_blocks(path, raw, size, header, options, block_bytes, report, meta, observe)
+    blocks = _edf_blocks(source, raw, header, options, block_bytes, report, meta, observe)
     return Deidentified(deid.header, blocks, report, meta, deid.identity)
 
 
+class _Records(Protocol):
+    """Where the data records come from: `opened()` gives a reader positioned after the
+    header, `finish(read)` checks the end. Messages name the source, never a value."""
+
+    truncated: str
+
+    def opened(self) -> contextlib.AbstractContextManager[Callable[[int], bytes]]: ...
+
+    def finish(self, read: Callable[[int], bytes]) -> None: ...
+
+
+class _FileRecords:
+    truncated = "recording file was truncated while it was being read"
+
+    def __init__(self, path: Path, size: int, raw_header: bytes) -> None:
+        self.path, self.size, self.raw_header = path, size, raw_header
+
+    @contextlib.contextmanager
+    def opened(self) -> Iterator[Callable[[int], bytes]]:
+        with _open(self.path, "recording") as f:
+            if os.fstat(f.fileno()).st_size != self.size or f.read(len(self.raw_header)) != self.raw_header:
+                raise InvalidInput("recording file changed while it was being read")
+            yield f.read
+
+    def finish(self, read: Callable[[int], bytes]) -> None:
+        return None  # the size was checked when the file was opened
+
+
+class _StreamRecords:
+    truncated = "recording stream ended before its announced size; nothing was stored"
+
+    def __init__(self, read: Callable[[int], bytes]) -> None:
+        self.read = read
+
+    def opened(self) -> contextlib.AbstractContextManager[Callable[[int], bytes]]:
+        return contextlib.nullcontext(self.read)
+
+    def finish(self, read: Callable[[int], bytes]) -> None:
+        if read(1):
+            raise InvalidInput("recording stream sent more bytes than its announced size; "
+                               "nothing was stored")
+
+
+def stream_reader(stream: SupportsRead) -> Callable[[int], bytes]:
+    """`stream.read` with a failing read (a dropped connection) as `InvalidInput`."""
+
+    def read(n: int) -> bytes:
+        try:
+            data = stream.read(n)
+        except OSError:
+            raise InvalidInput("recording stream failed while it was being read; "
+                               "nothing was stored") from None
+        if not isinstance(data, bytes | bytearray | memoryview) or len(data) > n:
+            raise InvalidInput("recording stream returned something other than the bytes asked for")
+        return bytes(data)
+
+    return read
+
+
+def read_stream_header(stream: SupportsRead, size: int) -> tuple[EdfHeader, bytes, Callable[[int], bytes]]:
+    """Read and validate the header at a sequential stream's start against its announced
+    `size` (header plus every data record, exactly); returns the parsed header, its raw
+    bytes and the reader to hand to `deidentified_stream`."""
+    if isinstance(size, bool) or not isinstance(size, int) or size < 0:
+        raise UsageError("the announced size must be a byte count (a non-negative integer)",
+                         param="size")
+    read = stream_reader(stream)
+    header, raw = header_from(read, size)
+    return header, raw, read
+
+
 def _edf_blocks(
-    path: Path,
+    source: _Records,
     raw_header: bytes,
-    size: int,
     h: EdfHeader,
     opts: DeidOptions,
     block_bytes: int,
@@ -303,16 +399,14 @@ def _edf_blocks(
             areas.append((offset, offset + width, h.is_plus and not areas))
         offset += width
     counts = AnnotationCounts()
-    with _open(path, "recording") as f:
-        if os.fstat(f.fileno()).st_size != size or f.read(h.header_bytes) != raw_header:
-            raise InvalidInput("recording file changed while it was being read")
+    with source.opened() as read:
         seen(raw_header)
         done = 0
         while done < h.n_records:
             k = min(per_block, h.n_records - done)
-            data = f.read(k * rec)
+            data = read_exactly(read, k * rec)
             if len(data) != k * rec:
-                raise InvalidInput("recording file was truncated while it was being read")
+                raise InvalidInput(source.truncated)
             seen(data)
             if areas:
                 buf: bytearray | None = None
@@ -333,6 +427,7 @@ def _edf_blocks(
                 report.records_with_short_neutral_label = counts.short_label_records
             yield data
             done += k
+        source.finish(read)
     meta.annotation_count = counts.annotations
     report.complete = True
 

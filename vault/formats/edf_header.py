@@ -16,7 +16,7 @@ import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from decimal import Decimal
-from typing import BinaryIO
+from typing import Protocol
 
 from vault.errors import InvalidInput, UsageError
 from vault.formats.channels import is_known_label, is_known_unit, neutral_label
@@ -218,7 +218,8 @@ def parse_header(data: bytes, file_size: int) -> EdfHeader:
         raise _bad("number-of-records field (offset 236)", "is not a positive 8-digit count")
     if body != n_records * record_bytes:
         what = "shorter" if body < n_records * record_bytes else "longer"
-        raise _bad("data records", f"are {what} than the header declares (truncated or padded)")
+        raise _bad("data records", f"are {what} than the number-of-records field (offset 236) "
+                   "declares (truncated or padded)")
     return EdfHeader(fields, signals, is_bdf, variant, start, n_records, duration, header_bytes)
 
 
@@ -241,11 +242,33 @@ def _parse_signal(i: int, columns: Mapping[str, list[bytes]], is_bdf: bool) -> S
     return SignalHeader(i, raw, spr, is_annotation)
 
 
-def read_header(stream: BinaryIO, file_size: int) -> tuple[EdfHeader, bytes]:
+def read_exactly(read: Callable[[int], bytes], n: int) -> bytes:
+    """`n` bytes from a sequential reader that may return fewer per call; fewer only at its end."""
+    data = read(n)
+    if len(data) == n or not data:
+        return data
+    parts = bytearray(data)
+    while len(parts) < n and (more := read(n - len(parts))):
+        parts += more
+    return bytes(parts)
+
+
+class SupportsRead(Protocol):
+    """A sequential reader: `.read(n)` returns up to `n` bytes, b"" at the end (no seek)."""
+
+    def read(self, n: int, /) -> bytes: ...
+
+
+def read_header(stream: SupportsRead, file_size: int) -> tuple[EdfHeader, bytes]:
     """Read and parse the header at the stream's start; returns it with its raw bytes."""
-    first = stream.read(BLOCK)
+    return header_from(stream.read, file_size)
+
+
+def header_from(read: Callable[[int], bytes], file_size: int) -> tuple[EdfHeader, bytes]:
+    """`read_header` for a reader function."""
+    first = read_exactly(read, BLOCK)
     _, _, header_bytes = parse_fixed(first, file_size)
-    data = first + stream.read(header_bytes - BLOCK)
+    data = first + read_exactly(read, header_bytes - BLOCK)
     return parse_header(data, file_size), data
 
 

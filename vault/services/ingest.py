@@ -11,7 +11,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -19,8 +19,21 @@ from vault import crypto
 from vault.errors import InvalidInput, NotFound, PolicyRefusal, UsageError
 from vault.formats import scores, strictjson
 from vault.formats.bids import check_recording
-from vault.formats.edf import DeidOptions, deidentified_blocks, npy_deidentified_blocks
-from vault.formats.edf_header import choose_date_offset, known_start_date, read_header, uniform_below
+from vault.formats.edf import (
+    Deidentified,
+    DeidOptions,
+    deidentified_blocks,
+    deidentified_stream,
+    npy_deidentified_blocks,
+    read_stream_header,
+)
+from vault.formats.edf_header import (
+    SupportsRead,
+    choose_date_offset,
+    known_start_date,
+    read_header,
+    uniform_below,
+)
 from vault.policy.consent import covers_storage
 from vault.policy.event_codes import EventCodes
 from vault.storage import db as storage
@@ -137,43 +150,83 @@ def scrub_clear_metadata(ctx: Context) -> int:
     return len(rows)
 
 
-def ingest_eeg(ctx: Context, pid: str, path: Path, *, sidecar: Path | None,
-               event_codes: str | Sequence[str] | None, keep_sex: bool,
-               age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
+def _begin_eeg(ctx: Context, pid: str, event_codes: str | Sequence[str] | None
+               ) -> tuple[dt.datetime, EventCodes | None]:
+    """The checks before any byte of a recording is read: role, participant, consent."""
     ctx.require_steward("ingest.eeg")
     now = ctx.now()
     registry.require_participant(ctx.conn, pid)
     _require_storage_consent(ctx, [pid], EEG, now)
-    codes = event_codes_for(ctx, event_codes)
+    return now, event_codes_for(ctx, event_codes)
+
+
+def ingest_eeg(ctx: Context, pid: str, path: Path, *, sidecar: Path | None,
+               event_codes: str | Sequence[str] | None, keep_sex: bool,
+               age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
+    now, codes = _begin_eeg(ctx, pid, event_codes)
     path = Path(path)
     numpy_input = path.suffix.lower() in (".npy", ".npz")
     if numpy_input and sidecar is None:
         raise UsageError("NumPy recordings need a sidecar (JSON: sampling rate, channels, units)",
                          param="sidecar")
-    inputs = [path, Path(sidecar)] if numpy_input and sidecar is not None else [path]
-    tag = None
-    if numpy_input:  # NumPy: hashed first (and again after reading); EDF: while it streams
-        tag = _content_tag(ctx, pid, _file_digests(inputs))
-        if (row := _stored_as(ctx, pid, tag)) is not None:
-            return _already_stored(ctx, pid, *row, now)
-    offset, new_offset = _date_offset(ctx, pid, start_date(path, sidecar if numpy_input else None))
+    if not numpy_input:
+        offset, new_offset = _date_offset(ctx, pid, start_date(path, None))
+        options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
+                              age_band_years=age_band_years)
+        seen = crypto.StreamingDigest()
+        deid = deidentified_blocks(path, options, observe=seen.update)
+        return _store_eeg(ctx, pid, deid, now=now, offset=(offset, new_offset),
+                          read_tag=lambda: _content_tag(ctx, pid, [seen]), expected_tag=None,
+                          keep_header_identity=keep_header_identity)
+    assert sidecar is not None
+    inputs = [path, Path(sidecar)]
+    tag = _content_tag(ctx, pid, _file_digests(inputs))  # hashed first, and again after reading
+    if (row := _stored_as(ctx, pid, tag)) is not None:
+        return _already_stored(ctx, pid, *row, now)
+    offset, new_offset = _date_offset(ctx, pid, start_date(path, sidecar))
+    options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
+                          age_band_years=age_band_years)
+    deid = npy_deidentified_blocks(path, sidecar, options)
+    return _store_eeg(ctx, pid, deid, now=now, offset=(offset, new_offset),
+                      read_tag=lambda: _content_tag(ctx, pid, _file_digests(inputs)),
+                      expected_tag=tag, keep_header_identity=keep_header_identity)
+
+
+def ingest_eeg_stream(ctx: Context, pid: str, stream: SupportsRead, size: int, *, name: str,
+                      event_codes: str | Sequence[str] | None, keep_sex: bool,
+                      age_band_years: int | None, keep_header_identity: bool) -> dict[str, Any]:
+    """`ingest_eeg` for an EDF/EDF+/BDF arriving on a sequential stream of `size` announced
+    bytes (an upload): the header is checked against `size` before anything else is read,
+    the data records pass through the same de-identification as a file's, a block at a time."""
+    now, codes = _begin_eeg(ctx, pid, event_codes)
+    if Path(str(name)).suffix.lower() in (".npy", ".npz"):
+        raise UsageError("a streamed recording is EDF, EDF+ or BDF; NumPy arrays are ingested "
+                         "from a file with their sidecar", param="name")
+    header, raw, read = read_stream_header(stream, size)
+    offset, new_offset = _date_offset(ctx, pid, known_start_date(header) or OFFSET_REFERENCE)
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
                           age_band_years=age_band_years)
     seen = crypto.StreamingDigest()
-    if numpy_input:
-        assert sidecar is not None
-        deid = npy_deidentified_blocks(path, sidecar, options)
-    else:
-        deid = deidentified_blocks(path, options, observe=seen.update)
+    deid = deidentified_stream(header, raw, read, size, options, observe=seen.update)
+    return _store_eeg(ctx, pid, deid, now=now, offset=(offset, new_offset),
+                      read_tag=lambda: _content_tag(ctx, pid, [seen]), expected_tag=None,
+                      keep_header_identity=keep_header_identity)
+
+
+def _store_eeg(ctx: Context, pid: str, deid: Deidentified, *, now: dt.datetime,
+               offset: tuple[int, bool], read_tag: Callable[[], str], expected_tag: str | None,
+               keep_header_identity: bool) -> dict[str, Any]:
+    """Encrypt the de-identified blocks as they stream, then record them in one transaction;
+    `read_tag()` is the content tag of what was read (known once the blocks are consumed).
+    Anything raised on the way discards what was written: no blob, row or audit entry."""
     check_recording(deid.meta)  # a file the export would refuse is refused now, nothing stored
     info = ctx.door.write_blob(pid, EEG, _prefixed(deid.header, deid.blocks))
     blob_id = info.blob_id
     written = [blob_id]
     try:
-        read = _content_tag(ctx, pid, _file_digests(inputs) if numpy_input else [seen])
-        if tag is not None and read != tag:
+        tag = read_tag()
+        if expected_tag is not None and tag != expected_tag:
             raise InvalidInput("recording file changed while it was being read; nothing was stored")
-        tag = read
         if (row := _stored_as(ctx, pid, tag)) is not None:  # the same content was stored before
             ctx.door.discard(blob_id)
             return _already_stored(ctx, pid, *row, now)
@@ -188,8 +241,8 @@ def ingest_eeg(ctx: Context, pid: str, path: Path, *, sidecar: Path | None,
         summary = _summary(report)
         at = iso_utc(now)
         with storage.transaction(ctx.conn):
-            if new_offset:
-                ctx.door.store_date_offset(pid, offset)
+            if offset[1]:
+                ctx.door.store_date_offset(pid, offset[0])
             ctx.insert_blob(info, at)
             if identity is not None:
                 ctx.insert_blob(identity, at)
