@@ -172,6 +172,13 @@ class Vault:
         """The pinned policy set (change it with `apply_policy`)."""
         return self._policy
 
+    def policy_document(self) -> dict[str, Any]:
+        """The pinned policy set as {"version", "lines"}: what `policy show` prints, locally and
+        through the service."""
+        from vault.policy.describe import describe_policy
+
+        return {"version": self._policy.version, "lines": describe_policy(self._policy)}
+
     def _set_policy(self, policy: PolicySet) -> None:
         self._policy = policy
         self._engine = PolicyEngine(

@@ -21,6 +21,7 @@ COMMANDS: dict[str, str] = {
 
 # VaultError.param (an argument of a library call) -> the option that sets it
 OPTIONS: dict[str, str] = {
+    "ca": "MINDWARD_CA",
     "epsilons": "--epsilons",
     "event_codes": "--event-codes",
     "items": "--items",
@@ -32,9 +33,12 @@ OPTIONS: dict[str, str] = {
     "port": "--port",
     "public_key": "--key",
     "received": "--received",
+    "passphrase": "MINDWARD_NEW_PASSPHRASE",
     "release": "--release",
     "scope": "--scope",
+    "server": "--server",
     "sidecar": "--sidecar",
+    "token": "MINDWARD_TOKEN",
     "sweep_every_hours": "--sweep-every-hours",
     "tls_cert": "--tls-cert",
     "unit": "--unit",

@@ -269,6 +269,11 @@ class RemoteVault:
             local["manifest"] = str(out / receive.MANIFEST)
         return local
 
+    def export_utility(self, *args: Any, **options: Any) -> dict[str, Any]:
+        """Not through a service: its figures are computed without noise from the real ratings."""
+        raise UsageError("the utility figures are not differentially private: they are computed "
+                         "on the vault's own computer only (Vault.export_utility there)", param="server")
+
     def check_export(self, document: dict[str, Any]) -> dict[str, Any]:
         return self._post("/exports/check", {"document": document})
 

@@ -66,8 +66,8 @@ def _loopback(host: str) -> bool:
 
 def check_token(token: str | None) -> str:
     if not token:
-        raise AuthenticationFailed("no token: the steward issues one ('member add' or 'member token')",
-                                   param="token")
+        raise AuthenticationFailed("no token was given (a steward issues one: Vault.add_member, "
+                                   "Vault.issue_token)", param="token")
     if not token.isascii() or not token.isprintable() or any(c.isspace() for c in token):
         raise AuthenticationFailed("authentication failed")  # never echo what was given
     return token
@@ -140,7 +140,9 @@ class Session:
         try:
             yield
         except httpx.ConnectError as exc:
-            raise Unreachable(f"cannot reach the service at {self.url} ({_why(exc)})") from None
+            why = _why(exc)
+            raise Unreachable(f"cannot reach the service at {self.url} ({why})",
+                              param="ca" if "certificate" in why else "server") from None
         except httpx.TimeoutException:
             raise Unreachable(f"the service at {self.url} did not answer in time") from None
         except (httpx.TransportError, httpx.StreamError) as exc:
@@ -150,7 +152,7 @@ class Session:
 def _why(exc: Exception) -> str:
     text = str(exc)
     if "CERTIFICATE_VERIFY_FAILED" in text or "certificate" in text.lower():
-        return "its TLS certificate is not trusted: set MINDWARD_CA to the lab's CA file"
+        return "its TLS certificate is not trusted here: pass the lab's CA certificate file"
     return type(exc).__name__
 
 
