@@ -80,7 +80,7 @@ def test_a_redirect_is_not_followed() -> None:
 
 
 @pytest.mark.parametrize("url", ["http://192.0.2.10:8631", "http://lab.example:80", "ftp://127.0.0.1",
-                                 "https://user:pw@lab.example", "https://lab.example/v1",
+                                 "https://user:pw@lab.example", "https://lab.example/api",
                                  "https://lab.example?x=1", "127.0.0.1:8631", ""])
 def test_urls_that_would_leak_the_token_or_mean_something_else_are_refused(url: str) -> None:
     with pytest.raises(vault.UsageError):
@@ -91,6 +91,7 @@ def test_urls_that_would_leak_the_token_or_mean_something_else_are_refused(url: 
                                  "https://lab.example", "https://lab.example:8631/"])
 def test_loopback_http_and_any_https_are_accepted(url: str) -> None:
     assert check_url(url) == url.rstrip("/")
+    assert check_url(url.rstrip("/") + "/v1") == url.rstrip("/")  # as `mindward serve` prints it
 
 
 @pytest.mark.parametrize("token", ["", None, "mwt1-a\nX-Other: 1", "tok en", "tökén"])

@@ -42,12 +42,13 @@ LOOPBACK_NAMES = ("localhost",)
 
 
 def check_url(url: str) -> str:
-    """An http(s) service URL without path, query or credentials; plain http only on this
-    computer (a token sent in clear across a network is a token given away)."""
+    """An http(s) service URL without path (or /v1, as `mindward serve` prints it), query or
+    credentials; plain http only on this computer (a token sent in clear across a network is a
+    token given away)."""
     parts = urlsplit(url.strip())
     if parts.scheme not in ("http", "https") or not parts.hostname:
         raise UsageError("a service URL looks like https://host:port", param="server")
-    if parts.username or parts.password or parts.query or parts.fragment or parts.path not in ("", "/"):
+    if parts.username or parts.password or parts.query or parts.fragment or parts.path.rstrip("/") not in ("", PREFIX):
         raise UsageError("a service URL names only scheme, host and port", param="server")
     if parts.scheme == "http" and not _loopback(parts.hostname):
         raise UsageError("plain http is for a service on this computer only; use https",

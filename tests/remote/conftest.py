@@ -1,0 +1,188 @@
+"""A real `mindward serve` for the remote tests: a subprocess on a free loopback port, over a
+served twin of a lab vault, plus a byte-counting proxy that can kill it mid-answer.
+
+The lab: a steward, an analyst (omar) and an auditor (ines); a cohort with consent forms, one
+recording (pyedflib's test_generator.edf, an independent writer's file) and explicit ratings.
+`local` is a copy where everyone holds a passphrase; `served` a copy converted for the service
+(the same participants, keys and signing key), where omar and ines hold only tokens."""
+
+from __future__ import annotations
+
+import json
+import os
+import select
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import threading
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pytest
+
+from tests.conftest import ROOT, TEST_PASSPHRASE
+
+EXAMPLES = ROOT / "docs" / "examples"
+ANALYST = "analyst passphrase long enough"
+AUDITOR = "auditor passphrase long enough"
+SERVICE_PASSPHRASE = "the service's own passphrase, long"
+PASSPHRASES = {"steward": TEST_PASSPHRASE, "omar": ANALYST, "ines": AUDITOR}
+COHORT = 22
+START_GUARD_S = 180  # only against a hang: a server that never starts fails the fixture
+
+
+def form(code: str, name: str = "consent-all-granted.toml") -> str:
+    return (EXAMPLES / name).read_text().replace('code = "TL-', f'code = "{code}-', 1)
+
+
+def build_lab(root: Path) -> dict[str, str]:
+    import pyedflib.data
+
+    from vault import Vault
+
+    edf = Path(pyedflib.data.__file__).parent / "test_generator.edf"
+    with Vault.init(root / "base", TEST_PASSPHRASE) as v:
+        pids = [v.enrol(form(f"m{i}").encode())["participant_id"] for i in range(COHORT)]
+        v.add_member("omar", "analyst", ANALYST)
+        v.add_member("ines", "auditor", AUDITOR)
+        (root / "ratings.csv").write_text("participant_id,item_id,value\n" + "".join(
+            f"{p},dish-{j:02d},{(i + j) % 4}\n" for i, p in enumerate(pids) for j in range(4)))
+        v.ingest_scores(root / "ratings.csv", "explicit")
+        v.ingest_eeg(pids[0], edf)
+    (root / "form.toml").write_text(form("new"))
+    (root / "amend.toml").write_text((EXAMPLES / "amend-withdraw-recommender.toml").read_text()
+                                     .replace('code = "TL-', 'code = "m1-', 1))
+    (root / "items.txt").write_text("".join(f"dish-{j:02d}\n" for j in range(4)))
+    return {"root": str(root), "pid": pids[0], "pid1": pids[1], "pid2": pids[2], "edf": str(edf)}
+
+
+def make_served_twin(base: Path, twin: Path) -> dict[str, str]:
+    """A copy of `base` converted for the service; returns each member's token."""
+    from vault import Vault
+
+    shutil.copytree(base, twin)
+    with Vault.open(twin, TEST_PASSPHRASE) as v:
+        v.make_served(SERVICE_PASSPHRASE)
+        return {"steward": v.issue_token("steward")["token"],
+                "omar": v.add_member("omar", "analyst")["token"],
+                "ines": v.add_member("ines", "auditor")["token"]}
+
+
+@dataclass
+class Server:
+    process: subprocess.Popen
+    url: str
+    stderr: list[str] = field(default_factory=list)
+
+    def kill(self) -> None:
+        if self.process.poll() is None:
+            os.kill(self.process.pid, signal.SIGKILL)
+            self.process.wait()
+
+    def stop(self) -> None:
+        if self.process.poll() is None:
+            self.process.send_signal(signal.SIGTERM)
+            try:
+                self.process.wait(timeout=60)
+            except subprocess.TimeoutExpired:
+                self.kill()
+
+
+def start_server(vault_dir: Path) -> Server:
+    """`mindward serve` on a free loopback port; returns once it listens (its start line)."""
+    env = {**os.environ, "MINDWARD_PASSPHRASE": SERVICE_PASSPHRASE}
+    env.pop("MINDWARD_SERVER", None)
+    process = subprocess.Popen(
+        [sys.executable, "-m", "vault", "serve", "--vault", str(vault_dir), "--port", "0",
+         "--sweep-every-hours", "0", "--json"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    ready, _, _ = select.select([process.stdout], [], [], START_GUARD_S)
+    line = process.stdout.readline() if ready else ""
+    if not line:
+        process.kill()
+        raise AssertionError(f"mindward serve did not start: {process.stderr.read()[-2000:]}")
+    return Server(process, json.loads(line)["url"])
+
+
+@pytest.fixture(scope="module")
+def lab(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict]:
+    root = tmp_path_factory.mktemp("remote")
+    facts: dict = build_lab(root)
+    shutil.copytree(root / "base", root / "local")
+    facts["tokens"] = make_served_twin(root / "base", root / "served")
+    server = start_server(root / "served")
+    facts["server"] = server
+    try:
+        yield facts
+    finally:
+        server.stop()
+
+
+class KillingProxy:
+    """Forwards one loopback port to the service; once a download of an export archive has
+    sent `after` bytes of its answer, SIGKILLs the service and cuts the connection."""
+
+    def __init__(self, target_url: str, server: Server, after: int) -> None:
+        host_port = target_url.split("://", 1)[1].split("/", 1)[0]
+        self._target = (host_port.rsplit(":", 1)[0], int(host_port.rsplit(":", 1)[1]))
+        self._server, self._after = server, after
+        self._listener = socket.create_server(("127.0.0.1", 0))
+        self.url = f"http://127.0.0.1:{self._listener.getsockname()[1]}"
+        self.killed_after: int | None = None
+        threading.Thread(target=self._accept, daemon=True).start()
+
+    def _accept(self) -> None:
+        while True:
+            try:
+                client, _ = self._listener.accept()
+            except OSError:
+                return
+            upstream = socket.create_connection(self._target)
+            state = {"downloading": False, "sent": 0}
+            threading.Thread(target=self._up, args=(client, upstream, state), daemon=True).start()
+            threading.Thread(target=self._down, args=(upstream, client, state), daemon=True).start()
+
+    def _up(self, client: socket.socket, upstream: socket.socket, state: dict) -> None:
+        for data in _reads(client):
+            if b"GET /v1/exports/" in data:
+                state["downloading"] = True
+            upstream.sendall(data)
+        _close(upstream)
+
+    def _down(self, upstream: socket.socket, client: socket.socket, state: dict) -> None:
+        for data in _reads(upstream):
+            if state["downloading"] and state["sent"] + len(data) > self._after:
+                client.sendall(data[: max(0, self._after - state["sent"])])
+                self._server.kill()
+                self.killed_after = self._after
+                break
+            client.sendall(data)
+            if state["downloading"]:
+                state["sent"] += len(data)
+        _close(client)
+        _close(upstream)
+
+    def close(self) -> None:
+        _close(self._listener)
+
+
+def _reads(sock: socket.socket) -> Iterator[bytes]:
+    while True:
+        try:
+            data = sock.recv(65536)
+        except OSError:
+            return
+        if not data:
+            return
+        yield data
+
+
+def _close(sock: socket.socket) -> None:
+    try:
+        sock.shutdown(socket.SHUT_RDWR)
+    except OSError:
+        pass
+    sock.close()
