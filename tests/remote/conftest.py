@@ -8,6 +8,7 @@ recording (pyedflib's test_generator.edf, an independent writer's file) and expl
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import select
@@ -181,8 +182,6 @@ def _reads(sock: socket.socket) -> Iterator[bytes]:
 
 
 def _close(sock: socket.socket) -> None:
-    try:
+    with contextlib.suppress(OSError):
         sock.shutdown(socket.SHUT_RDWR)
-    except OSError:
-        pass
     sock.close()

@@ -10,8 +10,6 @@ import json
 from pathlib import Path
 from typing import Any
 
-import pytest
-
 from tests.conftest import ROOT
 from tests.remote.conftest import PASSPHRASES
 from vault.cli.app import main
