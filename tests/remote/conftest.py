@@ -123,13 +123,16 @@ def lab(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict]:
 
 
 class KillingProxy:
-    """Forwards one loopback port to the service; once a download of an export archive has
-    sent `after` bytes of its answer, SIGKILLs the service and cuts the connection."""
+    """Forwards one loopback port to the service. In the answer to a download of an export
+    archive: once `after` bytes went through, SIGKILLs the service and cuts the connection; with
+    `flip_after`, changes the byte that follows the first occurrence of those bytes."""
 
-    def __init__(self, target_url: str, server: Server, after: int) -> None:
+    def __init__(self, target_url: str, server: Server, after: int | None,
+                 flip_after: bytes | None = None) -> None:
         host_port = target_url.split("://", 1)[1].split("/", 1)[0]
         self._target = (host_port.rsplit(":", 1)[0], int(host_port.rsplit(":", 1)[1]))
-        self._server, self._after = server, after
+        self._server, self._after, self._flip = server, after, flip_after
+        self.flipped = False
         self._listener = socket.create_server(("127.0.0.1", 0))
         self.url = f"http://127.0.0.1:{self._listener.getsockname()[1]}"
         self.killed_after: int | None = None
@@ -155,7 +158,9 @@ class KillingProxy:
 
     def _down(self, upstream: socket.socket, client: socket.socket, state: dict) -> None:
         for data in _reads(upstream):
-            if state["downloading"] and state["sent"] + len(data) > self._after:
+            if state["downloading"] and self._flip is not None and not self.flipped:
+                data = self._flipped(data)
+            if state["downloading"] and self._after is not None and state["sent"] + len(data) > self._after:
                 client.sendall(data[: max(0, self._after - state["sent"])])
                 self._server.kill()
                 self.killed_after = self._after
@@ -165,6 +170,14 @@ class KillingProxy:
                 state["sent"] += len(data)
         _close(client)
         _close(upstream)
+
+    def _flipped(self, data: bytes) -> bytes:
+        at = data.find(self._flip)
+        if at < 0 or at + len(self._flip) >= len(data):
+            return data
+        self.flipped = True
+        i = at + len(self._flip)
+        return data[:i] + bytes([data[i] ^ 0x20]) + data[i + 1:]
 
     def close(self) -> None:
         _close(self._listener)
