@@ -67,7 +67,7 @@ def test_a_changed_byte_in_the_archive_fails_verification(fresh_service, tmp_pat
     proxy = KillingProxy(server.url, server, after=None, flip_after=b'"Name"')
     try:
         out = tmp_path / "got" / "eeg"
-        code, stdout, err = _run([*EXPORT, "--out", str(out)], proxy.url, tokens["omar"],
+        code, _stdout, err = _run([*EXPORT, "--out", str(out)], proxy.url, tokens["omar"],
                                  monkeypatch, capsys)
     finally:
         proxy.close()
