@@ -69,6 +69,7 @@ PUBLIC: dict[str, str] = {
     "ingest.event_codes_for": "anyone",
     "ingest.scrub_clear_metadata": "anyone",  # what every open does
     "ingest.ingest_eeg": "steward",
+    "ingest.ingest_eeg_stream": "steward",
     "ingest.ingest_scores": "steward",
     "report.record_of_processing": "steward",
     "withdraw.request_withdrawal": "steward",
