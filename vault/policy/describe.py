@@ -35,7 +35,7 @@ def describe_policy(policy: Any) -> list[str]:
             flags.append(f"event codes kept: {kept} (every other annotation is relabelled)")
         if c.kind in ("scores", "ratings"):
             flags.append(f"catalogue of {len(c.items)} items" if c.items else
-                         "no item catalogue: noised releases need --items")
+                         "no item catalogue: noised releases need a list of items")
         lines.append(f"  {cid}: {c.title} [{'; '.join(flags)}]")
     lines.append(f"roles ({len(policy.roles)}):")
     for rid, r in sorted(policy.roles.items()):

@@ -282,7 +282,7 @@ async def ingest_eeg(pid: str, request: Request, credentials: Credentials,
     service = _service(request)
     length = request.headers.get("content-length", "")
     if not length.isdigit():
-        raise vault.UsageError("an upload needs a Content-Length", param="content_length")
+        raise vault.UsageError("an upload needs a Content-Length header")
     import asyncio
 
     stream = BodyStream(asyncio.get_running_loop(), int(length))

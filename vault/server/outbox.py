@@ -40,12 +40,13 @@ class Outbox:
         """A new, not yet existing folder for the export code to write into."""
         return self.root / f"run-{uuid.uuid4().hex}"
 
-    def publish(self, run: Path, export_id: str, member: str) -> None:
+    def publish(self, run: Path, export_id: str, member: str) -> Path:
         if not EXPORT_ID.fullmatch(export_id):
             raise NotFound("the export has an unexpected id")
         final = self.root / export_id
         os.replace(run, final)
         self._waiting[export_id] = Waiting(final, member, time.monotonic())
+        return final
 
     def discard(self, run: Path) -> None:
         _remove(run)

@@ -61,8 +61,10 @@ class Service:
         except BaseException:
             self.outbox.discard(folder)
             raise
-        self.outbox.publish(folder, result["export_id"], view.member)
-        return {**result, "archive": f"/v1/exports/{result['export_id']}/archive"}
+        final = self.outbox.publish(folder, result["export_id"], view.member)
+        moved = {k: str(final) + v[len(str(folder)):] if isinstance(v, str) and v.startswith(str(folder))
+                 else v for k, v in result.items()}  # the paths as they are now, in the outbox
+        return {**moved, "archive": f"/v1/exports/{result['export_id']}/archive"}
 
     async def sweep_forever(self) -> None:
         """The scheduled sweep, on the vault's thread, as the steward who started the service
@@ -90,7 +92,7 @@ def policy_folder(files: dict[str, str]) -> tempfile.TemporaryDirectory[str]:
     pattern = re.compile(POLICY_FILE_NAME)
     for name in files:
         if not pattern.fullmatch(name):
-            raise vault.UsageError("policy file names are lowercase words ending in .toml", param="files")
+            raise vault.UsageError("policy file names are lowercase words ending in .toml")
     folder = tempfile.TemporaryDirectory(prefix="mindward-policy-")
     for name, text in files.items():
         path = Path(folder.name) / name

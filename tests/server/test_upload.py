@@ -1,0 +1,49 @@
+"""Streamed recording uploads: the stored recording is the one a local ingest of the same file
+stores (the same blob: ingesting it again is `already_stored`), and an upload cut short stores
+nothing."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+from tests.server.conftest import edf_file, error_of
+
+
+def test_an_uploaded_recording_is_what_a_local_ingest_stores(lab, serve) -> None:
+    running = serve(lab.vault)
+    data = edf_file().read_bytes()
+    with running.client(lab.tokens["steward"]) as http:
+        # pids[0] had this file ingested locally when the lab was built
+        again = http.post(f"/v1/ingest/eeg/{lab.pids[0]}", content=data)
+        assert again.status_code == 200, again.text
+        assert again.json()["already_stored"] is True
+        fresh = http.post(f"/v1/ingest/eeg/{lab.pids[7]}", content=data,
+                          params={"keep_sex": "true", "age_band": "5"})
+        assert fresh.status_code == 200, fresh.text
+        assert fresh.json()["already_stored"] is False
+        assert fresh.json()["recording"]["format"] in ("EDF", "EDF+", "edf", "edf+")
+
+
+def test_an_upload_cut_short_stores_nothing(lab, serve) -> None:
+    running = serve(lab.vault)
+    data = edf_file().read_bytes()
+
+    def short() -> Iterator[bytes]:
+        yield data[: len(data) // 2]
+
+    with running.client(lab.tokens["steward"]) as http:
+        before = http.get("/v1/info").json()["blobs"]
+        response = http.post(f"/v1/ingest/eeg/{lab.pids[8]}", content=short(),
+                             headers={"Content-Length": str(len(data))})
+        # the client stops sending: the service sees the body end short of its length
+        assert response.status_code == 422, response.text
+        assert error_of(response)["exit_code"] == 8
+    with running.client(lab.tokens["steward"]) as http:
+        assert http.get("/v1/info").json()["blobs"] == before
+
+
+def test_a_malformed_recording_is_refused_as_the_library_refuses_it(lab, serve) -> None:
+    running = serve(lab.vault)
+    with running.client(lab.tokens["steward"]) as http:
+        response = http.post(f"/v1/ingest/eeg/{lab.pids[9]}", content=b"not an EDF file" * 100)
+        assert response.status_code == 422 and error_of(response)["exit_code"] == 8
