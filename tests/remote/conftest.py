@@ -1,6 +1,7 @@
 """A real `mindward serve` for the remote tests: a subprocess on a free loopback port, over a
 served twin of a lab vault, plus a byte-counting proxy that can kill it mid-answer.
 
+The service itself is started by the service tests' launcher (tests/server/conftest.py).
 The lab: a steward, an analyst (omar) and an auditor (ines); a cohort with consent forms, one
 recording (pyedflib's test_generator.edf, an independent writer's file) and explicit ratings.
 `local` is a copy where everyone holds a passphrase; `served` a copy converted for the service
@@ -9,22 +10,18 @@ recording (pyedflib's test_generator.edf, an independent writer's file) and expl
 from __future__ import annotations
 
 import contextlib
-import json
 import os
-import select
 import shutil
 import signal
 import socket
-import subprocess
-import sys
 import threading
 from collections.abc import Iterator
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import pytest
 
 from tests.conftest import ROOT, TEST_PASSPHRASE
+from tests.server.conftest import Running, start
 
 EXAMPLES = ROOT / "docs" / "examples"
 ANALYST = "analyst passphrase long enough"
@@ -32,7 +29,6 @@ AUDITOR = "auditor passphrase long enough"
 SERVICE_PASSPHRASE = "the service's own passphrase, long"
 PASSPHRASES = {"steward": TEST_PASSPHRASE, "omar": ANALYST, "ines": AUDITOR}
 COHORT = 22
-START_GUARD_S = 180  # only against a hang: a server that never starts fails the fixture
 
 
 def form(code: str, name: str = "consent-all-granted.toml") -> str:
@@ -72,40 +68,15 @@ def make_served_twin(base: Path, twin: Path) -> dict[str, str]:
                 "ines": v.add_member("ines", "auditor")["token"]}
 
 
-@dataclass
-class Server:
-    process: subprocess.Popen
-    url: str
-    stderr: list[str] = field(default_factory=list)
-
-    def kill(self) -> None:
-        if self.process.poll() is None:
-            os.kill(self.process.pid, signal.SIGKILL)
-            self.process.wait()
-
-    def stop(self) -> None:
-        if self.process.poll() is None:
-            self.process.send_signal(signal.SIGTERM)
-            try:
-                self.process.wait(timeout=60)
-            except subprocess.TimeoutExpired:
-                self.kill()
+def start_server(vault_dir: Path) -> Running:
+    """`mindward serve` on a free loopback port (the service tests' launcher), no scheduled sweep."""
+    return start(vault_dir, "--sweep-every-hours", "0", passphrase=SERVICE_PASSPHRASE)
 
 
-def start_server(vault_dir: Path) -> Server:
-    """`mindward serve` on a free loopback port; returns once it listens (its start line)."""
-    env = {**os.environ, "MINDWARD_PASSPHRASE": SERVICE_PASSPHRASE}
-    env.pop("MINDWARD_SERVER", None)
-    process = subprocess.Popen(
-        [sys.executable, "-m", "vault", "serve", "--vault", str(vault_dir), "--port", "0",
-         "--sweep-every-hours", "0", "--json"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
-    ready, _, _ = select.select([process.stdout], [], [], START_GUARD_S)
-    line = process.stdout.readline() if ready else ""
-    if not line:
-        process.kill()
-        raise AssertionError(f"mindward serve did not start: {process.stderr.read()[-2000:]}")
-    return Server(process, json.loads(line)["url"])
+def kill(server: Running) -> None:
+    if server.proc.poll() is None:
+        os.kill(server.proc.pid, signal.SIGKILL)
+        server.proc.wait()
 
 
 @pytest.fixture(scope="module")
@@ -119,7 +90,8 @@ def lab(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict]:
     try:
         yield facts
     finally:
-        server.stop()
+        if server.proc.poll() is None:
+            server.stop()
 
 
 class KillingProxy:
@@ -127,7 +99,7 @@ class KillingProxy:
     archive: once `after` bytes went through, SIGKILLs the service and cuts the connection; with
     `flip_after`, changes the byte that follows the first occurrence of those bytes."""
 
-    def __init__(self, target_url: str, server: Server, after: int | None,
+    def __init__(self, target_url: str, server: Running, after: int | None,
                  flip_after: bytes | None = None) -> None:
         host_port = target_url.split("://", 1)[1].split("/", 1)[0]
         self._target = (host_port.rsplit(":", 1)[0], int(host_port.rsplit(":", 1)[1]))
@@ -162,7 +134,7 @@ class KillingProxy:
                 data = self._flipped(data)
             if state["downloading"] and self._after is not None and state["sent"] + len(data) > self._after:
                 client.sendall(data[: max(0, self._after - state["sent"])])
-                self._server.kill()
+                kill(self._server)
                 self.killed_after = self._after
                 break
             client.sendall(data)

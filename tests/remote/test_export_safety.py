@@ -36,7 +36,8 @@ def fresh_service(lab, tmp_path: Path):
     try:
         yield server, tokens, tmp_path / "served"
     finally:
-        server.stop()
+        if server.proc.poll() is None:
+            server.stop()
 
 
 @pytest.mark.parametrize("after", [600, 9000])
@@ -50,7 +51,7 @@ def test_service_killed_mid_download_leaves_no_export(fresh_service, after: int,
                                  monkeypatch, capsys)
     finally:
         proxy.close()
-    assert proxy.killed_after == after and server.process.poll() is not None  # it did die mid-way
+    assert proxy.killed_after == after and server.proc.poll() is not None  # it did die mid-way
     assert code == 11, err
     assert json.loads(stdout)["exit_code"] == 11 and err.count("\n") == 1 and "Traceback" not in err
     assert "export" in err and "nothing was written" in err
