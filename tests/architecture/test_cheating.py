@@ -317,6 +317,7 @@ CONTRACT_PLANTS: dict[str, dict[str, str]] = {
     "storage-keyless": {"storage/planted.py": "from vault import crypto\n"},
     "cli-public": {"cli/planted.py": "from vault.storage import db\n"},
     "remote-keyless": {"remote/planted.py": "from vault.access import door\n"},
+    "http-client": {"cli/planted.py": "import httpx\n"},
     "services-acyclic": {"services/planted_a.py": "from vault.services import planted_b\n",
                          "services/planted_b.py": "from vault.services import planted_a\n"},
 }
