@@ -81,7 +81,8 @@ def test_a_redirect_is_not_followed() -> None:
 
 @pytest.mark.parametrize("url", ["http://192.0.2.10:8631", "http://lab.example:80", "ftp://127.0.0.1",
                                  "https://user:pw@lab.example", "https://lab.example/api",
-                                 "https://lab.example?x=1", "127.0.0.1:8631", ""])
+                                 "https://lab.example?x=1", "127.0.0.1:8631", "", "https://lab.example:port",
+                                 "https://lab.example:99999"])
 def test_urls_that_would_leak_the_token_or_mean_something_else_are_refused(url: str) -> None:
     with pytest.raises(vault.UsageError):
         check_url(url)

@@ -172,7 +172,7 @@ def audit_verify(
     public = vault.parse_public_key(key) if key else None
     if server is not None:
         with _connect(server) as remote:
-            report = remote.verify_audit(public, trusted)
+            report = remote.verify_audit(public_key=public, trusted=trusted)
     else:
         report = vault.verify_audit(_local(path), public_key=public, trusted=trusted).as_dict()
     _emit(as_json, report, lambda: (

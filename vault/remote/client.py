@@ -146,7 +146,7 @@ class RemoteVault:
         return {"ok": ok, "problem": None if ok else "the log does not extend the earlier head",
                 "bundle": bundle}
 
-    def verify_audit(self, public_key: bytes | None = None, trusted: list[Any] | None = None
+    def verify_audit(self, *, public_key: bytes | None = None, trusted: list[Any] | None = None
                      ) -> dict[str, Any]:
         """The service's verify_audit report; with `public_key` it must be the service's, and
         every `trusted` head must be extended by today's log (checked here)."""
@@ -157,14 +157,23 @@ class RemoteVault:
         if public_key is not None:
             report = {**report, "notes": [n for n in report.get("notes", [])
                                           if "stored in the vault" not in n]}
+        problem = self._untrusted(trusted, public_key)
+        return {**report, "ok": False, "problem": problem} if problem else report
+
+    def verify(self, *, trusted: list[Any] | None = None) -> dict[str, Any]:
+        """The service's full verify; each `trusted` head must be extended by today's log."""
+        result = self._post("/verify")
+        problem = self._untrusted(trusted, None)
+        if problem:
+            return {**result, "ok": False, "audit": {**result.get("audit", {}), "ok": False,
+                                                     "problem": problem}}
+        return result
+
+    def _untrusted(self, trusted: list[Any] | None, public_key: bytes | None) -> str | None:
         for head in trusted or []:
             if not self.check_consistency(head, public_key)["ok"]:
-                return {**report, "ok": False,
-                        "problem": f"the log does not extend the trusted head of size {head.tree_size}"}
-        return report
-
-    def verify(self) -> dict[str, Any]:
-        return self._post("/verify")
+                return f"the log does not extend the trusted head of size {head.tree_size}"
+        return None
 
     def _key(self, public_key: bytes | None) -> bytes:
         return self._public_key if public_key is None else bytes(public_key)

@@ -48,8 +48,13 @@ def check_url(url: str) -> str:
     parts = urlsplit(url.strip())
     if parts.scheme not in ("http", "https") or not parts.hostname:
         raise UsageError("a service URL looks like https://host:port", param="server")
-    if parts.username or parts.password or parts.query or parts.fragment or parts.path.rstrip("/") not in ("", PREFIX):
+    extra = parts.username or parts.password or parts.query or parts.fragment
+    if extra or parts.path.rstrip("/") not in ("", PREFIX):
         raise UsageError("a service URL names only scheme, host and port", param="server")
+    try:
+        parts.port  # noqa: B018 (a port that is no number raises here, not deep in httpx)
+    except ValueError:
+        raise UsageError("a service URL's port is a number from 0 to 65535", param="server") from None
     if parts.scheme == "http" and not _loopback(parts.hostname):
         raise UsageError("plain http is for a service on this computer only; use https",
                          param="server")
@@ -146,8 +151,11 @@ class Session:
                               param="ca" if "certificate" in why else "server") from None
         except httpx.TimeoutException:
             raise Unreachable(f"the service at {self.url} did not answer in time") from None
-        except (httpx.TransportError, httpx.StreamError) as exc:
+        except (httpx.HTTPError, httpx.StreamError) as exc:
             raise Unreachable(f"the service at {self.url} broke off ({_why(exc)})") from None
+        except httpx.InvalidURL:
+            raise UsageError("the request names no valid URL (a participant or member id with "
+                             "characters a URL cannot carry?)") from None
 
 
 def _why(exc: Exception) -> str:
