@@ -6,6 +6,8 @@ folder."""
 from __future__ import annotations
 
 import contextlib
+import itertools
+import os
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -30,6 +32,9 @@ def exported(tmp_path_factory: pytest.TempPathFactory) -> dict:
     archive = b"".join(pack(root / "export"))
     return {"root": root, "folder": root / "export", "id": result["export_id"], "key": key,
             "archive": archive}
+
+
+_NAMES = itertools.count()
 
 
 def _source(data: bytes, *, size: int = 4096, fail_after: int | None = None):
@@ -88,7 +93,7 @@ def test_a_truncated_or_changed_archive_leaves_nothing(exported, tmp_path: Path,
     else:
         at = data.draw(st.integers(0, len(archive) - 1), label="offset")
         damaged = archive[:at] + bytes([archive[at] ^ data.draw(st.integers(1, 255))]) + archive[at + 1:]
-    out = tmp_path / f"eeg-{data.draw(st.integers(0, 10**9))}"
+    out = tmp_path / f"eeg-{next(_NAMES)}"  # a fresh folder for every example, shrinks included
     try:
         receive(out, exported["id"], _source(damaged), exported["key"])
     except vault.VaultError as exc:
@@ -112,3 +117,16 @@ def test_the_key_you_hold_must_be_the_services(exported) -> None:
     assert check_public_key(served, served) == exported["key"]
     with pytest.raises(vault.IntegrityError):
         check_public_key("00" * 32, served)
+
+
+def test_an_unwritable_or_file_parent_is_refused_before_anything_is_asked(tmp_path: Path) -> None:
+    from vault.remote.receive import check_out
+
+    (tmp_path / "a-file").write_text("x")
+    with pytest.raises(vault.Conflict):
+        check_out(tmp_path / "a-file" / "deeper" / "out")
+    if os.geteuid() != 0:  # root writes anywhere: the check has nothing to refuse there
+        locked = tmp_path / "locked"
+        locked.mkdir(mode=0o500)
+        with pytest.raises(vault.UsageError):
+            check_out(locked / "out")

@@ -34,6 +34,7 @@ OPTIONS: dict[str, str] = {
     "public_key": "--key",
     "received": "--received",
     "passphrase": "MINDWARD_NEW_PASSPHRASE",
+    "out": "--out",
     "release": "--release",
     "scope": "--scope",
     "server": "--server",

@@ -4,6 +4,7 @@ absent (or empty, as it was): a folder at `out` is always a finished, verified e
 
 from __future__ import annotations
 
+import errno
 import os
 import shutil
 import tempfile
@@ -13,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import vault
-from vault.errors import Conflict, IntegrityError, UsageError
+from vault.errors import Conflict, IntegrityError, StorageFull, UsageError
 
 STAGING_MARK = ".receiving-"
 MAX_ARCHIVE_BYTES = 256 * 2**30  # far above any export a vault writes; the service bounds it too
@@ -22,10 +23,18 @@ MANIFEST = "manifest.json"
 
 
 def check_out(out: Path) -> Path:
-    """The same rule as a local export: a new or empty folder (checked before the request)."""
+    """The same rule as a local export: a new or empty folder below folders; and one this user
+    can create (checked before the request, so no export is made that could not be kept)."""
     out = Path(out)
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise Conflict(f"{out} exists and is not an empty folder; refusing to write an export there")
+    probe = out.absolute().parent
+    while not probe.exists():
+        probe = probe.parent
+    if not probe.is_dir():
+        raise Conflict(f"{probe} is not a folder; refusing to write an export below it")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise UsageError(f"folder {probe} is not writable", param="out")
     return out
 
 
@@ -36,8 +45,11 @@ def receive(out: Path, export_id: str, chunks: Callable[[], AbstractContextManag
 
     out = check_out(out)
     parent = out.absolute().parent
-    _private_dirs(parent)
-    staging = Path(tempfile.mkdtemp(dir=parent, prefix=f".{out.name}{STAGING_MARK}"))
+    try:
+        _private_dirs(parent)
+        staging = Path(tempfile.mkdtemp(dir=parent, prefix=f".{out.name}{STAGING_MARK}"))
+    except OSError as exc:
+        raise _write_error(exc, parent) from None
     try:
         with chunks() as stream:
             unpack(stream, staging, max_bytes=MAX_ARCHIVE_BYTES, max_files=MAX_ARCHIVE_FILES)
@@ -53,9 +65,19 @@ def receive(out: Path, export_id: str, chunks: Callable[[], AbstractContextManag
         os.replace(staging, out)
         _fsync_dir(parent)
         return report
+    except OSError as exc:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise _write_error(exc, parent) from None
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
+
+
+def _write_error(exc: OSError, parent: Path) -> Exception:
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return StorageFull(f"not enough disk space for the export in {parent}; nothing was kept")
+    return UsageError(f"cannot write the export in {parent} ({exc.strerror}); nothing was kept",
+                      param="out")
 
 
 def _private_dirs(path: Path) -> None:
@@ -64,8 +86,6 @@ def _private_dirs(path: Path) -> None:
     while not probe.exists():
         missing.append(probe)
         probe = probe.parent
-    if not probe.is_dir():
-        raise Conflict(f"{probe} is not a folder; refusing to write an export below it")
     for directory in reversed(missing):
         directory.mkdir(mode=0o700)
         os.chmod(directory, 0o700)
