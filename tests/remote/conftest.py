@@ -79,12 +79,19 @@ def kill(server: Running) -> None:
         server.proc.wait()
 
 
+@pytest.fixture(scope="session")
+def lab_files(tmp_path_factory: pytest.TempPathFactory) -> dict:
+    """The lab vault (`base`) and its input files, built once for every remote test."""
+    return build_lab(tmp_path_factory.mktemp("remote-lab"))
+
+
 @pytest.fixture(scope="module")
-def lab(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict]:
-    root = tmp_path_factory.mktemp("remote")
-    facts: dict = build_lab(root)
-    shutil.copytree(root / "base", root / "local")
-    facts["tokens"] = make_served_twin(root / "base", root / "served")
+def lab(lab_files: dict, tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict]:
+    """The twins of the lab vault (`local`, `served`) and a service running over `served`."""
+    root = tmp_path_factory.mktemp("twins")
+    base = Path(lab_files["root"]) / "base"
+    shutil.copytree(base, root / "local")
+    facts: dict = {**lab_files, "twins": str(root), "tokens": make_served_twin(base, root / "served")}
     server = start_server(root / "served")
     facts["server"] = server
     try:

@@ -29,9 +29,9 @@ def _leftovers(parent: Path, name: str) -> list[str]:
 
 
 @pytest.fixture
-def fresh_service(lab, tmp_path: Path):
+def fresh_service(lab_files, tmp_path: Path):
     """A served twin of its own with a running service (the test kills it)."""
-    tokens = make_served_twin(Path(lab["root"]) / "base", tmp_path / "served")
+    tokens = make_served_twin(Path(lab_files["root"]) / "base", tmp_path / "served")
     server = start_server(tmp_path / "served")
     try:
         yield server, tokens, tmp_path / "served"

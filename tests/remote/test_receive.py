@@ -8,6 +8,7 @@ from __future__ import annotations
 import contextlib
 import itertools
 import os
+import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -17,15 +18,14 @@ from hypothesis import strategies as st
 
 import vault
 from tests.conftest import TEST_PASSPHRASE
-from tests.remote.conftest import build_lab
 from vault.formats.archive import pack
 from vault.remote.receive import check_public_key, receive
 
 
 @pytest.fixture(scope="module")
-def exported(tmp_path_factory: pytest.TempPathFactory) -> dict:
+def exported(lab_files: dict, tmp_path_factory: pytest.TempPathFactory) -> dict:
     root = tmp_path_factory.mktemp("receive")
-    build_lab(root)
+    shutil.copytree(Path(lab_files["root"]) / "base", root / "base")
     with vault.Vault.open(root / "base", TEST_PASSPHRASE) as v:
         result = v.export_eeg("method-development", root / "export")
         key = v.public_key

@@ -23,8 +23,9 @@ def _run(argv: list[str], env: dict[str, str], monkeypatch, capsys) -> tuple[int
     return code, out, err
 
 
-def test_the_cli_over_tls_trusts_only_the_ca_it_is_given(lab, tmp_path: Path, monkeypatch, capsys) -> None:
-    tokens = make_served_twin(Path(lab["root"]) / "base", tmp_path / "served")
+def test_the_cli_over_tls_trusts_only_the_ca_it_is_given(lab_files, tmp_path: Path, monkeypatch,
+                                                        capsys) -> None:
+    tokens = make_served_twin(Path(lab_files["root"]) / "base", tmp_path / "served")
     cert, key = make_certificate(tmp_path)
     running = start(tmp_path / "served", "--tls-cert", str(cert), "--tls-key", str(key),
                     "--sweep-every-hours", "0", passphrase=SERVICE_PASSPHRASE)

@@ -120,14 +120,14 @@ def _without(document: Any, keys: set[str]) -> Any:
 
 def test_every_member_command_answers_the_same_locally_and_through_the_service(
         lab, monkeypatch, capsys) -> None:
-    root = Path(lab["root"])
+    twins = Path(lab["twins"])
     mismatches = []
     for member, template, extra in ROWS:
-        local_env = {"MINDWARD_VAULT": str(root / "local"), "MINDWARD_PASSPHRASE": PASSPHRASES[member]}
+        local_env = {"MINDWARD_VAULT": str(twins / "local"), "MINDWARD_PASSPHRASE": PASSPHRASES[member]}
         remote_env = {"MINDWARD_SERVER": lab["server"].url, "MINDWARD_TOKEN": lab["tokens"][member]}
-        local = _run([*_argv(template, lab, root / "out-local"), "--member", member], local_env,
+        local = _run([*_argv(template, lab, twins / "out-local"), "--member", member], local_env,
                      monkeypatch, capsys)
-        remote = _run(_argv(template, lab, root / "out-remote"), remote_env, monkeypatch, capsys)
+        remote = _run(_argv(template, lab, twins / "out-remote"), remote_env, monkeypatch, capsys)
         for code, _, err in (local, remote):
             assert "Traceback" not in err and (code == 0 or err.count("\n") == 1), (template, err)
         keys = set(DIFFER) | set(extra)
