@@ -8,7 +8,7 @@ import os
 import shutil
 import time
 from collections.abc import Iterable, Iterator
-from dataclasses import replace
+from dataclasses import dataclass, field, replace
 from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from types import MappingProxyType
@@ -30,11 +30,12 @@ from vault.formats import strictjson
 from vault.policy.decide import CohortDecision, Request
 from vault.policy.engine import Grant, PolicyEngine
 from vault.policy.policyset import PolicySet, load_default_policy, load_policy_dir
-from vault.services import auditing, blobs, consent, members, policy_apply, rekeying
+from vault.services import auditing, blobs, consent, members, policy_apply, rekeying, tokens
 from vault.services.context import Context
 from vault.services.members import check_member_name, check_passphrase, reads_data
-from vault.storage import audit_rows, counts, participants, registry
+from vault.storage import audit_rows, counts, participants, registry, slots
 from vault.storage import db as storage
+from vault.storage import tokens as token_rows
 from vault.storage.db import Connection, DatabaseError
 from vault.times import iso_utc, parse_utc
 
@@ -99,6 +100,27 @@ def _newest_entry_time(conn: Connection) -> datetime:
         return datetime.min.replace(tzinfo=UTC)
 
 
+@dataclass(eq=False)
+class _Shared:
+    """What an open vault and its member views share: one connection, door, log and pinned
+    policy (see `Vault.authenticate`)."""
+
+    path: Path
+    clock: Clock
+    conn: Connection
+    door: access.Door
+    lock_fd: int
+    signing: crypto.SigningKey
+    audit: audit.AuditLog | None = None
+    policy: PolicySet | None = None
+    engine: PolicyEngine | None = None
+    gate: tokens.AuthGate = field(default_factory=tokens.AuthGate)
+    closed: bool = False
+
+    def __reduce__(self) -> object:
+        raise TypeError("an open vault is not serialisable")
+
+
 class Vault:
     """An unlocked vault. Open with `Vault.open`, create with `Vault.init`; close when done.
 
@@ -109,22 +131,66 @@ class Vault:
                  lock_fd: int, clock: Clock | None = None) -> None:
         if unlocked.door is None:
             raise UsageError("this member's slot opens no vault keys")
-        self.path = path
-        self._clock: Clock = clock or SYSTEM_CLOCK
-        self._conn = conn
-        self._door = unlocked.door
+        door = unlocked.door
+        self._shared = _Shared(path, clock or SYSTEM_CLOCK, conn, door, lock_fd, door.signer())
         self._member = member
         self._role = unlocked.role
-        self._lock_fd = lock_fd
-        self.vault_id = self._door.vault_id
-        self._signing = self._door.signer()
-        self._audit = audit.AuditLog(conn, self.vault_id, signer=self._signing, stamp=self._stamp)
+        self._base: Vault | None = None  # the service's vault, on member views (`authenticate`)
+        self._shared.audit = audit.AuditLog(conn, self.vault_id, signer=self._signing,
+                                            stamp=self._stamp)
         # rows this open found written without the key, now flagged (None: none found)
         self.audit_flagged: dict[str, Any] | None = None
-        self._closed = False
         self._set_policy(registry.load_policy(conn, self._pinned_policy_version()))
         self._door.attach(lambda: self._engine, self._audit_batch)
         self._floor = _newest_entry_time(conn)
+
+    # the shared state, by the names the methods use
+    @property
+    def path(self) -> Path:
+        return self._shared.path
+
+    @property
+    def vault_id(self) -> str:
+        return self._shared.door.vault_id
+
+    @property
+    def _clock(self) -> Clock:
+        return self._shared.clock
+
+    @_clock.setter
+    def _clock(self, clock: Clock) -> None:
+        self._shared.clock = clock
+
+    @property
+    def _conn(self) -> Connection:
+        return self._shared.conn
+
+    @property
+    def _door(self) -> access.Door:
+        return self._shared.door
+
+    @property
+    def _lock_fd(self) -> int:
+        return self._shared.lock_fd
+
+    @property
+    def _signing(self) -> crypto.SigningKey:
+        return self._shared.signing
+
+    @property
+    def _audit(self) -> audit.AuditLog:
+        assert self._shared.audit is not None
+        return self._shared.audit
+
+    @property
+    def _engine(self) -> PolicyEngine:
+        assert self._shared.engine is not None
+        return self._shared.engine
+
+    @property
+    def _policy(self) -> PolicySet:
+        assert self._shared.policy is not None
+        return self._shared.policy
 
     def _pinned_policy_version(self) -> str:
         """The pinned policy version, checked against its keyed tag (set by init and
@@ -180,8 +246,9 @@ class Vault:
         return {"version": self._policy.version, "lines": describe_policy(self._policy)}
 
     def _set_policy(self, policy: PolicySet) -> None:
-        self._policy = policy
-        self._engine = PolicyEngine(
+        """Pin `policy` for this vault and every member view of it (they share the engine)."""
+        self._shared.policy = policy
+        self._shared.engine = PolicyEngine(
             policy, lambda pids: registry.latest_consents(self._conn, pids), self._audit_batch,
             self.now, self._door.pseudonyms)
 
@@ -318,9 +385,11 @@ class Vault:
                     self._pin_added = False
 
     def close(self) -> None:
-        """Sign a tree head over any new entries, then release the vault."""
-        if self._closed:
+        """Sign a tree head over any new entries, then release the vault (a member view
+        from `authenticate` leaves that to its service)."""
+        if self._shared.closed or self._base is not None:
             return
+        self._shared.gate.flush_all(self._context())
         try:
             head = self._audit.latest_head()
             if head is None or head.tree_size < self._audit.size:
@@ -331,7 +400,7 @@ class Vault:
                 with storage.transaction(self._conn):
                     self._audit.sign_head(self._signing, at)
         finally:
-            self._closed = True
+            self._shared.closed = True
             self._conn.close()
             os.close(self._lock_fd)
 
@@ -571,15 +640,56 @@ class Vault:
 
     # -- members ------------------------------------------------------------------------------------
 
-    def add_member(self, name: str, role: str, passphrase: str) -> dict[str, str]:
-        """A new member with their own passphrase (it wraps the same master key)."""
-        return members.add_member(self._context(), name, role, passphrase)
+    def add_member(self, name: str, role: str, passphrase: str | None = None, *,
+                   expires_days: int = tokens.DEFAULT_DAYS) -> dict[str, Any]:
+        """A new member: with a passphrase (it wraps the same master key) on a local vault; on a
+        served vault a token-only member (the token is in the result, shown once), or a steward
+        with a passphrase who can unlock the service."""
+        return members.add_member(self._context(), name, role, passphrase,
+                                  expires_days=expires_days)
 
     def remove_member(self, name: str) -> dict[str, str]:
+        """Remove a member's key slot and tokens; nobody else is rekeyed."""
         return members.remove_member(self._context(), name)
 
-    def members(self) -> list[dict[str, str]]:
+    def members(self) -> list[dict[str, Any]]:
         return members.members(self._context())
+
+    # -- serving ------------------------------------------------------------------------------------
+
+    @property
+    def served(self) -> bool:
+        """Whether the vault was converted for `mindward serve` (members hold tokens, not keys)."""
+        return tokens.served(self._context())
+
+    def make_served(self, passphrase: str) -> dict[str, Any]:
+        """Convert the vault for the service: a fresh master key under this steward's
+        `passphrase`; every other key slot removed (stewards only; audited)."""
+        return rekeying.make_served(self._context(), passphrase)
+
+    def issue_token(self, member: str, *, expires_days: int = tokens.DEFAULT_DAYS) -> dict[str, Any]:
+        """A new token for a member of a served vault; the token text is shown only here."""
+        return tokens.issue_token(self._context(), member, expires_days)
+
+    def revoke_tokens(self, member: str) -> dict[str, Any]:
+        """Revoke every token of `member` (they stay a member, with no way in)."""
+        return tokens.revoke_tokens(self._context(), member)
+
+    def authenticate(self, token: object, *, client: str, operation: str) -> Vault:
+        """The vault as the token's member sees it (same door, engine and connection; their
+        name and role), or AuthenticationFailed, one opaque message for every reason, or
+        Throttled after too many failures from `client`. Each use and failure is audited.
+        Call it, and use the view, on the thread that opened the vault."""
+        if self._base is not None:
+            return self._base.authenticate(token, client=client, operation=operation)
+        member, role = tokens.authenticate(self._context(), token, client=client,
+                                           operation=operation, gate=self._shared.gate)
+        return _MemberView(self._shared, member, role, self)
+
+    def access_summary(self, purpose: str, categories: Iterable[str]) -> dict[str, Any]:
+        """`access_check` as a document: counts always, per-participant reasons to stewards only
+        (what `mindward access check --json` prints, locally and through the service)."""
+        return self.access_check(purpose, categories).summary(show_ids=self.role == "steward")
 
     def export_members(self, export_id: str) -> set[str]:
         """The vault ids an export holds (its lineage; stewards only)."""
@@ -606,6 +716,19 @@ class Vault:
 
     def sign_head(self) -> audit.TreeHead:
         return auditing.sign_head(self._context())
+
+
+class _MemberView(Vault):
+    """`Vault.authenticate`'s result: the service's open vault as one token member sees it.
+    It shares the service's state; its own are the member, role and clock floor."""
+
+    def __init__(self, shared: _Shared, member: str, role: str, base: Vault) -> None:
+        self._shared = shared
+        self._member = member
+        self._role = role
+        self._base = base
+        self.audit_flagged = None
+        self._floor = _newest_entry_time(shared.conn)
 
 
 def _check_schema(conn: Connection) -> str:
@@ -645,6 +768,9 @@ def describe(path: Path) -> dict[str, Any]:
             "blobs": counts.rows(conn, "blobs"),
             "audit_entries": counts.rows(conn, "audit_log"),
             "latest_tree_head": None if head is None else audit.TreeHead.from_row(*head).to_dict(),
+            "served": storage.find_meta(conn, "served_at") is not None,
+            "key_slots": [{"member": m, "role": r} for m, r in slots.holders(conn)],
+            "token_members": token_rows.member_count(conn),
         }
     finally:
         conn.close()

@@ -14,7 +14,7 @@ import vault
 from vault.errors import VaultError
 
 ERRORS = {"VaultError", "UsageError", "AuthenticationFailed", "PolicyRefusal", "IntegrityError",
-          "NotFound", "Conflict", "InvalidInput", "StorageFull"}
+          "NotFound", "Conflict", "InvalidInput", "StorageFull", "Throttled", "Unreachable"}
 VERIFIERS = {"verify_audit", "verify_proof", "verify_export", "verify_receipt_file",
              "check_consistency", "prove", "read_tree_head", "describe", "read_audit_log",
              "parse_public_key"}

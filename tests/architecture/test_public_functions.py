@@ -47,6 +47,14 @@ PUBLIC: dict[str, str] = {
     "members.export_members": "steward",
     "policy_apply.apply_policy": "steward",
     "rekeying.rekey": "steward",
+    "rekeying.make_served": "steward",
+    "tokens.served": "anyone",  # whether the vault was converted (a public fact, in describe)
+    "tokens.member_roles": "anyone",  # names and roles, as members() shows
+    "tokens.token_summary": "anyone",  # counts and expiry dates, no token text or tag
+    "tokens.add_token_member": "steward",
+    "tokens.issue_token": "steward",
+    "tokens.revoke_tokens": "steward",
+    "tokens.authenticate": "anyone",  # the check itself: audited, throttled, one opaque failure
     "budget.affordable": "anyone",  # reads remaining budget of ids the caller names
     "budget.charge": "steward",
     "budget.charge_in_transaction": "anyone",  # inside an export's transaction only (refused outside)

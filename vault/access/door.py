@@ -209,6 +209,10 @@ class Door:
     def lab_code_tag(self, code: str) -> str:
         return self._ring.lab_code_tag(code)
 
+    def token_tag(self, token_id: str, member: str, role: str, expires_at: str,
+                  secret: bytes) -> str:
+        return self._ring.token_tag(token_id, member, role, expires_at, secret)
+
     def consent_tag(self, pid: str, number: int, digest: str) -> str:
         return self._ring.consent_tag(pid, number, digest)
 

@@ -232,6 +232,15 @@ class KeyRing:
         key = crypto.derive_key(self._secret, "consent-head", self.vault_id.encode())
         return crypto.hmac_sha256(key, f"{pid}\n{number}\n{digest}".encode("ascii")).hex()
 
+    def token_tag(self, token_id: str, member: str, role: str, expires_at: str,
+                  secret: bytes) -> str:
+        """Keyed tag of a member token, binding its member, role and expiry: a row edited to
+        widen a role or extend an expiry no longer matches, and a copy of the files (without
+        the vault secret) cannot test guesses offline."""
+        key = crypto.derive_key(self._secret, "member-token", self.vault_id.encode())
+        bound = f"{token_id}\n{member}\n{role}\n{expires_at}\n".encode("ascii")
+        return crypto.hmac_sha256(key, bound + secret).hex()
+
     def lab_code_tag(self, code: str) -> str:
         """Keyed tag of a lab participant code: finds duplicates without storing the code."""
         key = crypto.derive_key(self._secret, "lab-code-tag", self.vault_id.encode())

@@ -130,7 +130,10 @@ def info(path: PlaceOpt = None, server: ServerOpt = None, as_json: JsonOpt = Fal
     else:
         facts = vault.describe(_local(path))
     _emit(as_json, facts, lambda: "\n".join(
-        f"{k.replace('_', ' ')}: {v}" for k, v in facts.items() if k != "latest_tree_head"))
+        f"{k.replace('_', ' ')}: {v}" for k, v in facts.items()
+        if k not in ("latest_tree_head", "key_slots"))
+        + f"\nkey slots: {len(facts['key_slots'])} ("
+        + (", ".join(f"{s['member']} {s['role']}" for s in facts["key_slots"]) or "none") + ")")
 
 
 @app.command()
@@ -145,6 +148,23 @@ def rekey(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = Fals
         f"Rekeyed: {result['keys_rewrapped']} participant keys re-wrapped under a new master key."
         + (f" {result['member_slots_dropped']} other members must be re-added."
            if result["member_slots_dropped"] else "")))
+
+
+@app.command("serve-setup")
+def serve_setup(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+                server: ServerOpt = None) -> None:
+    """Convert a vault for 'mindward serve': a fresh master key under a new passphrase
+    (MINDWARD_NEW_PASSPHRASE) and every other key slot removed; members then use tokens."""
+    _no_server(server, "serve-setup")
+    with _open(path, member) as v:
+        new = _passphrase("New passphrase: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
+        result = v.make_served(new)
+    dropped = ", ".join(result["slots_dropped"]) or "none"
+    _emit(as_json, result, lambda: (
+        f"served since {result['served_at']}; key slots removed: {dropped}\n"
+        "Give each member a token ('mindward member add NAME --role ROLE' or 'member token NAME').\n"
+        "Copies of the vault's files made before now still open with the removed passphrases for "
+        "what they held then; keep them as safe as the vault or destroy them."))
 
 
 @app.command()
@@ -274,6 +294,8 @@ app.add_typer(access_app, name="access")
 app.add_typer(policy_app, name="policy")
 FormArg = Annotated[Path, typer.Argument(help="A filled consent form (TOML).")]
 CategoryOpt = Annotated[list[str], typer.Option("--category", help="Data category (repeatable).")]
+ExpiresOpt = Annotated[int, typer.Option("--expires-days", min=1, max=366,
+                                         help="Served vaults: days until the token expires.")]
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -326,12 +348,47 @@ def consent_show(participant: Annotated[str, typer.Argument(help="Participant id
 def member_add(name: Annotated[str, typer.Argument(help="Member name.")],
                role: Annotated[str, typer.Option("--role", help="steward, analyst or auditor.")],
                path: PlaceOpt = None, server: ServerOpt = None,
-               member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
-    """Add a member; their passphrase comes from MINDWARD_NEW_PASSPHRASE or a prompt."""
+               member: MemberOpt = "steward", as_json: JsonOpt = False,
+               expires_days: ExpiresOpt = 30,
+               key_slot: Annotated[bool, typer.Option(
+                   "--key-slot", help="Served vaults: a steward who can unlock the service "
+                                      "(passphrase from MINDWARD_NEW_PASSPHRASE or a prompt).")] = False,
+               ) -> None:
+    """Add a member. Locally their passphrase comes from MINDWARD_NEW_PASSPHRASE or a prompt; on
+    a served vault they get a token, printed once (steward key slots need --key-slot)."""
     with _open(path, member, server) as v:
-        new = _passphrase(f"Passphrase for {name}: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
-        result = v.add_member(name, role, new)
-    _emit(as_json, result, f"added {result['member']} as {result['role']}")
+        new = None
+        if not v.served or key_slot:
+            new = _passphrase(f"Passphrase for {name}: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
+        result = v.add_member(name, role, new, expires_days=expires_days)
+    _emit(as_json, result, lambda: f"added {result['member']} as {result['role']}"
+          + (_token_text(result) if "token" in result else ""))
+
+
+def _token_text(result: dict[str, Any]) -> str:
+    return (f"\ntoken (shown only now; hand it over privately, it expires {result['expires_at']}):"
+            f"\n{result['token']}")
+
+
+@member_app.command("token")
+def member_token(name: Annotated[str, typer.Argument(help="Member name.")],
+                 path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
+                 as_json: JsonOpt = False, expires_days: ExpiresOpt = 30) -> None:
+    """Issue a new token for a member of a served vault (printed once)."""
+    with _open(path, member, server) as v:
+        result = v.issue_token(name, expires_days=expires_days)
+    _emit(as_json, result, lambda: f"new token for {result['member']} ({result['role']})"
+          + _token_text(result))
+
+
+@member_app.command("revoke")
+def member_revoke(name: Annotated[str, typer.Argument(help="Member name.")],
+                  path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
+                  as_json: JsonOpt = False) -> None:
+    """Revoke every token of a member (they keep their name and role, with no way in)."""
+    with _open(path, member, server) as v:
+        result = v.revoke_tokens(name)
+    _emit(as_json, result, f"revoked {result['revoked']} token(s) of {name}")
 
 
 @member_app.command("remove")
@@ -350,8 +407,11 @@ def member_list(path: PlaceOpt = None, server: ServerOpt = None,
     """List members and their roles."""
     with _open(path, member, server) as v:
         rows = v.members()
-    _emit(as_json, rows, lambda: "\n".join(f"{r['member']}  {r['role']}  since {r['created_at']}"
-                                           for r in rows))
+    _emit(as_json, rows, lambda: "\n".join(
+        f"{r['member']}  {r['role']}  since {r['created_at']}  "
+        + ("key slot" if r["key_slot"] else "token only")
+        + (f", {r['tokens']} token(s) until {r['expires_at']}" if r["tokens"] else "")
+        for r in rows))
 
 
 @access_app.command("check")
@@ -362,7 +422,7 @@ def access_check(
 ) -> None:
     """Who a request would include and why others are not, without reading any data."""
     with _open(path, member, server) as v:
-        result = render.summarise_decision(v.access_check(purpose, category), show_ids=v.role == "steward")
+        result = v.access_summary(purpose, category)
     _emit(as_json, result, lambda: render.format_decision(result))
     if not result["permit"]:
         raise typer.Exit(vault.PolicyRefusal.exit_code)

@@ -17,12 +17,14 @@ COMMANDS: dict[str, str] = {
     "withdraw-receipt": "see 'mindward withdraw receipt'",
     "check-export": "check it with 'mindward export check'",
     "make-served": "convert it with 'mindward serve-setup' first",
+    "serve-setup": "run 'mindward serve-setup' first",
 }
 
 # VaultError.param (an argument of a library call) -> the option that sets it
 OPTIONS: dict[str, str] = {
     "ca": "MINDWARD_CA",
     "epsilons": "--epsilons",
+    "expires_days": "--expires-days",
     "event_codes": "--event-codes",
     "items": "--items",
     "host": "--host",
@@ -36,6 +38,7 @@ OPTIONS: dict[str, str] = {
     "passphrase": "MINDWARD_NEW_PASSPHRASE",
     "out": "--out",
     "release": "--release",
+    "role": "--role",
     "scope": "--scope",
     "server": "--server",
     "sidecar": "--sidecar",

@@ -10,22 +10,6 @@ from collections.abc import Iterable, Mapping
 from typing import Any
 
 
-def summarise_decision(decision: Any, *, show_ids: bool) -> dict[str, Any]:
-    """A decision as the CLI shows it: counts always, per-participant reasons to stewards only."""
-    summary: dict[str, Any] = {
-        "permit": decision.permit, "purpose": decision.request.purpose,
-        "categories": sorted(decision.request.categories),
-        "policy_version": decision.policy_version, "eligible": len(decision.eligible),
-        "included": len(decision.included),
-        "cohort_reasons": [r.value for r in decision.cohort_reasons],
-        "refused_by_reason": dict(sorted(decision.counts.items())),
-        "message": decision.refusal_message(),
-    }
-    if show_ids:
-        summary["participants"] = {pid: d.explain() for pid, d in decision.decisions.items()}
-    return summary
-
-
 def format_decision(summary: dict[str, Any]) -> str:
     """The text of `mindward access check`."""
     lines = [f"purpose {summary['purpose']} ({', '.join(summary['categories'])}): "

@@ -198,6 +198,22 @@ class CohortDecision:
         """Who the grant may cover: the eligible participants, or nobody if refused."""
         return self.eligible if self.permit else ()
 
+    def summary(self, *, show_ids: bool) -> dict[str, Any]:
+        """The decision as a document: counts always, per-participant reasons only with
+        `show_ids` (stewards)."""
+        doc: dict[str, Any] = {
+            "permit": self.permit, "purpose": self.request.purpose,
+            "categories": sorted(self.request.categories),
+            "policy_version": self.policy_version, "eligible": len(self.eligible),
+            "included": len(self.included),
+            "cohort_reasons": [r.value for r in self.cohort_reasons],
+            "refused_by_reason": dict(sorted(self.counts.items())),
+            "message": self.refusal_message(),
+        }
+        if show_ids:
+            doc["participants"] = {pid: d.explain() for pid, d in self.decisions.items()}
+        return doc
+
     def refusal_message(self) -> str:
         """One line for a refused request: reasons and counts, never participant ids."""
         if self.permit:

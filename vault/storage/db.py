@@ -90,6 +90,10 @@ _TABLES: dict[str, tuple[dict[str, type], str | tuple[str, ...]]] = {
     "tree_heads": ({"tree_size": int, "body": bytes, "signature": bytes}, "tree_size"),
     # notes (refusals, log reads) by members who hold no signing key; folded into the log
     "member_notes": ({"id": int, "body": bytes, "mac": bytes}, "id"),
+    # tokens of a served vault's members: a keyed tag over id, member, role, expiry and secret
+    # (never the secret); revoking deletes the row
+    "member_tokens": ({"token_id": str, "member": str, "role": str, "tag": str,
+                       "created_at": str, "expires_at": str}, "token_id"),
 }
 
 _NOT_NULL: dict[str, set[str]] = {
@@ -112,6 +116,7 @@ _NOT_NULL: dict[str, set[str]] = {
     "audit_log": {"entry", "leaf_hash"},
     "tree_heads": {"body", "signature"},
     "member_notes": {"body", "mac"},
+    "member_tokens": {"member", "role", "tag", "created_at", "expires_at"},
 }
 
 _APPEND_ONLY_TRIGGERS = """

@@ -36,3 +36,17 @@ def drop_slot(conn: sqlite3.Connection, member: str) -> None:
 
 def count_other_slots(conn: sqlite3.Connection, member: str) -> int:
     return int(conn.execute("SELECT COUNT(*) FROM keyslots WHERE member != ?", (member,)).fetchone()[0])
+
+
+def drop_others(conn: sqlite3.Connection, member: str) -> list[str]:
+    """Delete every slot but `member`'s; returns the members whose slot went."""
+    names = [str(r[0]) for r in conn.execute(
+        "SELECT member FROM keyslots WHERE member != ? ORDER BY member", (member,))]
+    conn.execute("DELETE FROM keyslots WHERE member != ?", (member,))
+    return names
+
+
+def holders(conn: sqlite3.Connection) -> list[tuple[str, str]]:
+    """(member, role) of every key slot."""
+    return [(str(m), str(r)) for m, r in conn.execute(
+        "SELECT member, role FROM keyslots ORDER BY member")]
