@@ -97,7 +97,6 @@ HINTS: dict[str, str] = {
     "withdraw-request": "record a withdrawal request first (Vault.withdraw_request)",
     "withdraw-receipt": "the receipt is kept (Vault.withdraw_receipt)",
     "check-export": "check the export against the vault (Vault.check_export)",
-    "make-served": "convert the vault for serving first (Vault.make_served)",
     "serve-setup": "convert the vault for the service first (Vault.make_served)",
 }
 

@@ -16,7 +16,6 @@ COMMANDS: dict[str, str] = {
     "withdraw-request": "record one with 'mindward withdraw request'",
     "withdraw-receipt": "see 'mindward withdraw receipt'",
     "check-export": "check it with 'mindward export check'",
-    "make-served": "convert it with 'mindward serve-setup' first",
     "serve-setup": "run 'mindward serve-setup' first",
 }
 

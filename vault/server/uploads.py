@@ -9,9 +9,10 @@ from collections.abc import AsyncIterator
 from concurrent.futures import Future
 from typing import Any
 
-from vault.errors import InvalidInput
+from vault.errors import InvalidInput, VaultError
 
 QUEUE_CHUNKS = 16
+IDLE_S = 60.0  # an upload that sends nothing for this long is dropped (it holds the vault's thread)
 _END = b""
 
 
@@ -27,7 +28,13 @@ class BodyStream:
 
     def read(self, n: int = -1) -> bytes:
         while not self._ended and (n < 0 or len(self._buffer) < n):
-            item = asyncio.run_coroutine_threadsafe(self._queue.get(), self._loop).result()
+            pending = asyncio.run_coroutine_threadsafe(self._queue.get(), self._loop)
+            try:
+                item = pending.result(timeout=IDLE_S)
+            except TimeoutError:
+                pending.cancel()
+                self._ended = True
+                raise InvalidInput("the upload stalled; nothing was stored") from None
             if isinstance(item, BaseException):
                 self._ended = True
                 raise item
@@ -53,15 +60,25 @@ class BodyStream:
                     await self._queue.put(chunk)
             if seen != self.size:
                 raise InvalidInput("the upload broke off before its Content-Length; nothing was stored")
-        except BaseException as exc:
-            failure = exc if isinstance(exc, Exception) else InvalidInput("the upload was aborted")
-            if work.done():  # nobody reads any more
-                with contextlib.suppress(asyncio.QueueFull):
-                    self._queue.put_nowait(failure)
-            else:
-                await self._queue.put(failure)
+        except VaultError as exc:  # a body limit, or a length that does not match
+            await self._fail(exc, work)
+            raise
+        except Exception as exc:  # the client went away mid-way
+            failure = InvalidInput("the upload broke off before its Content-Length; nothing was stored")
+            await self._fail(failure, work)
+            raise failure from exc
+        except BaseException:  # cancelled: the work is over already
+            await self._fail(InvalidInput("the upload was aborted"), work)
             raise
         await self._queue.put(_END)
+
+    async def _fail(self, failure: Exception, work: Future[Any]) -> None:
+        """Tell the reader (the library, on the vault's thread) that the body failed."""
+        if work.done():  # nobody reads any more
+            with contextlib.suppress(asyncio.QueueFull):
+                self._queue.put_nowait(failure)
+        else:
+            await self._queue.put(failure)
 
 
 async def stream_into(work: Future[Any], stream: BodyStream, chunks: AsyncIterator[bytes]) -> Any:
