@@ -1,7 +1,6 @@
 """A real `mindward serve` for the remote tests: a subprocess on a free loopback port, over a
 served twin of a lab vault, plus a byte-counting proxy that can kill it mid-answer.
 
-The service itself is started by the service tests' launcher (tests/server/conftest.py).
 The lab: a steward, an analyst (omar) and an auditor (ines); a cohort with consent forms, one
 recording (pyedflib's test_generator.edf, an independent writer's file) and explicit ratings.
 `local` is a copy where everyone holds a passphrase; `served` a copy converted for the service
@@ -10,18 +9,22 @@ recording (pyedflib's test_generator.edf, an independent writer's file) and expl
 from __future__ import annotations
 
 import contextlib
+import json
 import os
+import select
 import shutil
 import signal
 import socket
+import subprocess
+import sys
 import threading
 from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
 
 from tests.conftest import ROOT, TEST_PASSPHRASE
-from tests.server.conftest import Running, start
 
 EXAMPLES = ROOT / "docs" / "examples"
 ANALYST = "analyst passphrase long enough"
@@ -29,6 +32,7 @@ AUDITOR = "auditor passphrase long enough"
 SERVICE_PASSPHRASE = "the service's own passphrase, long"
 PASSPHRASES = {"steward": TEST_PASSPHRASE, "omar": ANALYST, "ines": AUDITOR}
 COHORT = 22
+START_GUARD_S = 180  # only against a hang: a service that never starts fails the fixture
 
 
 def form(code: str, name: str = "consent-all-granted.toml") -> str:
@@ -68,12 +72,44 @@ def make_served_twin(base: Path, twin: Path) -> dict[str, str]:
                 "ines": v.add_member("ines", "auditor")["token"]}
 
 
-def start_server(vault_dir: Path) -> Running:
-    """`mindward serve` on a free loopback port (the service tests' launcher), no scheduled sweep."""
-    return start(vault_dir, "--sweep-every-hours", "0", passphrase=SERVICE_PASSPHRASE)
+@dataclass
+class Service:
+    """A running `mindward serve`: its process, the URL its start line gave, its stderr file."""
+
+    proc: subprocess.Popen
+    url: str
+    log: Path
+
+    def stop(self) -> None:
+        """SIGTERM (as a service manager stops it), then the pipe closed."""
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            self.proc.wait(timeout=START_GUARD_S)
+        self.proc.stdout.close()
 
 
-def kill(server: Running) -> None:
+def start_server(vault_dir: Path, *extra: str) -> Service:
+    """`mindward serve` on a free loopback port with no scheduled sweep (as tests/server/conftest.py
+    launches it, but stderr into a file beside the vault: no pipe left for a thread to drain)."""
+    log = vault_dir.parent / f"{vault_dir.name}.serve.log"
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MINDWARD_")}
+    env["MINDWARD_PASSPHRASE"] = SERVICE_PASSPHRASE
+    with log.open("wb") as errors:
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "vault", "serve", "--vault", str(vault_dir), "--port", "0", "--json",
+             "--sweep-every-hours", "0", *extra], stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+            stderr=errors, env=env)
+    ready, _, _ = select.select([proc.stdout], [], [], START_GUARD_S)
+    line = proc.stdout.readline() if ready else b""
+    if not line:
+        proc.kill()
+        proc.wait()
+        proc.stdout.close()
+        raise AssertionError(f"mindward serve did not start: {log.read_text()[-2000:]}")
+    return Service(proc, json.loads(line)["url"], log)
+
+
+def kill(server: Service) -> None:
     if server.proc.poll() is None:
         os.kill(server.proc.pid, signal.SIGKILL)
         server.proc.wait()
@@ -97,8 +133,7 @@ def lab(lab_files: dict, tmp_path_factory: pytest.TempPathFactory) -> Iterator[d
     try:
         yield facts
     finally:
-        if server.proc.poll() is None:
-            server.stop()
+        server.stop()
 
 
 class KillingProxy:
@@ -106,7 +141,7 @@ class KillingProxy:
     archive: once `after` bytes went through, SIGKILLs the service and cuts the connection; with
     `flip_after`, changes the byte that follows the first occurrence of those bytes."""
 
-    def __init__(self, target_url: str, server: Running, after: int | None,
+    def __init__(self, target_url: str, server: Service, after: int | None,
                  flip_after: bytes | None = None) -> None:
         host_port = target_url.split("://", 1)[1].split("/", 1)[0]
         self._target = (host_port.rsplit(":", 1)[0], int(host_port.rsplit(":", 1)[1]))

@@ -36,8 +36,7 @@ def fresh_service(lab_files, tmp_path: Path):
     try:
         yield server, tokens, tmp_path / "served"
     finally:
-        if server.proc.poll() is None:
-            server.stop()
+        server.stop()
 
 
 @pytest.mark.parametrize("after", [600, 9000])

@@ -7,8 +7,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from tests.remote.conftest import SERVICE_PASSPHRASE, make_served_twin
-from tests.server.conftest import start
+from tests.remote.conftest import make_served_twin, start_server
 from tests.server.test_tls import make_certificate
 from vault.cli.app import main
 
@@ -27,8 +26,7 @@ def test_the_cli_over_tls_trusts_only_the_ca_it_is_given(lab_files, tmp_path: Pa
                                                         capsys) -> None:
     tokens = make_served_twin(Path(lab_files["root"]) / "base", tmp_path / "served")
     cert, key = make_certificate(tmp_path)
-    running = start(tmp_path / "served", "--tls-cert", str(cert), "--tls-key", str(key),
-                    "--sweep-every-hours", "0", passphrase=SERVICE_PASSPHRASE)
+    running = start_server(tmp_path / "served", "--tls-cert", str(cert), "--tls-key", str(key))
     try:
         env = {"MINDWARD_SERVER": running.url, "MINDWARD_TOKEN": tokens["ines"]}
         code, out, err = _run(["audit", "show", "--limit", "2", "--json"],

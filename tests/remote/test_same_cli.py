@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import re
 from pathlib import Path
 from typing import Any
 
@@ -22,6 +23,8 @@ DIFFER: dict[str, str] = {
     "manifest": "inside each side's own export folder",
     # drawn at random or read from the clock when the command runs
     "export_id": "random per export", "request_id": "random per withdrawal request",
+    "receipt_id": "random per receipt", "last": "clock (the newest export to a recipient)",
+    "consent_digest": "a digest over the consent version, which holds its recording time",
     "at": "clock", "created_at": "clock", "recorded_at": "clock", "processed_at": "clock",
     "signed_at": "clock", "generated_at": "clock", "expires_at": "clock", "served_at": "clock",
     "receipt": "signed over its own processing time",
@@ -70,6 +73,12 @@ ROWS: list[tuple[str, str, dict[str, str]]] = [
     ("omar", "budget", {}),
     ("steward", "budget", {}),
     ("ines", "budget", {}),
+    ("ines", "access check --purpose primary-analysis --category eeg-raw", {}),
+    ("ines", "policy show", {}),
+    ("ines", "member list", {}),
+    ("ines", "consent show {pid}", {}),
+    ("ines", "export eeg --purpose method-development --out {out}/eeg-ines", {}),
+    ("ines", "report", {}),
     ("ines", "audit show --limit 3", {}),
     ("omar", "audit show --limit 3", {}),
     ("steward", "audit verify", {}),
@@ -89,6 +98,24 @@ ROWS: list[tuple[str, str, dict[str, str]]] = [
     ("omar", "member add intruder --role steward", {}),
     ("steward", "member remove newcomer", {}),
 ]
+
+
+# commands that act as no member locally (they need no passphrase): no --member there
+KEY_FREE = ("info", "audit verify", "audit prove")
+# Errors name random ids, folders and times of their side; each is replaced before comparing.
+MESSAGE_NOISE = [(re.compile(r"\b[0-9a-f]{32}\b"), "<vault id>"),
+                 (re.compile(r"\bw-[0-9a-f]{16}\b"), "w-<id>"),
+                 (re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ"), "<time>")]
+# Rows where the service answers today where the local vault refuses: the gap is a finding, kept
+# here so the table still runs; each entry must go when the two agree (the test says so).
+# Locally an auditor's passphrase opens no key, so every Vault command refuses them (exit 4); the
+# service's member view lets an auditor's token call these three (the library checks no role for
+# them): reported to the lead (issue 15), to be refused in the library for roles that read no data.
+KNOWN_GAPS: dict[tuple[str, str], str] = {
+    ("ines", "budget"): "auditor reads budget totals through the service",
+    ("ines", "policy show"): "auditor reads the pinned policy through the service",
+    ("ines", "member list"): "auditor lists members through the service",
+}
 
 
 def _argv(template: str, lab: dict[str, Any], out: Path) -> list[str]:
@@ -125,21 +152,38 @@ def test_every_member_command_answers_the_same_locally_and_through_the_service(
     for member, template, extra in ROWS:
         local_env = {"MINDWARD_VAULT": str(twins / "local"), "MINDWARD_PASSPHRASE": PASSPHRASES[member]}
         remote_env = {"MINDWARD_SERVER": lab["server"].url, "MINDWARD_TOKEN": lab["tokens"][member]}
-        local = _run([*_argv(template, lab, twins / "out-local"), "--member", member], local_env,
+        as_member = [] if template.startswith(KEY_FREE) else ["--member", member]
+        local = _run([*_argv(template, lab, twins / "out-local"), *as_member], local_env,
                      monkeypatch, capsys)
         remote = _run(_argv(template, lab, twins / "out-remote"), remote_env, monkeypatch, capsys)
-        for code, _, err in (local, remote):
-            assert "Traceback" not in err and (code == 0 or err.count("\n") == 1), (template, err)
+        for code, _, err in (local, remote):  # a refusal is one line; a document may say "refused"
+            assert "Traceback" not in err and err.count("\n") <= 1, (template, err)
         keys = set(DIFFER) | set(extra)
+        if (member, template) in KNOWN_GAPS:
+            assert local[0] != remote[0], f"{member}: {template} agrees now: take it off KNOWN_GAPS"
+            continue
         if local[0] != remote[0]:
             mismatches.append(f"{member}: {template}: exit {local[0]} locally, {remote[0]} remotely "
                               f"({local[2].strip()} | {remote[2].strip()})")
-        elif local[0] == 0 and _without(local[1], keys) != _without(remote[1], keys):
+        elif _is_error(local[1]):
+            if not _local_only_refusal(local[1]) and _message(local[1], twins / "out-local") != _message(
+                    remote[1], twins / "out-remote"):
+                mismatches.append(f"{member}: {template}: errors differ: {local[1]} | {remote[1]}")
+        elif _without(local[1], keys) != _without(remote[1], keys):
             mismatches.append(f"{member}: {template}: documents differ:\n  {_without(local[1], keys)}"
                               f"\n  {_without(remote[1], keys)}")
-        elif local[0] != 0 and not _local_only_refusal(local[1]) and local[1] != remote[1]:
-            mismatches.append(f"{member}: {template}: errors differ: {local[1]} | {remote[1]}")
     assert not mismatches, "\n".join(mismatches)
+
+
+def _message(error: dict[str, Any], out: Path) -> str:
+    text = error["error"].replace(str(out), "<out>")
+    for pattern, replacement in MESSAGE_NOISE:
+        text = pattern.sub(replacement, text)
+    return f"{error['exit_code']}: {text}"
+
+
+def _is_error(document: Any) -> bool:
+    return isinstance(document, dict) and set(document) == {"error", "exit_code"}
 
 
 def _local_only_refusal(error: dict[str, Any]) -> bool:
