@@ -207,3 +207,30 @@ def test_the_comparison_sees_a_difference() -> None:
     b = {"included": 3, "at": "z", "rows": [{"spent": 2.0, "created_at": "w"}]}
     assert _without(a, set(DIFFER)) != _without(b, set(DIFFER))
     assert _without(a, set(DIFFER)) == _without({**a, "at": "q"}, set(DIFFER))
+
+
+TEXT_ROWS = [("steward", "info"), ("steward", "member list"), ("omar", "policy show"),
+             ("omar", "access check --purpose primary-analysis --category eeg-raw"),
+             ("steward", "budget"), ("ines", "audit show --limit 3"), ("steward", "audit verify"),
+             ("steward", "report"), ("steward", "withdraw pending"), ("steward", "audit head"),
+             ("omar", "export matrix --purpose recommender-training --category ratings-explicit "
+                      "--epsilon 0.1 --items {root}/items.txt --out {out}/matrix-text")]
+
+
+def test_the_text_output_renders_the_services_documents(lab, monkeypatch, capsys) -> None:
+    """Without --json the same renderers print the service's documents: what they print locally."""
+    twins = Path(lab["twins"])
+    for member, template in TEXT_ROWS:
+        remote_env = {"MINDWARD_SERVER": lab["server"].url, "MINDWARD_TOKEN": lab["tokens"][member]}
+        argv = _argv(template, lab, twins / "out-text")[:-1]  # no --json
+        code, out, err = _text(argv, remote_env, monkeypatch, capsys)
+        assert code == 0 and out.strip() and "Traceback" not in err, (template, code, err)
+
+
+def _text(argv: list[str], env: dict[str, str], monkeypatch, capsys) -> tuple[int, str, str]:
+    for name, value in env.items():
+        monkeypatch.setenv(name, value)
+    monkeypatch.delenv("MINDWARD_VAULT", raising=False)
+    code = main(argv)
+    out, err = capsys.readouterr()
+    return code, out, err
