@@ -93,3 +93,19 @@ def test_an_untouched_download_is_the_exported_folder(fresh_service, tmp_path: P
     assert json.loads(stdout)["out"] == str(out) and (out / "manifest.json").is_file()
     assert main(["export", "verify", str(out), "--key", key["public_key"]]) == 0
     assert _leftovers(out.parent, out.name) == []
+
+
+def test_a_service_signing_with_another_key_than_yours_gets_no_request(fresh_service, tmp_path: Path,
+                                                                       monkeypatch, capsys) -> None:
+    """MINDWARD_KEY is the vault's key as you hold it: a service with another key (not your vault's,
+    or a swapped one) is refused before any export is asked of it; the right key works."""
+    server, tokens, served = fresh_service
+    out = tmp_path / "eeg"
+    monkeypatch.setenv("MINDWARD_KEY", "ab" * 32)
+    code, _, err = _run([*EXPORT, "--out", str(out)], server.url, tokens["omar"], monkeypatch, capsys)
+    assert code == 5 and "another key" in err and not out.exists()
+    from vault import describe
+
+    monkeypatch.setenv("MINDWARD_KEY", describe(served)["public_key"])
+    code, _, err = _run([*EXPORT, "--out", str(out)], server.url, tokens["omar"], monkeypatch, capsys)
+    assert code == 0, err
