@@ -79,6 +79,7 @@ PUBLIC: dict[str, str] = {
     "ingest.ingest_eeg": "steward",
     "ingest.ingest_eeg_stream": "steward",
     "ingest.ingest_scores": "steward",
+    "ingest.ingest_scores_bytes": "steward",
     "report.record_of_processing": "steward",
     "withdraw.request_withdrawal": "steward",
     "withdraw.pending": "steward",

@@ -18,7 +18,7 @@ import pyedflib
 import pytest
 
 from tests.clock import ManualClock, at
-from tests.conftest import ROOT, TEST_PASSPHRASE
+from tests.conftest import ROOT, TEST_PASSPHRASE, assert_absent
 from tests.formats.test_edf_stream import Breaks, Trickle
 from tests.services.test_ingest import ENTERED, NOW, PYEDFLIB_DATA, _form, _read_back, _snapshot
 from vault import InvalidInput, PolicyRefusal, UsageError, Vault
@@ -170,15 +170,15 @@ def test_no_consent_for_storage_is_refused_before_the_stream_is_read(lab) -> Non
     assert upload.calls == 0
 
 
-@pytest.mark.parametrize(("kwargs", "param"), [({"size": -5}, "size"), ({"size": "12"}, "size"),
-                                               ({"name": "array.npy"}, "name")])
-def test_bad_arguments_are_usage_errors(lab, kwargs: dict, param: str) -> None:
+@pytest.mark.parametrize(("kwargs", "message"), [({"size": -5}, "announced size"),
+                                                 ({"size": "12"}, "announced size"),
+                                                 ({"name": "array.npy"}, "EDF, EDF\\+ or BDF")])
+def test_bad_arguments_are_usage_errors(lab, kwargs: dict, message: str) -> None:
     v, pids = lab
     data = (PYEDFLIB_DATA / "test_generator.edf").read_bytes()
     args = {"size": len(data), **kwargs}
-    with pytest.raises(UsageError) as info:
+    with pytest.raises(UsageError, match=message):
         at(v, NOW).ingest_eeg_stream(pids["all-granted"], io.BytesIO(data), **args)
-    assert info.value.param == param
 
 
 # --------------------------------------------------------------------------- memory
@@ -248,3 +248,62 @@ def test_an_hour_of_64_channels_streams_in_bounded_memory(vault_path: Path) -> N
     finally:
         v.close()
         shutil.rmtree(vault_path / "blobs", ignore_errors=True)  # a GB of test ciphertext
+
+
+# --------------------------------------------------------------------------- scores as bytes
+
+
+def _scores(rows: list[tuple[str, str, str]]) -> bytes:
+    return ("participant_id,item_id,value\n" + "".join(f"{p},{i},{x}\n" for p, i, x in rows)).encode()
+
+
+def test_scores_bytes_and_scores_file_are_one_ingest(lab, tmp_path: Path) -> None:
+    v, pids = lab
+    pid = pids["all-granted"]
+    data = _scores([(pid, "dish-01", "3"), (pid, "dish-02", "0")])
+    first = at(v, NOW).ingest_scores_bytes(data, "explicit", name="ratings.csv")
+    assert first["batches_stored"] == 1 and first["rows"] == 2
+    path = tmp_path / "ratings.csv"
+    path.write_bytes(data)
+    again = at(v, NOW).ingest_scores(path, "explicit")  # the same rows from a file: already there
+    assert again["batches_stored"] == 0 and again["batches_already_stored"] == 1
+    with pytest.raises(InvalidInput, match=r"row 2: .*already has"):
+        at(v, NOW).ingest_scores_bytes(_scores([(pid, "dish-01", "1")]), "explicit")
+    assert_absent(v.path, b"dish-01", b"dish-02")  # item ids only inside ciphertext
+    assert not list((v.path / "tmp").iterdir())
+
+
+@pytest.mark.parametrize(("data", "message"), [
+    (b"\xff\xfe not utf-8", "not UTF-8"), (b"pid,item,value\nx,y,1\n", "row 1"),
+    (b"participant_id,item_id,value\n" + b"0" * 32 + b",dish-01,1\n", "row 2: unknown"),
+])
+def test_bad_score_bytes_store_nothing(lab, data: bytes, message: str) -> None:
+    v, _ = lab
+    before = _snapshot(v.path)
+    with pytest.raises(InvalidInput, match=message):
+        at(v, NOW).ingest_scores_bytes(data, "explicit")
+    assert _snapshot(v.path) == before
+
+
+@pytest.mark.parametrize(("args", "message"), [(("a text, not bytes", "explicit"), "must be bytes"),
+                                               ((b"", "explicit", "scores.xlsx"), "a CSV file"),
+                                               ((b"", "neither"), "'derived' or 'explicit'")])
+def test_score_bytes_usage_errors(lab, args: tuple, message: str) -> None:
+    v, _ = lab
+    data, kind, *name = args
+    with pytest.raises(UsageError, match=message):
+        at(v, NOW).ingest_scores_bytes(data, kind, **({"name": name[0]} if name else {}))
+
+
+def test_an_analyst_may_not_upload_scores(vault_path: Path) -> None:
+    clock = ManualClock(NOW)
+    with Vault.init(vault_path, TEST_PASSPHRASE, clock=clock) as v:
+        pid = v.enrol(FORM)["participant_id"]
+        v.add_member("omar", "analyst", ANALYST)
+    with Vault.open(vault_path, ANALYST, member="omar", clock=clock) as a, \
+            pytest.raises(PolicyRefusal, match="stewards only"):
+        a.ingest_scores_bytes(_scores([(pid, "dish-01", "1")]), "explicit")
+    with Vault.open(vault_path, TEST_PASSPHRASE, clock=clock) as v:
+        last = v.audit_entries()[-1]
+        assert [b for b in v.blobs() if b["kind"] == "ratings-explicit"] == []
+    assert (last["actor"], last["action"], last["decision"]) == ("omar", "ingest.scores", "refuse")

@@ -43,9 +43,9 @@ def pack(folder: str | os.PathLike[str]) -> Iterator[bytes]:
     root = Path(folder)
     try:
         if not stat.S_ISDIR(os.lstat(root).st_mode):
-            raise UsageError("the folder to pack is not a folder", param="folder")
+            raise UsageError("the folder to pack is not a folder")
     except FileNotFoundError:
-        raise UsageError("the folder to pack does not exist", param="folder") from None
+        raise UsageError("the folder to pack does not exist") from None
     pending = bytearray()
     sent = 0
     for piece in _members(root, ""):
@@ -164,14 +164,13 @@ def unpack(chunks: Iterable[bytes], dest: str | os.PathLike[str], *, max_bytes: 
     "bytes"}. `max_files` bounds the members (files and folders), `max_bytes` their content."""
     for value, param in ((max_bytes, "max_bytes"), (max_files, "max_files")):
         if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-            raise UsageError(f"{param} must be a positive integer", param=param)
+            raise UsageError(f"{param} must be a positive integer")
     root = Path(dest)
     try:
         if not stat.S_ISDIR(os.lstat(root).st_mode) or any(root.iterdir()):
-            raise UsageError("the folder to unpack into must be an existing, empty folder",
-                             param="dest")
+            raise UsageError("the folder to unpack into must be an existing, empty folder")
     except FileNotFoundError:
-        raise UsageError("the folder to unpack into does not exist", param="dest") from None
+        raise UsageError("the folder to unpack into does not exist") from None
     source = _Chunks(chunks, max_bytes + (max_files + 2) * _HEADER_ALLOWANCE + tarfile.RECORDSIZE)
     try:
         return _extract(source, root, max_bytes, max_files)
