@@ -241,9 +241,7 @@ class Vault:
     def policy_document(self) -> dict[str, Any]:
         """The pinned policy set as {"version", "lines"}: what `policy show` prints, locally and
         through the service."""
-        from vault.policy.describe import describe_policy
-
-        return {"version": self._policy.version, "lines": describe_policy(self._policy)}
+        return {"version": self._policy.version, "lines": self._policy.lines()}
 
     def _set_policy(self, policy: PolicySet) -> None:
         """Pin `policy` for this vault and every member view of it (they share the engine)."""
