@@ -20,6 +20,7 @@ from vault.remote import receive
 from vault.remote.transport import DEFAULT_TIMEOUT_S, Session, segment
 
 UPLOAD_CHUNK = 1 << 20
+AUDIT_PAGE = 10_000  # the most entries the service sends in one answer
 NUMPY_SUFFIXES = (".npy", ".npz")
 # the exports' request bodies: option of export_matrix -> key of the service's body
 MATRIX_OPTIONS = {"epsilon": "epsilon", "rho": "rho", "release": "release", "unit": "unit",
@@ -110,7 +111,15 @@ class RemoteVault:
     # -- the audit log ---------------------------------------------------------------------------
 
     def audit_entries(self, start: int = 0, limit: int | None = None) -> list[dict[str, Any]]:
-        return self._get("/audit/entries", start=start, limit=limit)
+        """Entries from `start`: `limit` of them, or (None) all, fetched a page at a time."""
+        if limit is not None:
+            return self._get("/audit/entries", start=start, limit=limit)
+        entries: list[dict[str, Any]] = []
+        while True:
+            page = self._get("/audit/entries", start=start + len(entries), limit=AUDIT_PAGE)
+            entries += page
+            if len(page) < AUDIT_PAGE:
+                return entries
 
     def sign_head(self) -> Any:
         """Sign a tree head now; a TreeHead, checked with the vault's public key."""
