@@ -139,14 +139,16 @@ def lab(lab_files: dict, tmp_path_factory: pytest.TempPathFactory) -> Iterator[d
 class KillingProxy:
     """Forwards one loopback port to the service. In the answer to a download of an export
     archive: once `after` bytes went through, SIGKILLs the service and cuts the connection; with
-    `flip_after`, changes the byte that follows the first occurrence of those bytes."""
+    `flip_after`, changes the byte that follows the first occurrence of those bytes. In a
+    recording's upload: once `upload_after` bytes of it went through, SIGKILLs the service."""
 
     def __init__(self, target_url: str, server: Service, after: int | None,
-                 flip_after: bytes | None = None) -> None:
+                 flip_after: bytes | None = None, upload_after: int | None = None) -> None:
         host_port = target_url.split("://", 1)[1].split("/", 1)[0]
         self._target = (host_port.rsplit(":", 1)[0], int(host_port.rsplit(":", 1)[1]))
         self._server, self._after, self._flip = server, after, flip_after
         self.flipped = False
+        self._upload_after = upload_after
         self._listener = socket.create_server(("127.0.0.1", 0))
         self.url = f"http://127.0.0.1:{self._listener.getsockname()[1]}"
         self.killed_after: int | None = None
@@ -167,8 +169,18 @@ class KillingProxy:
         for data in _reads(client):
             if b"GET /v1/exports/" in data:
                 state["downloading"] = True
+            if b"POST /v1/ingest/eeg/" in data:
+                state["uploading"], state["up"] = True, 0
+            if state.get("uploading") and self._upload_after is not None:
+                state["up"] += len(data)
+                if state["up"] > self._upload_after:
+                    upstream.sendall(data[: len(data) - (state["up"] - self._upload_after)])
+                    kill(self._server)
+                    self.killed_after = self._upload_after
+                    break
             upstream.sendall(data)
         _close(upstream)
+        _close(client)
 
     def _down(self, upstream: socket.socket, client: socket.socket, state: dict) -> None:
         for data in _reads(upstream):

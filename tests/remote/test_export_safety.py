@@ -1,4 +1,6 @@
-"""A remote export is either a finished, verified folder at --out or nothing: the service killed
+"""A remote upload or export killed mid-way: the client says so with exit 11 and keeps nothing.
+
+A remote export is either a finished, verified folder at --out or nothing: the service killed
 (SIGKILL) in the middle of the download, or a byte of the archive changed on the way, leaves no
 `out` and no staging folder, and the CLI exits with a documented code in one line."""
 
@@ -109,3 +111,22 @@ def test_a_service_signing_with_another_key_than_yours_gets_no_request(fresh_ser
     monkeypatch.setenv("MINDWARD_KEY", describe(served)["public_key"])
     code, _, err = _run([*EXPORT, "--out", str(out)], server.url, tokens["omar"], monkeypatch, capsys)
     assert code == 0, err
+
+
+def test_service_killed_mid_upload_is_exit_11_and_stores_nothing(fresh_service, lab_files,
+                                                                  monkeypatch, capsys) -> None:
+    from vault import Vault, describe
+
+    server, tokens, served = fresh_service
+    blobs_before = describe(served)["blobs"]
+    proxy = KillingProxy(server.url, server, after=None, upload_after=200_000)
+    try:
+        code, stdout, err = _run(["ingest", "eeg", lab_files["pid1"], lab_files["edf"], "--json"],
+                                 proxy.url, tokens["steward"], monkeypatch, capsys)
+    finally:
+        proxy.close()
+    assert proxy.killed_after == 200_000 and server.proc.poll() is not None
+    assert code == 11 and json.loads(stdout)["exit_code"] == 11 and err.count("\n") == 1
+    assert describe(served)["blobs"] == blobs_before  # nothing of the half upload was stored
+    with Vault.open(served, SERVICE_PASSPHRASE) as v:
+        assert v.verify()["ok"]
