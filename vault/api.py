@@ -238,6 +238,11 @@ class Vault:
         """The pinned policy set (change it with `apply_policy`)."""
         return self._policy
 
+    def policy_document(self) -> dict[str, Any]:
+        """The pinned policy set as {"version", "lines"}: what `policy show` prints, locally and
+        through the service."""
+        return {"version": self._policy.version, "lines": self._policy.lines()}
+
     def _set_policy(self, policy: PolicySet) -> None:
         """Pin `policy` for this vault and every member view of it (they share the engine)."""
         self._shared.policy = policy

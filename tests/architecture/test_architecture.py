@@ -506,6 +506,9 @@ def test_cli_uses_the_public_api_only(path: Path) -> None:
             "vault.cli", "vault.demo_data"}
         # `mindward serve` starts the service room (the layer below the CLI), imported in the command
         allowed |= path.name == "app.py" and name.startswith("vault.server.")
+        # `--server` acts through the remote client room (beside the service), imported when a
+        # service is named
+        allowed |= path.name == "app.py" and (name == "vault.remote" or name.startswith("vault.remote."))
         assert allowed, f"cli/{path.name} imports {name}"
 
 

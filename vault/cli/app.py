@@ -33,6 +33,13 @@ app.add_typer(audit_app, name="audit")
 
 VaultOpt = Annotated[Path, typer.Option(
     "--vault", envvar="MINDWARD_VAULT", help="Vault directory (or MINDWARD_VAULT).")]
+# member commands: a vault directory, or a service (--server; the token from MINDWARD_TOKEN only,
+# never an option: command lines are visible to every user of the computer)
+PlaceOpt = Annotated[Path | None, typer.Option(
+    "--vault", envvar="MINDWARD_VAULT", help="Vault directory (or MINDWARD_VAULT); not with --server.")]
+ServerOpt = Annotated[str | None, typer.Option(
+    "--server", envvar="MINDWARD_SERVER",
+    help="A mindward service's URL (or MINDWARD_SERVER); the token comes from MINDWARD_TOKEN.")]
 MemberOpt = Annotated[str, typer.Option(
     "--member", envvar="MINDWARD_MEMBER", help="Act as this member (or MINDWARD_MEMBER).")]
 JsonOpt = Annotated[bool, typer.Option("--json", help="Print machine-readable JSON.")]
@@ -64,8 +71,12 @@ def _passphrase(prompt: str = "Passphrase: ", *, env: str = "MINDWARD_PASSPHRASE
     return first
 
 
-def _open(path: Path, member: str) -> vault.Vault:
-    v = vault.Vault.open(path, _passphrase(), member=member)
+def _open(path: Path | None, member: str, server: str | None = None) -> Any:
+    """The vault to act on: a RemoteVault when a service is named (the token's member acts,
+    --member is not used), else the local vault unlocked for `member`."""
+    if server is not None:
+        return _connect(server)
+    v = vault.Vault.open(_local(path), _passphrase(), member=member)
     if (flag := v.audit_flagged) is not None:
         typer.echo(f"mindward: caution: audit entries {flag['first']}..{flag['last']} were written "
                    f"without the vault's key; flagged at entry {flag['flagged_at']} "
@@ -73,9 +84,32 @@ def _open(path: Path, member: str) -> vault.Vault:
     return v
 
 
+def _connect(server: str) -> Any:
+    from vault.remote import connect
+
+    return connect(server, os.environ.get("MINDWARD_TOKEN", ""), ca=os.environ.get("MINDWARD_CA"),
+                   key=os.environ.get("MINDWARD_KEY"))
+
+
+def _local(path: Path | None) -> Path:
+    if path is None:
+        raise vault.UsageError("name a vault with --vault (or MINDWARD_VAULT) or a service with "
+                               "--server (or MINDWARD_SERVER)")
+    return path
+
+
+def _no_server(server: str | None, command: str) -> None:
+    """Commands that work on the vault's own files refuse a service (MINDWARD_SERVER too)."""
+    if server is not None:
+        raise vault.UsageError(f"'{command}' works on the vault's own files and takes no --server "
+                               "(unset MINDWARD_SERVER)")
+
+
 @app.command()
-def init(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def init(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+         server: ServerOpt = None) -> None:
     """Create a new, empty vault; you become its first steward."""
+    _no_server(server, "init")
     with vault.Vault.init(path, _passphrase(confirm=True), member=member) as v:
         facts = v.info()
     _emit(as_json, facts, lambda: (
@@ -87,9 +121,14 @@ def init(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False
 
 
 @app.command()
-def info(path: VaultOpt, as_json: JsonOpt = False) -> None:
-    """Public facts about a vault: id, signing key fingerprint, counts. No passphrase needed."""
-    facts = vault.describe(path)
+def info(path: PlaceOpt = None, server: ServerOpt = None, as_json: JsonOpt = False) -> None:
+    """Public facts about a vault: id, signing key fingerprint, counts. No passphrase needed
+    (with --server: a token, and the answer also names its member and role)."""
+    if server is not None:
+        with _connect(server) as remote:
+            facts = remote.info()
+    else:
+        facts = vault.describe(_local(path))
     _emit(as_json, facts, lambda: "\n".join(
         f"{k.replace('_', ' ')}: {v}" for k, v in facts.items()
         if k not in ("latest_tree_head", "key_slots"))
@@ -98,8 +137,10 @@ def info(path: VaultOpt, as_json: JsonOpt = False) -> None:
 
 
 @app.command()
-def rekey(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def rekey(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+          server: ServerOpt = None) -> None:
     """New master key and passphrase (MINDWARD_NEW_PASSPHRASE); re-wraps keys, not data."""
+    _no_server(server, "rekey")
     with _open(path, member) as v:
         new = _passphrase("New passphrase: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
         result = v.rekey(new)
@@ -110,9 +151,11 @@ def rekey(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = Fals
 
 
 @app.command("serve-setup")
-def serve_setup(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def serve_setup(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+                server: ServerOpt = None) -> None:
     """Convert a vault for 'mindward serve': a fresh master key under a new passphrase
     (MINDWARD_NEW_PASSPHRASE) and every other key slot removed; members then use tokens."""
+    _no_server(server, "serve-setup")
     with _open(path, member) as v:
         new = _passphrase("New passphrase: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
         result = v.make_served(new)
@@ -125,9 +168,10 @@ def serve_setup(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt 
 
 
 @app.command()
-def verify(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def verify(path: PlaceOpt = None, server: ServerOpt = None,
+           member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Verify the audit log and authenticate every stored blob (needs a passphrase)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.verify()
     _emit(as_json, result, lambda: (
         f"audit log: {'ok' if result['audit']['ok'] else 'FAILED: ' + str(result['audit']['problem'])}"
@@ -138,7 +182,7 @@ def verify(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = Fal
 
 @audit_app.command("verify")
 def audit_verify(
-    path: VaultOpt, key: KeyOpt = None, as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, key: KeyOpt = None, as_json: JsonOpt = False,
     head: Annotated[list[Path] | None, typer.Option(
         "--head", help="An earlier signed tree head (JSON file) that the log must still contain.")
     ] = None,
@@ -146,23 +190,33 @@ def audit_verify(
     """Recompute the whole audit log against its signed tree heads. No passphrase needed."""
     trusted = [vault.read_tree_head(_read_text(p)) for p in head or []]
     public = vault.parse_public_key(key) if key else None
-    report = vault.verify_audit(path, public_key=public, trusted=trusted)
-    _emit(as_json, report.as_dict(), lambda: (
-        f"audit log ok: {report.entries} entries, {report.heads_checked} signed heads match"
-        if report.ok else f"audit log FAILED: {report.problem}")
-        + "".join(f"\nnote: {n}" for n in report.notes))
-    if not report.ok:
+    if server is not None:
+        with _connect(server) as remote:
+            report = remote.verify_audit(public_key=public, trusted=trusted)
+    else:
+        report = vault.verify_audit(_local(path), public_key=public, trusted=trusted).as_dict()
+    _emit(as_json, report, lambda: (
+        f"audit log ok: {report['entries']} entries, {report['heads_checked']} signed heads match"
+        if report["ok"] else f"audit log FAILED: {report['problem']}")
+        + "".join(f"\nnote: {n}" for n in report["notes"]))
+    if not report["ok"]:
         raise typer.Exit(vault.IntegrityError.exit_code)
 
 
 @audit_app.command("show")
 def audit_show(
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
+    as_json: JsonOpt = False,
     start: Annotated[int, typer.Option(min=0, help="First entry to show.")] = 0,
     limit: Annotated[int, typer.Option(min=1, help="How many entries.")] = 50,
 ) -> None:
     """Show audit entries (actor, action, purpose, random ids, decision, reasons)."""
-    entries = vault.read_audit_log(path, _passphrase(), member=member, start=start, limit=limit)
+    if server is not None:
+        with _connect(server) as remote:
+            entries = remote.audit_entries(start, limit)
+    else:
+        entries = vault.read_audit_log(_local(path), _passphrase(), member=member, start=start,
+                                       limit=limit)
     _emit(as_json, entries, lambda: "\n".join(
         f"{e['seq']:>6}  {e.get('at', '')}  {e.get('actor', '')}  {e.get('action', '')}  "
         f"{e.get('decision', '')}" + (f"  {','.join(e['reasons'])}" if e.get("reasons") else "")
@@ -172,10 +226,15 @@ def audit_show(
 @audit_app.command("prove")
 def audit_prove(
     seq: Annotated[int, typer.Argument(min=0, help="Entry number.")],
-    path: VaultOpt, as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, as_json: JsonOpt = False,
 ) -> None:
     """Inclusion proof of entry N under the latest signed tree head (JSON). No passphrase."""
-    _emit(True, vault.prove(path, seq), "")
+    if server is not None:
+        with _connect(server) as remote:
+            bundle = remote.prove(seq)
+    else:
+        bundle = vault.prove(_local(path), seq)
+    _emit(True, bundle, "")
     del as_json  # a proof is always JSON
 
 
@@ -199,13 +258,16 @@ def audit_check_proof(
 @audit_app.command("consistency")
 def audit_consistency(
     head: Annotated[Path, typer.Argument(help="An earlier signed tree head (from 'audit head').")],
-    path: VaultOpt,
     key: Annotated[str, typer.Option("--key", help="The vault's public key (hex).")],
-    as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, as_json: JsonOpt = False,
 ) -> None:
     """Prove (RFC 9162) that today's log extends an earlier head you kept. No passphrase."""
-    result = vault.check_consistency(path, vault.read_tree_head(_read_text(head)),
-                                     vault.parse_public_key(key))
+    earlier, public = vault.read_tree_head(_read_text(head)), vault.parse_public_key(key)
+    if server is not None:
+        with _connect(server) as remote:
+            result = remote.check_consistency(earlier, public)
+    else:
+        result = vault.check_consistency(_local(path), earlier, public)
     _emit(as_json, result, "log extends the earlier head: ok" if result["ok"]
           else f"consistency FAILED: {result['problem']}")
     if not result["ok"]:
@@ -213,9 +275,10 @@ def audit_consistency(
 
 
 @audit_app.command("head")
-def audit_head(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def audit_head(path: PlaceOpt = None, server: ServerOpt = None,
+               member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Sign and print the current tree head; keep it to detect later rewriting."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         head = v.sign_head()
     _emit(True, head.to_dict(), "")
     del as_json  # a tree head is always JSON
@@ -249,29 +312,32 @@ def _consent_text(result: dict[str, Any]) -> str:
 
 
 @app.command()
-def enrol(form: FormArg, path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def enrol(form: FormArg, path: PlaceOpt = None, server: ServerOpt = None,
+          member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Enrol a participant from a filled consent form; prints their random id."""
     raw = _read_bytes(form)
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.enrol(raw)
     _emit(as_json, result, lambda: _consent_text(result))
 
 
 @consent_app.command("amend")
 def consent_amend(participant: Annotated[str, typer.Argument(help="Participant id.")], form: FormArg,
-                  path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+                  path: PlaceOpt = None, server: ServerOpt = None,
+                  member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Add a consent version from a new filled form (a partial withdrawal is one)."""
     raw = _read_bytes(form)
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.amend_consent(participant, raw)
     _emit(as_json, result, lambda: _consent_text(result))
 
 
 @consent_app.command("show")
 def consent_show(participant: Annotated[str, typer.Argument(help="Participant id.")],
-                 path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+                 path: PlaceOpt = None, server: ServerOpt = None,
+                 member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Show a participant's consent history, oldest first."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         history = v.consent_history(participant)
     _emit(as_json, history, lambda: "\n".join(
         f"v{h['number']} {h['change']} {h['recorded_at']} signed {h['signed']} expires {h['expires']}: "
@@ -281,7 +347,8 @@ def consent_show(participant: Annotated[str, typer.Argument(help="Participant id
 @member_app.command("add")
 def member_add(name: Annotated[str, typer.Argument(help="Member name.")],
                role: Annotated[str, typer.Option("--role", help="steward, analyst or auditor.")],
-               path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+               path: PlaceOpt = None, server: ServerOpt = None,
+               member: MemberOpt = "steward", as_json: JsonOpt = False,
                expires_days: ExpiresOpt = 30,
                key_slot: Annotated[bool, typer.Option(
                    "--key-slot", help="Served vaults: a steward who can unlock the service "
@@ -289,7 +356,7 @@ def member_add(name: Annotated[str, typer.Argument(help="Member name.")],
                ) -> None:
     """Add a member. Locally their passphrase comes from MINDWARD_NEW_PASSPHRASE or a prompt; on
     a served vault they get a token, printed once (steward key slots need --key-slot)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         new = None
         if not v.served or key_slot:
             new = _passphrase(f"Passphrase for {name}: ", env="MINDWARD_NEW_PASSPHRASE", confirm=True)
@@ -304,38 +371,41 @@ def _token_text(result: dict[str, Any]) -> str:
 
 
 @member_app.command("token")
-def member_token(name: Annotated[str, typer.Argument(help="Member name.")], path: VaultOpt,
-                 member: MemberOpt = "steward", as_json: JsonOpt = False,
-                 expires_days: ExpiresOpt = 30) -> None:
+def member_token(name: Annotated[str, typer.Argument(help="Member name.")],
+                 path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
+                 as_json: JsonOpt = False, expires_days: ExpiresOpt = 30) -> None:
     """Issue a new token for a member of a served vault (printed once)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.issue_token(name, expires_days=expires_days)
     _emit(as_json, result, lambda: f"new token for {result['member']} ({result['role']})"
           + _token_text(result))
 
 
 @member_app.command("revoke")
-def member_revoke(name: Annotated[str, typer.Argument(help="Member name.")], path: VaultOpt,
-                  member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def member_revoke(name: Annotated[str, typer.Argument(help="Member name.")],
+                  path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
+                  as_json: JsonOpt = False) -> None:
     """Revoke every token of a member (they keep their name and role, with no way in)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.revoke_tokens(name)
     _emit(as_json, result, f"revoked {result['revoked']} token(s) of {name}")
 
 
 @member_app.command("remove")
-def member_remove(name: Annotated[str, typer.Argument(help="Member name.")], path: VaultOpt,
+def member_remove(name: Annotated[str, typer.Argument(help="Member name.")],
+                  path: PlaceOpt = None, server: ServerOpt = None,
                   member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Remove a member's key slot; nobody else is rekeyed."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.remove_member(name)
     _emit(as_json, result, f"removed {name}")
 
 
 @member_app.command("list")
-def member_list(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def member_list(path: PlaceOpt = None, server: ServerOpt = None,
+                member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """List members and their roles."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         rows = v.members()
     _emit(as_json, rows, lambda: "\n".join(
         f"{r['member']}  {r['role']}  since {r['created_at']}  "
@@ -346,12 +416,12 @@ def member_list(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt 
 
 @access_app.command("check")
 def access_check(
-    path: VaultOpt,
+    *, path: PlaceOpt = None, server: ServerOpt = None,
     purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
     category: CategoryOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
 ) -> None:
     """Who a request would include and why others are not, without reading any data."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.access_summary(purpose, category)
     _emit(as_json, result, lambda: render.format_decision(result))
     if not result["permit"]:
@@ -368,19 +438,20 @@ def policy_check(directory: Annotated[Path, typer.Argument(help="A folder of pol
 
 
 @policy_app.command("show")
-def policy_show(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def policy_show(path: PlaceOpt = None, server: ServerOpt = None,
+                member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """The policy set pinned in the vault."""
-    with _open(path, member) as v:
-        lines = render.describe_policy(v.policy)
-        version = v.policy.version
-    _emit(as_json, {"version": version, "lines": lines}, "\n".join(lines))
+    with _open(path, member, server) as v:
+        document = v.policy_document()
+    _emit(as_json, document, "\n".join(document["lines"]))
 
 
 @policy_app.command("apply")
 def policy_apply(directory: Annotated[Path, typer.Argument(help="A folder of policy TOML files.")],
-                 path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+                 path: PlaceOpt = None, server: ServerOpt = None,
+                 member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Validate and pin a new policy set in the vault (stewards only; audited)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.apply_policy(directory)
     _emit(as_json, result, f"policy {result['version']} applied (was {result['previous']})")
 
@@ -394,7 +465,7 @@ ParticipantArg = Annotated[str, typer.Argument(help="Participant id (as 'enrol' 
 def ingest_eeg(
     participant: ParticipantArg,
     recording: Annotated[Path, typer.Argument(help="EDF, EDF+, BDF, or .npy/.npz with --sidecar.")],
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
     sidecar: Annotated[Path | None, typer.Option(help="JSON sidecar for NumPy input.")] = None,
     event_codes: Annotated[str | None, typer.Option(
         help="Comma-separated event codes to keep, e.g. 'stim/\\d{1,3},block/start' (literal codes "
@@ -406,7 +477,7 @@ def ingest_eeg(
         help="Keep the removed header fields in the participant's encrypted identity record.")] = False,
 ) -> None:
     """De-identify a recording and store it encrypted; prints what was changed."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.ingest_eeg(participant, recording, sidecar=sidecar, event_codes=event_codes,
                               keep_sex=keep_sex, age_band_years=age_band,
                               keep_header_identity=keep_header_identity)
@@ -432,10 +503,10 @@ def ingest_eeg(
 def ingest_scores(
     scores_file: Annotated[Path, typer.Argument(help="CSV: participant_id,item_id,value.")],
     kind: Annotated[str, typer.Option("--kind", help="derived or explicit.")],
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
 ) -> None:
     """Store derived scores or explicit ratings (one transaction; re-ingest is a no-op)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.ingest_scores(scores_file, kind)
     _emit(as_json, result, lambda: (
         f"{result['rows']} {result['category']} rows for {result['participants']} participants: "
@@ -449,7 +520,7 @@ RecipientOpt = Annotated[str | None, typer.Option(help="Who receives the export 
 
 @export_app.command("eeg")
 def export_eeg(
-    path: VaultOpt,
+    *, path: PlaceOpt = None, server: ServerOpt = None,
     purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
     out: Annotated[Path, typer.Option("--out", help="New or empty folder for the dataset.")],
     recipient: RecipientOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
@@ -457,7 +528,7 @@ def export_eeg(
         "--demographics", help="Keep sex and age band (the grant must cover demographics).")] = False,
 ) -> None:
     """Granted, de-identified recordings as an EEG-BIDS dataset with a signed manifest."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.export_eeg(purpose, out, recipient=recipient, with_demographics=demographics)
     _emit(as_json, result, lambda: (
         f"exported {result['recordings']} recordings of {result['participants']} participants to "
@@ -468,7 +539,7 @@ def export_eeg(
 
 @export_app.command("matrix")
 def export_matrix(
-    path: VaultOpt,
+    *, path: PlaceOpt = None, server: ServerOpt = None,
     purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
     category: Annotated[str, typer.Option("--category", help="scores-derived or ratings-explicit.")],
     out: Annotated[Path, typer.Option("--out", help="New or empty folder for the release.")],
@@ -484,7 +555,7 @@ def export_matrix(
 ) -> None:
     """Pseudonymised preferences with exact DP noise, budget spent, signed manifest (Parquet + CSV)."""
     catalogue = vault.read_items(items) if items else None
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.export_matrix(purpose, category, out, epsilon=epsilon, rho=rho, release=release,
                                  unit=unit, recipient=recipient, items=catalogue,
                                  max_items_per_participant=max_items)
@@ -504,7 +575,7 @@ def export_matrix(
 
 @export_app.command("utility")
 def export_utility(
-    path: VaultOpt,
+    *, path: PlaceOpt = None, server: ServerOpt = None,
     purpose: Annotated[str, typer.Option("--purpose", help="Purpose id from the policy set.")],
     category: Annotated[str, typer.Option("--category", help="scores-derived or ratings-explicit.")],
     plot: Annotated[Path, typer.Option("--plot", help="Where to write the PNG.")],
@@ -518,7 +589,7 @@ def export_utility(
         values = [float(e) for e in epsilons.split(",") if e.strip()]
     except ValueError as exc:
         raise vault.UsageError("--epsilons takes numbers separated by commas") from exc
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.export_utility(purpose, category, values, plot, unit=unit)
     _emit(as_json, result, lambda: result.get("table", json.dumps(result, indent=2, default=str))
           + f"\nplot: {result.get('png', plot)}\n{result.get('caution', '')}")
@@ -526,11 +597,11 @@ def export_utility(
 
 @app.command()
 def budget(
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
     purpose: Annotated[str | None, typer.Option(help="One purpose only.")] = None,
 ) -> None:
     """Privacy budget spent per purpose (stewards also see each participant)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         rows = v.budget(purpose)
     _emit(as_json, rows, lambda: render.format_budget(rows))
 
@@ -552,14 +623,14 @@ def export_verify(
 @export_app.command("check")
 def export_check(
     manifest_file: Annotated[Path, typer.Argument(help="The manifest.json of an export you hold.")],
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
 ) -> None:
     """Does an export you hold now contain withdrawn or expired participants? (counts only)"""
     try:
         document = vault.load_json(_read_text(manifest_file))
     except ValueError as exc:
         raise vault.InvalidInput(f"{manifest_file} is not JSON") from exc
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.check_export(document)
     _emit(as_json, result, lambda: (
         f"export {result['export_id']}: {result['participants']} participants; "
@@ -586,23 +657,24 @@ def _iso_date(text: str) -> Any:
 
 @withdraw_app.command("request")
 def withdraw_request(
-    participant: ParticipantArg, path: VaultOpt,
+    participant: ParticipantArg, *, path: PlaceOpt = None, server: ServerOpt = None,
     received: Annotated[str, typer.Option("--received", help="When the request arrived (YYYY-MM-DD).")],
     scope: Annotated[str, typer.Option("--scope", help="full, or purpose:P")] = "full",
     member: MemberOpt = "steward", as_json: JsonOpt = False,
 ) -> None:
     """Record a withdrawal request and its deadline (one month by default, GDPR Art. 12(3))."""
     day = _iso_date(received)
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.withdraw_request(participant, received=day, scope=scope)
     _emit(as_json, result, lambda: (f"request {result['request_id']} ({result['scope']}) recorded; "
                                     f"due by {result['deadline']}"))
 
 
 @withdraw_app.command("pending")
-def withdraw_pending(path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
+def withdraw_pending(path: PlaceOpt = None, server: ServerOpt = None,
+                     member: MemberOpt = "steward", as_json: JsonOpt = False) -> None:
     """Open withdrawal requests, overdue first."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         rows = v.withdraw_pending()
     _emit(as_json, rows, lambda: "\n".join(
         f"{r['request_id']}  {r['participant_id']}  {r['scope']}  due {r['deadline']}  "
@@ -613,13 +685,13 @@ def withdraw_pending(path: VaultOpt, member: MemberOpt = "steward", as_json: Jso
 @withdraw_app.command("process")
 def withdraw_process(
     target: Annotated[str, typer.Argument(help="Participant id or request id (w-...).")],
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
     receipt: Annotated[Path | None, typer.Option("--receipt", help="Write the signed receipt here.")] = None,
 ) -> None:
     """Carry out a withdrawal: cryptographic erase (full) or narrowing (purpose), with a receipt."""
     if receipt is not None:  # refuse a path that cannot be written before erasing anything
         vault.check_output_path(receipt, "--receipt")
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.withdraw_process(target)
     if receipt is not None:
         try:
@@ -659,13 +731,13 @@ def _withdrawal_text(result: dict[str, Any], receipt: Path | None) -> str:
 @withdraw_app.command("receipt")
 def withdraw_receipt(
     target: Annotated[str, typer.Argument(help="Participant id or request id (w-...).")],
-    path: VaultOpt, member: MemberOpt = "steward",
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
     out: Annotated[Path | None, typer.Option("--out", help="Write the receipt here.")] = None,
 ) -> None:
     """The signed deletion receipt of a processed withdrawal (JSON)."""
     if out is not None:
         vault.check_output_path(out, "--out")
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         doc = v.withdraw_receipt(target)
     if out is not None:
         vault.write_output(out, _receipt_bytes(doc), "--out")
@@ -692,24 +764,24 @@ def receipt_verify(
 
 @app.command()
 def sweep(
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="Only list what would be erased.")] = False,
 ) -> None:
     """Erase, with receipts, data whose consent expired or retention ended (safe from cron)."""
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         result = v.sweep(dry_run=dry_run)
     _emit(as_json, result, lambda: json.dumps(result, indent=2, sort_keys=True, default=str))
 
 
 @app.command()
 def report(
-    path: VaultOpt, member: MemberOpt = "steward", as_json: JsonOpt = False,
+    path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward", as_json: JsonOpt = False,
     out: Annotated[Path | None, typer.Option("--out", help="Write Markdown here.")] = None,
 ) -> None:
     """A record of processing (GDPR Art. 30 style) from the vault's state; counts only."""
     if out is not None:
         vault.check_output_path(out, "--out")
-    with _open(path, member) as v:
+    with _open(path, member, server) as v:
         record = v.report()
     text = render.report_markdown(record)
     if out is not None:

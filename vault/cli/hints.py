@@ -21,6 +21,7 @@ COMMANDS: dict[str, str] = {
 
 # VaultError.param (an argument of a library call) -> the option that sets it
 OPTIONS: dict[str, str] = {
+    "ca": "MINDWARD_CA",
     "epsilons": "--epsilons",
     "expires_days": "--expires-days",
     "event_codes": "--event-codes",
@@ -34,10 +35,13 @@ OPTIONS: dict[str, str] = {
     "public_key": "--key",
     "received": "--received",
     "passphrase": "MINDWARD_NEW_PASSPHRASE",
+    "out": "--out",
     "release": "--release",
     "role": "--role",
     "scope": "--scope",
+    "server": "--server",
     "sidecar": "--sidecar",
+    "token": "MINDWARD_TOKEN",
     "sweep_every_hours": "--sweep-every-hours",
     "tls_cert": "--tls-cert",
     "unit": "--unit",
