@@ -175,8 +175,8 @@ class KillingProxy:
                 state["up"] += len(data)
                 if state["up"] > self._upload_after:
                     upstream.sendall(data[: len(data) - (state["up"] - self._upload_after)])
-                    kill(self._server)
-                    self.killed_after = self._upload_after
+                    self.killed_after = self._upload_after  # before the kill: the client may
+                    kill(self._server)  # see the cut and the test look here before kill returns
                     break
             upstream.sendall(data)
         _close(upstream)
@@ -188,8 +188,8 @@ class KillingProxy:
                 data = self._flipped(data)
             if state["downloading"] and self._after is not None and state["sent"] + len(data) > self._after:
                 client.sendall(data[: max(0, self._after - state["sent"])])
+                self.killed_after = self._after  # before the kill (see _up)
                 kill(self._server)
-                self.killed_after = self._after
                 break
             client.sendall(data)
             if state["downloading"]:
