@@ -125,7 +125,7 @@ def test_service_killed_mid_upload_is_exit_11_and_stores_nothing(fresh_service, 
                                  proxy.url, tokens["steward"], monkeypatch, capsys)
     finally:
         proxy.close()
-    assert proxy.killed_after == 200_000 and server.proc.poll() is not None
+    assert proxy.killed_after == 200_000 and server.proc.wait(timeout=60) is not None
     assert code == 11 and json.loads(stdout)["exit_code"] == 11 and err.count("\n") == 1
     assert describe(served)["blobs"] == blobs_before  # nothing of the half upload was stored
     with Vault.open(served, SERVICE_PASSPHRASE) as v:
