@@ -678,7 +678,8 @@ class Vault:
         return tokens.issue_token(self._context(), member, expires_days)
 
     def revoke_tokens(self, member: str) -> dict[str, Any]:
-        """Revoke every token of `member` (they stay a member, with no way in)."""
+        """Revoke every token of `member`. A key-slot steward keeps the slot; a token-only
+        member with no token left is no longer a member (add them again to let them back in)."""
         return tokens.revoke_tokens(self._context(), member)
 
     def authenticate(self, token: object, *, client: str, operation: str) -> Vault:

@@ -385,7 +385,8 @@ def member_token(name: Annotated[str, typer.Argument(help="Member name.")],
 def member_revoke(name: Annotated[str, typer.Argument(help="Member name.")],
                   path: PlaceOpt = None, server: ServerOpt = None, member: MemberOpt = "steward",
                   as_json: JsonOpt = False) -> None:
-    """Revoke every token of a member (they keep their name and role, with no way in)."""
+    """Revoke every token of a member at once (a token-only member is then gone; a steward keeps
+    their key slot)."""
     with _open(path, member, server) as v:
         result = v.revoke_tokens(name)
     _emit(as_json, result, f"revoked {result['revoked']} token(s) of {name}")
