@@ -3,6 +3,7 @@ library decides who may do what. Success bodies are the documents `mindward ... 
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import datetime as dt
 import json
@@ -64,8 +65,6 @@ async def _lifespan(app: FastAPI) -> AsyncIterator[None]:
     service: Service | None = app.state.service
     tasks = []
     if service is not None:
-        import asyncio
-
         tasks = [asyncio.ensure_future(service.sweep_forever()),
                  asyncio.ensure_future(service.expire_forever())]
     try:
@@ -282,8 +281,6 @@ async def ingest_eeg(pid: str, request: Request, credentials: Credentials,
     length = request.headers.get("content-length", "")
     if not length.isdigit():
         raise vault.UsageError("an upload needs a Content-Length header")
-    import asyncio
-
     stream = BodyStream(asyncio.get_running_loop(), int(length))
 
     def ingest(v: vault.Vault) -> Any:
