@@ -145,6 +145,21 @@ def test_pack_memory_is_bounded_for_a_large_file(tmp_path: Path) -> None:
     assert peak < 8 * 1024 * 1024, peak
 
 
+def test_pack_to_unpack_streams_in_bounded_memory(tmp_path: Path) -> None:
+    src = tmp_path / "src"
+    src.mkdir()
+    with open(src / "recording.edf", "wb") as f:
+        f.truncate(96 * 1024 * 1024)
+    dest = tmp_path / "dest"
+    dest.mkdir()
+    tracemalloc.start()
+    result = unpack(pack(src), dest, **BIG)  # chained: the archive is never whole anywhere
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    assert result["bytes"] == 96 * 1024 * 1024 == (dest / "recording.edf").stat().st_size
+    assert peak < 8 * 1024 * 1024, peak
+
+
 def test_pack_refuses_links_and_fifos(tmp_path: Path) -> None:
     for make in (lambda p: p.symlink_to("/etc/passwd"), lambda p: os.mkfifo(p)):
         src = _tree(tmp_path / f"src{id(make)}", {"a": b"x"})
