@@ -111,25 +111,32 @@ class _Chunks:
 
     def __init__(self, chunks: Iterable[bytes], limit: int) -> None:
         self._it = iter(chunks)
-        self._buf = bytearray()
+        self._chunk = b""
+        self._pos = 0  # how much of the current chunk was handed out
         self._limit = limit
-        self.consumed = 0
+        self._received = 0
 
     def read(self, n: int = -1) -> bytes:
         want = self._limit + 1 if n is None or n < 0 else n
-        while len(self._buf) < want:
-            chunk = next(self._it, None)
-            if chunk is None:
-                break
-            if not isinstance(chunk, bytes | bytearray | memoryview):
-                raise InvalidInput("archive stream: a chunk is not bytes; nothing was kept")
-            self._buf += chunk
-            if self.consumed + len(self._buf) > self._limit:
-                raise InvalidInput("archive is larger than its limits allow; nothing was kept")
-        out = bytes(self._buf[:want])
-        del self._buf[:want]
-        self.consumed += len(out)
-        return out
+        parts: list[bytes] = []
+        got = 0
+        while got < want:
+            if self._pos == len(self._chunk):
+                chunk = next(self._it, None)
+                if chunk is None:
+                    break
+                if not isinstance(chunk, bytes | bytearray | memoryview):
+                    raise InvalidInput("archive stream: a chunk is not bytes; nothing was kept")
+                self._chunk, self._pos = bytes(chunk), 0
+                self._received += len(self._chunk)
+                if self._received > self._limit:
+                    raise InvalidInput("archive is larger than its limits allow; nothing was kept")
+                continue
+            part = self._chunk[self._pos : self._pos + want - got]
+            self._pos += len(part)
+            got += len(part)
+            parts.append(part)
+        return parts[0] if len(parts) == 1 else b"".join(parts)
 
 
 class _Member(tarfile.TarInfo):
