@@ -3,6 +3,7 @@ library decides who may do what. Success bodies are the documents `mindward ... 
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import datetime as dt
 import json
@@ -64,8 +65,6 @@ async def _lifespan(app: FastAPI) -> AsyncIterator[None]:
     service: Service | None = app.state.service
     tasks = []
     if service is not None:
-        import asyncio
-
         tasks = [asyncio.ensure_future(service.sweep_forever()),
                  asyncio.ensure_future(service.expire_forever())]
     try:
@@ -109,8 +108,8 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _internal_error(request: Request, exc: Exception) -> Response:
-    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service operator "
-                                  "can rerun with MINDWARD_DEBUG=1", 1))
+    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service's own log "
+                                  "says where (a bug: please report it)", 1))
 
 
 # -- calling the library -------------------------------------------------------------------------------
@@ -162,7 +161,7 @@ async def access_check(body: models.AccessCheck, request: Request, credentials: 
 @router.get("/budget", name="budget", operation_id="budget")
 async def budget(request: Request, credentials: Credentials, purpose: str | None = None) -> Response:
     """Privacy budget spent per purpose (`budget`)."""
-    return await _call(request, credentials, "budget", lambda v: v.budget(purpose))
+    return await _call(request, credentials, "budget", lambda v: v.budget(purpose or None))
 
 
 # -- the audit log -------------------------------------------------------------------------------------
@@ -282,8 +281,6 @@ async def ingest_eeg(pid: str, request: Request, credentials: Credentials,
     length = request.headers.get("content-length", "")
     if not length.isdigit():
         raise vault.UsageError("an upload needs a Content-Length header")
-    import asyncio
-
     stream = BodyStream(asyncio.get_running_loop(), int(length))
 
     def ingest(v: vault.Vault) -> Any:
