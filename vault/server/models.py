@@ -64,3 +64,12 @@ class Withdrawal(Body):
 
 class Sweep(Body):
     dry_run: bool = False
+
+
+class ErrorBody(Body):
+    """Every error answer: one line, the exit code of docs/cli.md, and where to look."""
+
+    error: str
+    exit_code: int = Field(ge=1, le=11)
+    hint: str | None
+    param: str | None
