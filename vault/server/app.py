@@ -6,7 +6,6 @@ from __future__ import annotations
 import contextlib
 import datetime as dt
 import json
-import os
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 from typing import Annotated, Any
@@ -22,7 +21,7 @@ import vault
 from vault.server import models
 from vault.server.limits import BodyLimit
 from vault.server.replies import document, error_body, headers_of, of_error, status_of
-from vault.server.service import Service, memory_file, policy_folder
+from vault.server.service import Service, policy_folder
 from vault.server.uploads import BodyStream, stream_into
 
 BEARER = HTTPBearer(auto_error=False, description="A member's token (mwt1-...), issued by a steward.")
@@ -330,14 +329,7 @@ async def ingest_scores(request: Request, credentials: Credentials,
                         kind: Annotated[str, Query()]) -> Response:
     """Derived scores or explicit ratings (one transaction); the CSV is held in memory only."""
     data = await request.body()
-
-    def ingest(v: vault.Vault) -> Any:
-        fd, path = memory_file(data)
-        try:
-            return v.ingest_scores(path, kind)
-        finally:
-            os.close(fd)
-    return await _call(request, credentials, "ingest.scores", ingest)
+    return await _call(request, credentials, "ingest.scores", lambda v: v.ingest_scores_bytes(data, kind))
 
 
 # -- exports -------------------------------------------------------------------------------------------
@@ -372,10 +364,7 @@ async def exports_archive(export_id: str, request: Request, credentials: Credent
     service = _service(request)
     folder: Path = await service.call(_token(credentials), _client(request), "exports.archive",
                                       lambda v: service.outbox.find(export_id, v.member))
-    try:
-        from vault.formats.archive import pack
-    except ImportError:
-        raise vault.UsageError("export archives are not available in this version yet") from None
+    from vault.formats.archive import pack
 
     def chunks() -> Any:
         yield from pack(folder)
