@@ -1,4 +1,5 @@
-"""The JSON request bodies (pydantic): unknown fields refused, every field typed."""
+"""The JSON request bodies (pydantic): unknown fields refused, every field typed and taken only as
+the type the OpenAPI document states (strict: no 0 for false, no "2" for 2)."""
 
 from __future__ import annotations
 
@@ -8,7 +9,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 
 class Body(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)
 
 
 class AccessCheck(Body):
