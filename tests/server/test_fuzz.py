@@ -38,13 +38,25 @@ def _checks() -> list[Any]:
     from schemathesis.checks import not_a_server_error
     from schemathesis.specs.openapi.checks import (
         content_type_conformance,
+        negative_data_rejection,
         response_headers_conformance,
         response_schema_conformance,
         status_code_conformance,
     )
 
+    from schemathesis.core.parameters import ParameterLocation
+
+    def invalid_data_refused(ctx: Any, response: Any, case: Any) -> bool | None:
+        """An invalid request is refused; a case invalid only in its headers (the Authorization
+        header, the only one the document has) is not, as this test sends its own."""
+        negative = [where for where, part in (case.meta.components.items() if case.meta else ())
+                    if part.mode.is_negative]
+        if negative and all(where is ParameterLocation.HEADER for where in negative):
+            return None
+        return negative_data_rejection(ctx, response, case)
+
     return [not_a_server_error, status_code_conformance, content_type_conformance,
-            response_headers_conformance, response_schema_conformance]
+            response_headers_conformance, response_schema_conformance, invalid_data_refused]
 
 
 class Callers:
