@@ -3,6 +3,7 @@ library decides who may do what. Success bodies are the documents `mindward ... 
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import datetime as dt
 import json
@@ -91,8 +92,6 @@ async def _lifespan(app: FastAPI) -> AsyncIterator[None]:
     service: Service | None = app.state.service
     tasks = []
     if service is not None:
-        import asyncio
-
         tasks = [asyncio.ensure_future(service.sweep_forever()),
                  asyncio.ensure_future(service.expire_forever())]
     try:
@@ -136,8 +135,8 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _internal_error(request: Request, exc: Exception) -> Response:
-    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service operator "
-                                  "can rerun with MINDWARD_DEBUG=1", 1))
+    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service's own log "
+                                  "says where (a bug: please report it)", 1))
 
 
 # -- calling the library -------------------------------------------------------------------------------
@@ -189,7 +188,7 @@ async def access_check(body: models.AccessCheck, request: Request, credentials: 
 @router.get("/budget", name="budget", operation_id="budget")
 async def budget(request: Request, credentials: Credentials, purpose: str | None = None) -> Response:
     """Privacy budget spent per purpose (`budget`)."""
-    return await _call(request, credentials, "budget", lambda v: v.budget(purpose))
+    return await _call(request, credentials, "budget", lambda v: v.budget(purpose or None))
 
 
 # -- the audit log -------------------------------------------------------------------------------------
@@ -309,8 +308,6 @@ async def ingest_eeg(pid: str, request: Request, credentials: Credentials,
     length = request.headers.get("content-length", "")
     if not length.isdigit():
         raise vault.UsageError("an upload needs a Content-Length header")
-    import asyncio
-
     stream = BodyStream(asyncio.get_running_loop(), int(length))
 
     def ingest(v: vault.Vault) -> Any:
@@ -385,7 +382,7 @@ async def exports_check(body: models.ExportCheck, request: Request, credentials:
 async def policy_show(request: Request, credentials: Credentials) -> Response:
     """The pinned policy set (`policy show`)."""
     return await _call(request, credentials, "policy.show", lambda v: {
-        "version": v.policy.version, "lines": vault.describe_policy(v.policy)})
+        "version": v.policy.version, "lines": v.policy.lines()})
 
 
 @router.post("/policy", name="policy.apply", operation_id="policy_apply")
