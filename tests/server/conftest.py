@@ -47,6 +47,7 @@ class Running:
     start: dict[str, Any]
     vault: Path
     stderr: list[bytes] = field(default_factory=list)
+    reader: threading.Thread | None = None
 
     @property
     def url(self) -> str:
@@ -68,6 +69,19 @@ class Running:
         if self.proc.poll() is None:
             self.proc.send_signal(signal.SIGTERM)
         return self.proc.wait(timeout=START_GUARD_S)
+
+    def kill(self) -> int:
+        """SIGKILL, as a crash or a power cut stops it (no cleanup of any kind); the exit code,
+        once its output has been read to the end and its pipes are closed."""
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGKILL)
+        code = self.proc.wait(timeout=START_GUARD_S)
+        if self.reader is not None:
+            self.reader.join(timeout=START_GUARD_S)
+        for pipe in (self.proc.stdout, self.proc.stderr):
+            if pipe is not None:
+                pipe.close()
+        return code
 
 
 def launch(vault_path: Path, *extra: str, passphrase: str | None = TEST_PASSPHRASE,
@@ -95,7 +109,8 @@ def start(vault_path: Path, *extra: str, **kw: Any) -> Running:
         proc.wait()
         raise AssertionError(f"the service exited {proc.returncode}: {proc.stderr.read().decode()}")
     running = Running(proc, json.loads(line), vault_path)
-    threading.Thread(target=lambda: running.stderr.extend(proc.stderr), daemon=True).start()
+    running.reader = threading.Thread(target=lambda: running.stderr.extend(proc.stderr), daemon=True)
+    running.reader.start()
     return running
 
 

@@ -27,7 +27,34 @@ from vault.server.uploads import BodyStream, stream_into
 
 BEARER = HTTPBearer(auto_error=False, description="A member's token (mwt1-...), issued by a steward.")
 Credentials = Annotated[HTTPAuthorizationCredentials | None, Depends(BEARER)]
-router = APIRouter(prefix="/v1")
+
+def _errors() -> dict[int | str, dict[str, Any]]:
+    """The error answers every endpoint may give, documented so that a client (or a fuzzer
+    reading this document) can hold the service to them: status, body shape, required headers."""
+    def header(description: str) -> dict[str, Any]:
+        return {"required": True, "description": description, "schema": {"type": "string"}}
+
+    retry = {"Retry-After": header("Seconds to wait before trying again.")}
+    described = {
+        400: ("Usage error: a malformed request (exit 2).", {}),
+        401: ("Authentication failed (exit 3).",
+              {"WWW-Authenticate": header("The scheme to authenticate with: Bearer.")}),
+        403: ("Refused by the consent policy or the member's role (exit 4).", {}),
+        404: ("Not found (exit 6).", {}),
+        405: ("The method is not allowed on this path (exit 2).", {}),
+        409: ("Integrity failure (exit 5) or conflict with the vault's state (exit 7).", {}),
+        413: ("The body is over this endpoint's limit; nothing was stored (exit 8).", {}),
+        422: ("Malformed input; nothing was stored (exit 8).", {}),
+        429: ("Too many failed authentications from this client (exit 10).", retry),
+        500: ("Internal error (exit 1).", {}),
+        503: ("Every export slot is in use (exit 10).", retry),
+        507: ("Not enough disk space; nothing was stored (exit 9).", {}),
+    }
+    return {status: {"model": models.ErrorBody, "description": text, "headers": headers}
+            for status, (text, headers) in described.items()}
+
+
+router = APIRouter(prefix="/v1", responses=_errors())
 TOML = {"requestBody": {"required": True, "content": {
     "application/toml": {"schema": {"type": "string", "description": "A filled consent form (TOML)."}}}}}
 CSV = {"requestBody": {"required": True, "content": {

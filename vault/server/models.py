@@ -1,4 +1,5 @@
-"""The JSON request bodies (pydantic): unknown fields refused, every field typed."""
+"""The JSON request bodies (pydantic): unknown fields refused, every field typed and taken only as
+the type the OpenAPI document states (strict: no 0 for false, no "2" for 2)."""
 
 from __future__ import annotations
 
@@ -8,7 +9,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 
 class Body(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)
 
 
 class AccessCheck(Body):
@@ -64,3 +65,12 @@ class Withdrawal(Body):
 
 class Sweep(Body):
     dry_run: bool = False
+
+
+class ErrorBody(Body):
+    """Every error answer: one line, the exit code of docs/cli.md, and where to look."""
+
+    error: str
+    exit_code: int = Field(ge=1, le=11)
+    hint: str | None
+    param: str | None
