@@ -548,6 +548,14 @@ class Vault:
 
         return ingest_scores(self._context(), Path(path), kind)
 
+    def ingest_scores_bytes(self, data: bytes, kind: str, *, name: str = "upload.csv") -> dict[str, Any]:
+        """`ingest_scores` for a CSV that arrives as bytes (an upload, at most 256 MiB); `name`,
+        the upload's file name, must end in .csv if it has a suffix. Nothing is written to disk
+        but the encrypted batches."""
+        from vault.services.ingest import ingest_scores_bytes
+
+        return ingest_scores_bytes(self._context(), data, kind, name=name)
+
     # -- exports ------------------------------------------------------------------------------------
 
     def export_eeg(self, purpose: str, out: Path, *, recipient: str | None = None,

@@ -77,7 +77,9 @@ PUBLIC: dict[str, str] = {
     "ingest.event_codes_for": "anyone",
     "ingest.scrub_clear_metadata": "anyone",  # what every open does
     "ingest.ingest_eeg": "steward",
+    "ingest.ingest_eeg_stream": "steward",
     "ingest.ingest_scores": "steward",
+    "ingest.ingest_scores_bytes": "steward",
     "report.record_of_processing": "steward",
     "withdraw.request_withdrawal": "steward",
     "withdraw.pending": "steward",

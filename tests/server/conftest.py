@@ -113,7 +113,9 @@ def serve() -> Iterator[Any]:
     for running in started:
         if running.proc.poll() is None:
             running.proc.kill()
-            running.proc.wait()
+        running.proc.wait()
+        running.proc.stdout.close()
+        running.proc.stderr.close()
 
 
 @dataclass(frozen=True)

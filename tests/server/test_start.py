@@ -111,13 +111,15 @@ def test_the_text_start_line_is_one_line(tmp_path: Path) -> None:
     with Vault.init(tmp_path / "v", TEST_PASSPHRASE) as v:
         v.make_served(TEST_PASSPHRASE)
     env = {k: v for k, v in os.environ.items() if not k.startswith("MINDWARD_")}
-    proc = subprocess.Popen([sys.executable, "-m", "vault", "serve", "--vault", str(tmp_path / "v"),
-                             "--port", "0", "--sweep-every-hours", "0"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL,
-                            env={**env, "MINDWARD_PASSPHRASE": TEST_PASSPHRASE})
-    try:
-        line = proc.stdout.readline().decode()
-        assert line.startswith("mindward: serving vault ") and "no scheduled sweep" in line
-    finally:
-        proc.terminate()
-        assert proc.wait(timeout=120) == 0
+    with subprocess.Popen([sys.executable, "-m", "vault", "serve", "--vault", str(tmp_path / "v"),
+                           "--port", "0", "--sweep-every-hours", "0"],
+                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL,
+                          env={**env, "MINDWARD_PASSPHRASE": TEST_PASSPHRASE}) as proc:
+        try:
+            line = proc.stdout.readline().decode()
+            assert line.startswith("mindward: serving vault ") and "no scheduled sweep" in line
+        finally:
+            proc.terminate()
+            _, err = proc.communicate(timeout=120)
+        assert proc.returncode == 0
+        assert "Caution" in err.decode()

@@ -370,8 +370,7 @@ def read_stream_header(stream: SupportsRead, size: int) -> tuple[EdfHeader, byte
     `size` (header plus every data record, exactly); returns the parsed header, its raw
     bytes and the reader to hand to `deidentified_stream`."""
     if isinstance(size, bool) or not isinstance(size, int) or size < 0:
-        raise UsageError("the announced size must be a byte count (a non-negative integer)",
-                         param="size")
+        raise UsageError("the announced size must be a byte count (a non-negative integer)")
     read = stream_reader(stream)
     header, raw = header_from(read, size)
     return header, raw, read

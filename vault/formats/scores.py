@@ -41,12 +41,16 @@ class ScoreRow:
     value: float
 
 
-def read_rows(path: Path, category: str, spec: Category) -> list[ScoreRow]:
-    """Every row of a scores file, validated against the category's type and range."""
-    try:
-        raw = Path(path).read_bytes()
-    except OSError as exc:
-        raise NotFound(f"cannot read {path}") from exc
+def read_rows(source: Path | bytes, category: str, spec: Category) -> list[ScoreRow]:
+    """Every row of a scores file (a path, or its bytes as uploaded), validated against the
+    category's type and range."""
+    if isinstance(source, bytes | bytearray | memoryview):
+        raw = bytes(source)
+    else:
+        try:
+            raw = Path(source).read_bytes()
+        except OSError as exc:
+            raise NotFound(f"cannot read {source}") from exc
     if len(raw) > MAX_BYTES:
         raise InvalidInput("scores file: larger than 256 MiB; split it")
     try:

@@ -7,6 +7,7 @@ signs a tree head over the session's entries)."""
 from __future__ import annotations
 
 import json
+import signal
 from collections.abc import Callable
 from typing import Any
 
@@ -31,7 +32,7 @@ def serve(options: ServeOptions, passphrase: Callable[[], str],
         opened = worker.call(vault.Vault.open, options.vault, secret)
         del secret
         try:
-            if not opened.served:
+            if not worker.call(lambda: opened.served):
                 raise vault.UsageError("this vault is not set up to be served: its members still "
                                        "hold key slots", hint="serve-setup")
             service = Service(opened, worker, options)
@@ -81,6 +82,13 @@ def _announcing(config: Any, options: ServeOptions, facts: dict[str, Any],
     import uvicorn
 
     class Announcing(uvicorn.Server):
+        def handle_exit(self, sig: int, frame: Any) -> None:
+            """Stop gracefully and return (uvicorn would raise the signal again afterwards, killing
+            the process before the vault is closed and its session's head signed)."""
+            if self.should_exit and sig == signal.SIGINT:
+                self.force_exit = True  # a second Ctrl-C: stop waiting for requests
+            self.should_exit = True
+
         async def startup(self, sockets: Any = None) -> None:
             await super().startup(sockets=sockets)
             if self.started:

@@ -201,7 +201,7 @@ def ingest_eeg_stream(ctx: Context, pid: str, stream: SupportsRead, size: int, *
     now, codes = _begin_eeg(ctx, pid, event_codes)
     if Path(str(name)).suffix.lower() in (".npy", ".npz"):
         raise UsageError("a streamed recording is EDF, EDF+ or BDF; NumPy arrays are ingested "
-                         "from a file with their sidecar", param="name")
+                         "from a file with their sidecar")
     header, raw, read = read_stream_header(stream, size)
     offset, new_offset = _date_offset(ctx, pid, known_start_date(header) or OFFSET_REFERENCE)
     options = DeidOptions(date_offset_days=offset, event_codes=codes, keep_sex=keep_sex,
@@ -279,13 +279,14 @@ def _already_stored(ctx: Context, pid: str, blob_id: str, fmt: str, now: dt.date
             "deidentification": None, "recording": {"format": fmt}, "identity_kept": False}
 
 
-def ingest_scores(ctx: Context, path: Path, kind: str) -> dict[str, Any]:
+def ingest_scores(ctx: Context, source: Path | bytes, kind: str) -> dict[str, Any]:
+    """Store a scores file (a path, or the bytes of an upload): all rows or none."""
     ctx.require_steward("ingest.scores")
     now = ctx.now()
     if kind not in SCORE_KINDS:
         raise UsageError("the score kind is 'derived' or 'explicit'", param="kind")
     category = SCORE_KINDS[kind]
-    rows = scores.read_rows(path, category, ctx.policy.categories[category])
+    rows = scores.read_rows(source, category, ctx.policy.categories[category])
     groups = scores.by_participant(rows)
     known = registry.latest_consents(ctx.conn, list(groups))
     for pid, group in groups.items():
@@ -328,3 +329,13 @@ def ingest_scores(ctx: Context, path: Path, kind: str) -> dict[str, Any]:
         raise
     return {"category": category, "participants": len(groups), "rows": len(rows),
             "batches_stored": len(plan), "batches_already_stored": skipped}
+
+
+def ingest_scores_bytes(ctx: Context, data: bytes, kind: str, *, name: str) -> dict[str, Any]:
+    """`ingest_scores` for the bytes of an uploaded CSV (`name`: its file name)."""
+    ctx.require_steward("ingest.scores")
+    if not isinstance(data, bytes | bytearray | memoryview):
+        raise UsageError("scores data must be bytes (the CSV file's content)")
+    if Path(str(name)).suffix.lower() not in ("", ".csv"):
+        raise UsageError("a scores upload is a CSV file")
+    return ingest_scores(ctx, bytes(data), kind)
