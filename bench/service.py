@@ -1,0 +1,303 @@
+"""The service against the same use cases called in-process, measured in the same run.
+
+A throw-away vault is made for the bench (a cohort enrolled from invented consent forms, a few
+invented EEG recordings ingested), converted for serving, and measured twice:
+
+- in-process: the steward's open vault, one thread: `Vault.access_summary` for the cohort, and
+  `Vault.export_eeg` (bytes of the finished dataset per second);
+- through `mindward serve` started as a subprocess on a loopback port: the same access check from
+  16 concurrent clients (threads, httpx, keep-alive) with the steward's token, and the same export
+  as the remote client receives it (POST the export, download its archive, unpack, verify with the
+  vault's public key).
+
+The targets are ratios of the two (service / in-process). The service makes every vault call on one
+thread (the vault's SQLite connection belongs to it), so its access-check rate is bounded by that
+thread: token check (a keyed tag and an audited entry) plus the check itself, one call at a time.
+`vault_thread_per_s` measures that ceiling in-process. Nothing here is participant data; the vault
+lives in the system's temporary directory and is deleted afterwards.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import queue
+import shutil
+import signal
+import statistics
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+from vault.api import Vault
+
+_PASSPHRASE = "benchmark passphrase, not a secret"  # noqa: S105 (throw-away vault)
+TARGETS = {"service_access_vs_inprocess": (">=", 0.5), "service_export_vs_inprocess": (">=", 0.7)}
+PURPOSE = "primary-analysis"
+CATEGORIES = ["eeg-raw"]
+START_GUARD_S = 120.0  # a liveness guard for a service that never starts, not a speed check
+_FORM = """form_version = "NSL-2026-DISH/1"
+signed = 2026-03-02
+expires = 2031-03-02
+[participant]
+code = "SB-{n:05d}"
+[purposes.primary-analysis]
+granted = [{granted}]
+explicit = true
+"""
+_ALL = '"eeg-raw", "scores-derived", "ratings-explicit", "demographics"'
+_NO_EEG = '"ratings-explicit"'
+
+
+def _timed(fn: Callable[[], Any]) -> tuple[float, Any]:
+    start = time.perf_counter()
+    result = fn()
+    return time.perf_counter() - start, result
+
+
+def _quantile(values: list[float], q: float) -> float:
+    """Nearest-rank quantile (common practice), in milliseconds."""
+    ordered = sorted(values)
+    return 1000 * ordered[min(len(ordered) - 1, max(0, round(q * len(ordered)) - 1))]
+
+
+# -- the vault ------------------------------------------------------------------------------------
+
+
+def build_vault(root: Path, *, participants: int, recordings: int, record_s: int) -> dict[str, Any]:
+    """A served vault: `participants` enrolled (one in ten without EEG consent, so the check has
+    someone to leave out), `recordings` of them with an invented 64-channel EDF+ of `record_s` s.
+    Returns the vault's path, the steward's token and the vault's public key."""
+    from mindward_bench.edf import write_test_edf
+
+    edf = root / "service-bench.edf"
+    write_test_edf(edf, duration_s=record_s, n_channels=64, rate=1000)
+    with Vault.init(root / "vault", _PASSPHRASE) as v:
+        pids = [v.enrol(_FORM.format(n=i, granted=_NO_EEG if i % 10 == 9 else _ALL).encode())
+                ["participant_id"] for i in range(participants)]
+        for pid in [p for i, p in enumerate(pids) if i % 10 != 9][:recordings]:
+            v.ingest_eeg(pid, edf)
+        v.make_served(_PASSPHRASE)
+        token = v.issue_token(v.member)["token"]
+        public_key = v.public_key
+    edf.unlink()
+    return {"vault": root / "vault", "token": token, "public_key": public_key}
+
+
+def _dataset_bytes(folder: Path) -> int:
+    return sum(f.stat().st_size for f in folder.rglob("*") if f.is_file())
+
+
+# -- in-process -----------------------------------------------------------------------------------
+
+
+def in_process(vault_path: Path, token: str, root: Path, *, checks: int,
+               exports: int) -> dict[str, Any]:
+    """The steward's open vault, one thread: access checks, the vault thread's ceiling per
+    service call, EEG exports."""
+    from vault.server.replies import document
+
+    with Vault.open(vault_path, _PASSPHRASE) as v:
+        first = v.access_summary(PURPOSE, CATEGORIES)  # warm
+        t_checks, _ = _timed(lambda: [v.access_summary(PURPOSE, CATEGORIES) for _ in range(checks)])
+
+        def as_service() -> None:  # what the vault's thread does per call, with the reply encoding
+            view = v.authenticate(token, client="127.0.0.1", operation="access.check")
+            document(view.access_summary(PURPOSE, CATEGORIES))
+
+        t_thread, _ = _timed(lambda: [as_service() for _ in range(checks)])
+        export_s, sizes = [], []
+        for i in range(exports):
+            out = root / f"local-export-{i}"
+            seconds, _ = _timed(lambda out=out: v.export_eeg(PURPOSE, out))
+            export_s.append(seconds)
+            sizes.append(_dataset_bytes(out))
+            shutil.rmtree(out)
+    return {"included": first["included"], "participants": first["eligible"],
+            "access_per_s": checks / t_checks, "vault_thread_per_s": checks / t_thread,
+            "export_s": export_s, "dataset_bytes": sizes[0]}
+
+
+# -- the service ----------------------------------------------------------------------------------
+
+
+class Served:
+    """`mindward serve` on a free loopback port (port 0; the JSON start line says which)."""
+
+    def __init__(self, vault_path: Path) -> None:
+        env = {k: v for k, v in os.environ.items() if not k.startswith("MINDWARD_")}
+        env["MINDWARD_PASSPHRASE"] = _PASSPHRASE
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "vault", "serve", "--vault", str(vault_path), "--port", "0",
+             "--json"], stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+            env=env)
+        lines: queue.Queue[bytes] = queue.Queue()
+        threading.Thread(target=lambda: lines.put(self.proc.stdout.readline()), daemon=True).start()
+        try:
+            line = lines.get(timeout=START_GUARD_S)
+        except queue.Empty:
+            self.stop()
+            raise RuntimeError("mindward serve did not start") from None
+        if not line:
+            self.proc.wait()
+            raise RuntimeError(f"mindward serve exited {self.proc.returncode}: "
+                               + self.proc.stderr.read().decode(errors="replace").strip()[-500:])
+        facts = json.loads(line)
+        if "url" not in facts:
+            self.stop()
+            raise RuntimeError(f"mindward serve did not start: {facts.get('error', facts)}")
+        self.origin = facts["url"].removesuffix("/v1")
+
+    def stop(self) -> None:
+        """SIGTERM, as a service manager stops it (the vault closes and signs a head)."""
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout=START_GUARD_S)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+
+
+def _client(origin: str, token: str) -> Any:
+    import httpx
+
+    return httpx.Client(base_url=origin, headers={"Authorization": f"Bearer {token}"},
+                        timeout=600)
+
+
+def service_access(origin: str, token: str, *, clients: int, checks: int,
+                   included: int) -> dict[str, Any]:
+    """`checks` access checks from `clients` threads at once, each with its own keep-alive
+    connection; every reply must be the in-process document's cohort."""
+    sessions = [_client(origin, token) for _ in range(clients)]
+    latencies: list[float] = []
+    errors: list[str] = []
+    left = iter(range(checks))
+    lock = threading.Lock()
+    ready = threading.Barrier(clients + 1)
+
+    def check(session: Any) -> float:
+        start = time.perf_counter()
+        reply = session.post("/v1/access/check", json={"purpose": PURPOSE, "categories": CATEGORIES})
+        seconds = time.perf_counter() - start
+        if reply.status_code != 200 or reply.json()["included"] != included:
+            raise RuntimeError(f"access check through the service: HTTP {reply.status_code}")
+        return seconds
+
+    def worker(session: Any) -> None:
+        try:
+            check(session)  # connect and warm, before the clock starts
+        except Exception as exc:  # reported below
+            errors.append(str(exc))
+        ready.wait()
+        ready.wait()
+        try:
+            while True:
+                with lock:
+                    if errors or next(left, None) is None:
+                        return
+                seconds = check(session)
+                with lock:
+                    latencies.append(seconds)
+        except Exception as exc:  # reported below: the run must not count a failed call
+            errors.append(str(exc))
+
+    threads = [threading.Thread(target=worker, args=(s,)) for s in sessions]
+    for thread in threads:
+        thread.start()
+    ready.wait()  # every client connected
+    start = time.perf_counter()
+    ready.wait()
+    for thread in threads:
+        thread.join()
+    wall = time.perf_counter() - start
+    for session in sessions:
+        session.close()
+    if errors:
+        raise RuntimeError(f"{len(errors)} service calls failed: {errors[0]}")
+    return {"access_per_s": len(latencies) / wall, "p50_ms": _quantile(latencies, 0.5),
+            "p99_ms": _quantile(latencies, 0.99), "calls": len(latencies)}
+
+
+def service_export(origin: str, token: str, public_key: bytes, root: Path, i: int) -> float:
+    """One export as the remote client receives it; its seconds, the folder verified."""
+    import vault
+    from vault.formats.archive import unpack
+
+    dest = root / f"remote-export-{i}"
+    dest.mkdir(mode=0o700)
+    with _client(origin, token) as session:
+        start = time.perf_counter()
+        made = session.post("/v1/exports/eeg", json={"purpose": PURPOSE, "recipient": None,
+                                                     "demographics": False})
+        if made.status_code != 200:
+            raise RuntimeError(f"export through the service: HTTP {made.status_code} {made.text[:300]}")
+        result = made.json()
+        with session.stream("GET", result["archive"]) as archive:
+            if archive.status_code != 200:
+                raise RuntimeError(f"export archive: HTTP {archive.status_code}")
+            unpack(archive.iter_bytes(), dest, max_bytes=1 << 40, max_files=1_000_000)
+        report = vault.verify_export(dest, public_key)
+        seconds = time.perf_counter() - start
+    if not report["ok"] or report.get("export_id") != result["export_id"]:
+        raise RuntimeError(f"the export from the service does not verify: {report.get('problems')}")
+    shutil.rmtree(dest)
+    return seconds
+
+
+# -- the run ----------------------------------------------------------------------------------------
+
+
+def bench_service(workdir: Path, *, participants: int = 1000, recordings: int = 8,
+                  record_s: int = 60, clients: int = 16, local_checks: int = 40,
+                  service_checks: int = 320, exports: int = 3) -> dict[str, Any]:
+    """The figures of the service benchmark (see the module's docstring)."""
+    root = workdir / "service"
+    root.mkdir()
+    try:
+        built = build_vault(root, participants=participants, recordings=recordings, record_s=record_s)
+        local = in_process(built["vault"], built["token"], root, checks=local_checks, exports=exports)
+        served = Served(built["vault"])
+        try:
+            remote = service_access(served.origin, built["token"], clients=clients,
+                                    checks=service_checks, included=local["included"])
+            remote_export_s = [service_export(served.origin, built["token"], built["public_key"],
+                                              root, i) for i in range(exports)]
+        finally:
+            served.stop()
+    finally:
+        shutil.rmtree(root, ignore_errors=True)
+    size = local["dataset_bytes"]
+    local_rate = size / min(local["export_s"])
+    remote_rate = size / min(remote_export_s)
+    return {
+        "service_participants": participants, "service_included": local["included"],
+        "service_clients": clients, "service_calls": remote["calls"],
+        "inprocess_access_per_s": local["access_per_s"], "vault_thread_per_s": local["vault_thread_per_s"],
+        "service_access_per_s": remote["access_per_s"],
+        "service_access_vs_inprocess": remote["access_per_s"] / local["access_per_s"],
+        "service_access_p50_ms": remote["p50_ms"], "service_access_p99_ms": remote["p99_ms"],
+        "service_dataset_mib": size / (1 << 20), "service_recordings": recordings,
+        "inprocess_export_mib_s": local_rate / (1 << 20), "service_export_mib_s": remote_rate / (1 << 20),
+        "service_export_vs_inprocess": remote_rate / local_rate,
+        "inprocess_export_runs_s": local["export_s"], "service_export_runs_s": remote_export_s,
+        "service_export_p50_ms": 1000 * statistics.median(remote_export_s),
+        "service_export_max_ms": 1000 * max(remote_export_s),
+    }
+
+
+def format_lines(figures: dict[str, Any]) -> Iterator[str]:
+    yield ("  service: access check for {service_participants} participants ({service_included} "
+           "included): in-process {inprocess_access_per_s:.1f}/s, through the service with "
+           "{service_clients} clients {service_access_per_s:.1f}/s (p50 {service_access_p50_ms:.0f} ms, "
+           "p99 {service_access_p99_ms:.0f} ms over {service_calls} calls; the vault thread's ceiling "
+           "{vault_thread_per_s:.1f}/s)".format(**figures))
+    yield ("  service: EEG export of {service_recordings} recordings ({service_dataset_mib:.0f} MiB): "
+           "in-process {inprocess_export_mib_s:.0f} MiB/s, received and verified through the service "
+           "{service_export_mib_s:.0f} MiB/s (p50 {service_export_p50_ms:.0f} ms, max "
+           "{service_export_max_ms:.0f} ms)".format(**figures))
