@@ -1,18 +1,20 @@
 """The service against the same use cases called in-process, measured in the same run.
 
 A throw-away vault is made for the bench (a cohort enrolled from invented consent forms, a few
-invented EEG recordings ingested), converted for serving, and measured twice:
+invented EEG recordings ingested), converted for serving, copied (a vault is locked while open),
+and measured both ways, the runs of each side alternating so that neither gets a quieter machine:
 
-- in-process: the steward's open vault, one thread: `Vault.access_summary` for the cohort, and
-  `Vault.export_eeg` (bytes of the finished dataset per second);
+- in-process: the steward's open vault (the copy), one thread: `Vault.access_summary` for the
+  cohort, and `Vault.export_eeg` (bytes of the finished dataset per second);
 - through `mindward serve` started as a subprocess on a loopback port: the same access check from
   16 concurrent clients (threads, httpx, keep-alive) with the steward's token, and the same export
   as the remote client receives it (POST the export, download its archive, unpack, verify with the
   vault's public key).
 
-The targets are ratios of the two (service / in-process). The service makes every vault call on one
-thread (the vault's SQLite connection belongs to it), so its access-check rate is bounded by that
-thread: token check (a keyed tag and an audited entry) plus the check itself, one call at a time.
+The targets are ratios of the two (service / in-process), each side's fastest run. The service
+makes every vault call on one thread (the vault's SQLite connection belongs to it), so its
+access-check rate is bounded by that thread: token check (a keyed tag and an audited entry) plus
+the check itself, one call at a time.
 `vault_thread_per_s` measures that ceiling in-process. Nothing here is participant data; the vault
 lives in the system's temporary directory and is deleted afterwards.
 """
@@ -94,50 +96,54 @@ def _dataset_bytes(folder: Path) -> int:
 # -- in-process -----------------------------------------------------------------------------------
 
 
-def in_process(vault_path: Path, token: str, root: Path, *, checks: int,
-               exports: int) -> dict[str, Any]:
-    """The steward's open vault, one thread: access checks, the vault thread's ceiling per
-    service call, EEG exports."""
-    from vault.server.replies import document
+class Local:
+    """The steward's open vault (a copy of the served one), one thread: the same use cases."""
 
-    with Vault.open(vault_path, _PASSPHRASE) as v:
-        first = v.access_summary(PURPOSE, CATEGORIES)  # warm
-        t_checks, _ = _timed(lambda: [v.access_summary(PURPOSE, CATEGORIES) for _ in range(checks)])
+    def __init__(self, vault_path: Path, token: str, root: Path) -> None:
+        self.vault = Vault.open(vault_path, _PASSPHRASE)
+        self.token = token
+        self.root = root
+        self.first = self.vault.access_summary(PURPOSE, CATEGORIES)  # warm
 
-        def as_service() -> None:  # what the vault's thread does per call, with the reply encoding
-            view = v.authenticate(token, client="127.0.0.1", operation="access.check")
+    def access_per_s(self, checks: int) -> float:
+        seconds, _ = _timed(lambda: [self.vault.access_summary(PURPOSE, CATEGORIES)
+                                     for _ in range(checks)])
+        return checks / seconds
+
+    def vault_thread_per_s(self, checks: int) -> float:
+        """What the service's vault thread does per call (token check, access check, the reply
+        encoded), one call after another: the ceiling of the service's rate."""
+        from vault.server.replies import document
+
+        def as_service() -> None:
+            view = self.vault.authenticate(self.token, client="127.0.0.1", operation="access.check")
             document(view.access_summary(PURPOSE, CATEGORIES))
 
-        t_thread, _ = _timed(lambda: [as_service() for _ in range(checks)])
-        export_s, sizes = [], []
-        for i in range(exports):
-            out = root / f"local-export-{i}"
-            seconds, _ = _timed(lambda out=out: v.export_eeg(PURPOSE, out))
-            export_s.append(seconds)
-            sizes.append(_dataset_bytes(out))
-            if i < exports - 1:
-                shutil.rmtree(out)
-        public_key = v.public_key
-    return {"included": first["included"], "participants": first["eligible"],
-            "access_per_s": checks / t_checks, "vault_thread_per_s": checks / t_thread,
-            "export_s": export_s, "dataset_bytes": sizes[0],
-            **_handover(out, public_key, root / "local-unpacked")}
+        seconds, _ = _timed(lambda: [as_service() for _ in range(checks)])
+        return checks / seconds
 
+    def export(self, i: int) -> tuple[float, Path]:
+        out = self.root / f"local-export-{i}"
+        seconds, _ = _timed(lambda: self.vault.export_eeg(PURPOSE, out))
+        return seconds, out
 
-def _handover(out: Path, public_key: bytes, dest: Path) -> dict[str, float]:
-    """What the service adds to an export besides HTTP, without it: pack and unpack the
-    finished folder in one process, then verify it."""
-    import vault
-    from vault.formats.archive import pack, unpack
+    def handover(self, out: Path) -> dict[str, float]:
+        """What the service adds to an export besides HTTP, without it: pack and unpack the
+        finished folder in one process, then verify it."""
+        import vault
+        from vault.formats.archive import pack, unpack
 
-    dest.mkdir(mode=0o700)
-    t_pack, _ = _timed(lambda: unpack(pack(out), dest, max_bytes=1 << 40, max_files=1_000_000))
-    t_verify, report = _timed(lambda: vault.verify_export(dest, public_key))
-    if not report["ok"]:
-        raise RuntimeError(f"the bench's export does not verify: {report['problems']}")
-    shutil.rmtree(dest)
-    shutil.rmtree(out)
-    return {"pack_unpack_s": t_pack, "verify_s": t_verify}
+        dest = self.root / "local-unpacked"
+        dest.mkdir(mode=0o700)
+        t_pack, _ = _timed(lambda: unpack(pack(out), dest, max_bytes=1 << 40, max_files=1_000_000))
+        t_verify, report = _timed(lambda: vault.verify_export(dest, self.vault.public_key))
+        if not report["ok"]:
+            raise RuntimeError(f"the bench's export does not verify: {report['problems']}")
+        shutil.rmtree(dest)
+        return {"pack_unpack": t_pack, "verify": t_verify}
+
+    def close(self) -> None:
+        self.vault.close()
 
 
 # -- the service ----------------------------------------------------------------------------------
@@ -192,58 +198,62 @@ def _client(origin: str, token: str) -> Any:
                         timeout=600)
 
 
-def service_access(origin: str, token: str, *, clients: int, checks: int,
-                   included: int) -> dict[str, Any]:
-    """`checks` access checks from `clients` threads at once, each with its own keep-alive
-    connection; every reply must be the in-process document's cohort."""
-    sessions = [_client(origin, token) for _ in range(clients)]
-    latencies: list[float] = []
-    errors: list[str] = []
-    left = iter(range(checks))
-    lock = threading.Lock()
-    ready = threading.Barrier(clients + 1)
+class Clients:
+    """`clients` threads, each with its own keep-alive connection, sending access checks; every
+    reply must hold the in-process document's cohort."""
 
-    def check(session: Any) -> float:
+    def __init__(self, origin: str, token: str, *, clients: int, included: int) -> None:
+        self.sessions = [_client(origin, token) for _ in range(clients)]
+        self.included = included
+        self.latencies: list[float] = []
+        for session in self.sessions:
+            self._check(session)  # connect and warm
+
+    def _check(self, session: Any) -> float:
         start = time.perf_counter()
         reply = session.post("/v1/access/check", json={"purpose": PURPOSE, "categories": CATEGORIES})
         seconds = time.perf_counter() - start
-        if reply.status_code != 200 or reply.json()["included"] != included:
+        if reply.status_code != 200 or reply.json()["included"] != self.included:
             raise RuntimeError(f"access check through the service: HTTP {reply.status_code}")
         return seconds
 
-    def worker(session: Any) -> None:
-        try:
-            check(session)  # connect and warm, before the clock starts
-        except Exception as exc:  # reported below
-            errors.append(str(exc))
-        ready.wait()
-        ready.wait()
-        try:
-            while True:
-                with lock:
-                    if errors or next(left, None) is None:
-                        return
-                seconds = check(session)
-                with lock:
-                    latencies.append(seconds)
-        except Exception as exc:  # reported below: the run must not count a failed call
-            errors.append(str(exc))
+    def access_per_s(self, checks: int) -> float:
+        """`checks` calls from every client at once; the calls answered per second."""
+        errors: list[str] = []
+        left = iter(range(checks))
+        lock = threading.Lock()
+        go = threading.Barrier(len(self.sessions) + 1)
+        answered: list[float] = []
 
-    threads = [threading.Thread(target=worker, args=(s,)) for s in sessions]
-    for thread in threads:
-        thread.start()
-    ready.wait()  # every client connected
-    start = time.perf_counter()
-    ready.wait()
-    for thread in threads:
-        thread.join()
-    wall = time.perf_counter() - start
-    for session in sessions:
-        session.close()
-    if errors:
-        raise RuntimeError(f"{len(errors)} service calls failed: {errors[0]}")
-    return {"access_per_s": len(latencies) / wall, "p50_ms": _quantile(latencies, 0.5),
-            "p99_ms": _quantile(latencies, 0.99), "calls": len(latencies)}
+        def worker(session: Any) -> None:
+            go.wait()
+            try:
+                while True:
+                    with lock:
+                        if errors or next(left, None) is None:
+                            return
+                    seconds = self._check(session)
+                    with lock:
+                        answered.append(seconds)
+            except Exception as exc:  # reported below: the run must not count a failed call
+                errors.append(str(exc))
+
+        threads = [threading.Thread(target=worker, args=(s,)) for s in self.sessions]
+        for thread in threads:
+            thread.start()
+        go.wait()
+        start = time.perf_counter()
+        for thread in threads:
+            thread.join()
+        wall = time.perf_counter() - start
+        if errors:
+            raise RuntimeError(f"{len(errors)} service calls failed: {errors[0]}")
+        self.latencies += answered
+        return len(answered) / wall
+
+    def close(self) -> None:
+        for session in self.sessions:
+            session.close()
 
 
 def service_export(origin: str, token: str, public_key: bytes, root: Path,
@@ -281,45 +291,67 @@ def service_export(origin: str, token: str, public_key: bytes, root: Path,
 
 
 def bench_service(workdir: Path, *, participants: int = 1000, recordings: int = 8,
-                  record_s: int = 60, clients: int = 16, local_checks: int = 40,
-                  service_checks: int = 320, exports: int = 3) -> dict[str, Any]:
-    """The figures of the service benchmark (see the module's docstring)."""
+                  record_s: int = 60, clients: int = 16, local_checks: int = 20,
+                  service_checks: int = 128, rounds: int = 3, exports: int = 3) -> dict[str, Any]:
+    """The figures of the service benchmark (see the module's docstring). In-process and service
+    runs alternate (`rounds` of access checks, `exports` exports each), on two copies of one
+    vault, so that neither side gets a quieter machine; each side's fastest run counts."""
     root = workdir / "service"
     root.mkdir()
     try:
         built = build_vault(root, participants=participants, recordings=recordings, record_s=record_s)
-        local = in_process(built["vault"], built["token"], root, checks=local_checks, exports=exports)
-        served = Served(built["vault"])
+        shutil.copytree(built["vault"], root / "twin")  # the vault is locked while served
+        local = Local(root / "twin", built["token"], root)
         try:
-            remote = service_access(served.origin, built["token"], clients=clients,
-                                    checks=service_checks, included=local["included"])
-            remote_exports = [service_export(served.origin, built["token"], built["public_key"],
-                                             root, i) for i in range(exports)]
+            served = Served(built["vault"])
+            try:
+                remote = Clients(served.origin, built["token"], clients=clients,
+                                 included=local.first["included"])
+                try:
+                    local_rates, thread_rates, remote_rates = [], [], []
+                    for _ in range(rounds):
+                        local_rates.append(local.access_per_s(local_checks))
+                        thread_rates.append(local.vault_thread_per_s(local_checks))
+                        remote_rates.append(remote.access_per_s(service_checks))
+                finally:
+                    remote.close()
+                local_exports, remote_exports = [], []
+                for i in range(exports):
+                    seconds, out = local.export(i)
+                    local_exports.append(seconds)
+                    size = _dataset_bytes(out)
+                    handover = local.handover(out) if i == exports - 1 else {}
+                    shutil.rmtree(out)
+                    remote_exports.append(service_export(served.origin, built["token"],
+                                                         built["public_key"], root, i))
+            finally:
+                served.stop()
         finally:
-            served.stop()
+            local.close()
     finally:
         shutil.rmtree(root, ignore_errors=True)
-    size = local["dataset_bytes"]
     remote_export_s = [run["s"] for run in remote_exports]
     fastest = min(remote_exports, key=lambda run: run["s"])
-    local_rate = size / min(local["export_s"])
-    remote_rate = size / fastest["s"]
+    local_rate, remote_rate = size / min(local_exports), size / fastest["s"]
+    latencies = remote.latencies
     return {
-        "service_participants": participants, "service_included": local["included"],
-        "service_clients": clients, "service_calls": remote["calls"],
-        "inprocess_access_per_s": local["access_per_s"], "vault_thread_per_s": local["vault_thread_per_s"],
-        "service_access_per_s": remote["access_per_s"],
-        "service_access_vs_inprocess": remote["access_per_s"] / local["access_per_s"],
-        "service_access_p50_ms": remote["p50_ms"], "service_access_p99_ms": remote["p99_ms"],
+        "service_participants": participants, "service_included": local.first["included"],
+        "service_clients": clients, "service_calls": len(latencies), "service_rounds": rounds,
+        "inprocess_access_per_s": max(local_rates), "vault_thread_per_s": max(thread_rates),
+        "service_access_per_s": max(remote_rates),
+        "service_access_vs_inprocess": max(remote_rates) / max(local_rates),
+        "inprocess_access_runs_per_s": local_rates, "service_access_runs_per_s": remote_rates,
+        "service_access_p50_ms": _quantile(latencies, 0.5),
+        "service_access_p99_ms": _quantile(latencies, 0.99),
         "service_dataset_mib": size / (1 << 20), "service_recordings": recordings,
         "inprocess_export_mib_s": local_rate / (1 << 20), "service_export_mib_s": remote_rate / (1 << 20),
         "service_export_vs_inprocess": remote_rate / local_rate,
-        "inprocess_export_runs_s": local["export_s"], "service_export_runs_s": remote_export_s,
+        "inprocess_export_runs_s": local_exports, "service_export_runs_s": remote_export_s,
         "service_export_p50_ms": 1000 * statistics.median(remote_export_s),
         "service_export_max_ms": 1000 * max(remote_export_s),
         "service_export_parts_s": {"export_call": fastest["export_call_s"],
                                    "receive_unpack": fastest["receive_s"], "verify": fastest["verify_s"]},
-        "inprocess_handover_s": {"pack_unpack": local["pack_unpack_s"], "verify": local["verify_s"]},
+        "inprocess_handover_s": handover,
     }
 
 

@@ -8,7 +8,7 @@ import pytest
 from mindward_bench.run import SERVICE_SIZES
 
 TINY = {"participants": 20, "recordings": 1, "record_s": 2, "clients": 3, "local_checks": 2,
-        "service_checks": 7, "exports": 2}
+        "service_checks": 7, "rounds": 2, "exports": 2}
 
 
 @pytest.fixture(scope="module")
@@ -22,7 +22,10 @@ def figures(tmp_path_factory: pytest.TempPathFactory) -> dict:
 def test_the_service_bench_reports_both_sides_of_each_ratio(figures: dict) -> None:
     # one in ten of the bench's participants did not grant raw EEG (bench/service.py's forms)
     assert figures["service_participants"] == 20 and figures["service_included"] == 18
-    assert figures["service_calls"] == TINY["service_checks"]  # every call answered and counted
+    # every call answered and counted, each side measured in every round
+    assert figures["service_calls"] == TINY["service_checks"] * TINY["rounds"]
+    assert len(figures["inprocess_access_runs_per_s"]) == len(figures["service_access_runs_per_s"]) == 2
+    assert figures["service_access_per_s"] == max(figures["service_access_runs_per_s"])
     for name in ("inprocess_access_per_s", "service_access_per_s", "vault_thread_per_s",
                  "inprocess_export_mib_s", "service_export_mib_s"):
         assert figures[name] > 0, name
@@ -64,5 +67,5 @@ def test_an_export_that_does_not_verify_gives_no_figure(tmp_path, monkeypatch) -
 
     monkeypatch.setattr(vault, "verify_export", tampered)
     with pytest.raises(RuntimeError, match="from the service does not verify"):
-        service_bench.bench_service(tmp_path, **{**TINY, "exports": 1, "service_checks": 3})
+        service_bench.bench_service(tmp_path, **{**TINY, "exports": 1, "rounds": 1, "service_checks": 3})
     assert not any(tmp_path.iterdir())
