@@ -33,6 +33,7 @@ def test_the_service_bench_reports_both_sides_of_each_ratio(figures: dict) -> No
         figures["service_access_per_s"] / figures["inprocess_access_per_s"])
     assert figures["service_export_vs_inprocess"] == pytest.approx(
         figures["service_export_mib_s"] / figures["inprocess_export_mib_s"])
+    assert figures["service_bench_s"] > 0
     assert 0 < figures["service_access_p50_ms"] <= figures["service_access_p99_ms"]
     assert len(figures["service_export_runs_s"]) == len(figures["inprocess_export_runs_s"]) == 2
     parts = figures["service_export_parts_s"]
