@@ -48,7 +48,6 @@ _LAZY: dict[str, tuple[str, str]] = {
     "verify_receipt_file": ("vault.api", "verify_receipt_file"),
     "load_json": ("vault.formats.strictjson", "loads"),
     "load_policy_dir": ("vault.policy.policyset", "load_policy_dir"),
-    "describe_policy": ("vault.policy.describe", "describe_policy"),
     "check_output_path": ("vault.storage.files", "check_output_path"),
     "write_output": ("vault.storage.files", "write_output"),
 }
@@ -70,7 +69,6 @@ __all__ = [
     "check_consistency",
     "check_output_path",
     "describe",
-    "describe_policy",
     "load_json",
     "load_policy_dir",
     "parse_public_key",
@@ -101,7 +99,6 @@ if TYPE_CHECKING:  # what type checkers and IDEs see; at run time __getattr__ lo
         verify_receipt_file,
     )
     from vault.formats.strictjson import loads as load_json
-    from vault.policy.describe import describe_policy
     from vault.policy.policyset import load_policy_dir
     from vault.storage.files import check_output_path, write_output
 

@@ -316,6 +316,8 @@ CONTRACT_PLANTS: dict[str, dict[str, str]] = {
     "sqlite": {"audit/planted.py": "import sqlite3\n"},
     "storage-keyless": {"storage/planted.py": "from vault import crypto\n"},
     "cli-public": {"cli/planted.py": "from vault.storage import db\n"},
+    "server-public": {"server/planted.py": "from vault.access import door\n"},
+    "web-framework": {"services/planted.py": "import fastapi\n"},
     "services-acyclic": {"services/planted_a.py": "from vault.services import planted_b\n",
                          "services/planted_b.py": "from vault.services import planted_a\n"},
 }

@@ -174,6 +174,37 @@ def test_an_export_archive_is_only_for_the_member_who_made_it(lab, serve, tmp_pa
             data = b"".join(got.iter_bytes())
         # a tar stream (POSIX ustar magic at offset 257 of the first header: common practice)
         assert data[257:262] == b"ustar"
+        # read by the standard library's tar reader (independent of our packer), then verified
+        # with the vault's public key alone, as the remote client does before keeping it
+        import io
+        import tarfile
+
+        received = tmp_path / "received"
+        received.mkdir()
+        with tarfile.open(fileobj=io.BytesIO(data), mode="r:") as tar:
+            names = tar.getnames()
+            assert "manifest.json" in names and not any(n.startswith(("/", "..")) for n in names)
+            tar.extractall(received, filter="data")
+        from vault import describe, verify_export
+
+        key = bytes.fromhex(describe(lab.vault)["public_key"])
+        assert verify_export(received, key)["ok"]
         again = analyst.get(archive)  # downloaded completely once: gone
         assert again.status_code == 404
     assert not (lab.vault / "outbox" / made.json()["export_id"]).exists()
+
+
+def test_failed_authentications_are_throttled_per_client(lab, serve) -> None:
+    """More than 10 failures from one address in a minute (the library's rule) answer 429 with
+    Retry-After; another address with a good token is not held back."""
+    running = serve(lab.vault)
+    statuses = []
+    with running.client("mwt1-" + "f" * 16 + "0" * 64, source="127.0.0.253") as http:
+        for _ in range(13):
+            statuses.append(http.get("/v1/info"))
+    codes = [r.status_code for r in statuses]
+    assert codes[:10] == [401] * 10 and codes[-1] == 429, codes
+    throttled = statuses[-1]
+    assert error_of(throttled)["exit_code"] == 10 and throttled.headers["retry-after"].isdigit()
+    with running.client(lab.tokens["auditor"], source="127.0.0.254") as http:
+        assert http.get("/v1/info").status_code == 200

@@ -75,8 +75,6 @@ def report_markdown(record: dict[str, Any]) -> str:
 
 
 def describe_policy(policy: Any) -> list[str]:
-    """What `mindward policy check` and `policy show` print (the library's lines, which the
+    """What `mindward policy check` and `policy show` print (the policy set's own lines, which the
     service serves too)."""
-    import vault
-
-    return vault.describe_policy(policy)
+    return list(policy.lines())

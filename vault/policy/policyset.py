@@ -276,6 +276,13 @@ class PolicySet:
     def special_categories(self) -> frozenset[str]:
         return frozenset(c for c, cat in self.categories.items() if cat.special_category)
 
+    def lines(self) -> list[str]:
+        """The set as lines of text, one per definition, then its warnings (`policy show`, and
+        the service's GET /v1/policy: one wording for both)."""
+        from vault.policy.describe import describe_policy
+
+        return describe_policy(self)
+
     def warnings(self) -> list[str]:
         """Things that load but make the decision engine refuse; shown by `policy check`."""
         out = []

@@ -3,10 +3,10 @@ library decides who may do what. Success bodies are the documents `mindward ... 
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import datetime as dt
 import json
-import os
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 from typing import Annotated, Any
@@ -22,7 +22,7 @@ import vault
 from vault.server import models
 from vault.server.limits import BodyLimit
 from vault.server.replies import document, error_body, headers_of, of_error, status_of
-from vault.server.service import Service, memory_file, policy_folder
+from vault.server.service import Service, policy_folder
 from vault.server.uploads import BodyStream, stream_into
 
 BEARER = HTTPBearer(auto_error=False, description="A member's token (mwt1-...), issued by a steward.")
@@ -65,8 +65,6 @@ async def _lifespan(app: FastAPI) -> AsyncIterator[None]:
     service: Service | None = app.state.service
     tasks = []
     if service is not None:
-        import asyncio
-
         tasks = [asyncio.ensure_future(service.sweep_forever()),
                  asyncio.ensure_future(service.expire_forever())]
     try:
@@ -110,8 +108,8 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _internal_error(request: Request, exc: Exception) -> Response:
-    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service operator "
-                                  "can rerun with MINDWARD_DEBUG=1", 1))
+    return _reply(500, error_body(f"internal error ({type(exc).__name__}); the service's own log "
+                                  "says where (a bug: please report it)", 1))
 
 
 # -- calling the library -------------------------------------------------------------------------------
@@ -163,7 +161,7 @@ async def access_check(body: models.AccessCheck, request: Request, credentials: 
 @router.get("/budget", name="budget", operation_id="budget")
 async def budget(request: Request, credentials: Credentials, purpose: str | None = None) -> Response:
     """Privacy budget spent per purpose (`budget`)."""
-    return await _call(request, credentials, "budget", lambda v: v.budget(purpose))
+    return await _call(request, credentials, "budget", lambda v: v.budget(purpose or None))
 
 
 # -- the audit log -------------------------------------------------------------------------------------
@@ -283,8 +281,6 @@ async def ingest_eeg(pid: str, request: Request, credentials: Credentials,
     length = request.headers.get("content-length", "")
     if not length.isdigit():
         raise vault.UsageError("an upload needs a Content-Length header")
-    import asyncio
-
     stream = BodyStream(asyncio.get_running_loop(), int(length))
 
     def ingest(v: vault.Vault) -> Any:
@@ -303,14 +299,7 @@ async def ingest_scores(request: Request, credentials: Credentials,
                         kind: Annotated[str, Query()]) -> Response:
     """Derived scores or explicit ratings (one transaction); the CSV is held in memory only."""
     data = await request.body()
-
-    def ingest(v: vault.Vault) -> Any:
-        fd, path = memory_file(data)
-        try:
-            return v.ingest_scores(path, kind)
-        finally:
-            os.close(fd)
-    return await _call(request, credentials, "ingest.scores", ingest)
+    return await _call(request, credentials, "ingest.scores", lambda v: v.ingest_scores_bytes(data, kind))
 
 
 # -- exports -------------------------------------------------------------------------------------------
@@ -345,10 +334,7 @@ async def exports_archive(export_id: str, request: Request, credentials: Credent
     service = _service(request)
     folder: Path = await service.call(_token(credentials), _client(request), "exports.archive",
                                       lambda v: service.outbox.find(export_id, v.member))
-    try:
-        from vault.formats.archive import pack
-    except ImportError:
-        raise vault.UsageError("export archives are not available in this version yet") from None
+    from vault.formats.archive import pack
 
     def chunks() -> Any:
         yield from pack(folder)
@@ -369,7 +355,7 @@ async def exports_check(body: models.ExportCheck, request: Request, credentials:
 async def policy_show(request: Request, credentials: Credentials) -> Response:
     """The pinned policy set (`policy show`)."""
     return await _call(request, credentials, "policy.show", lambda v: {
-        "version": v.policy.version, "lines": vault.describe_policy(v.policy)})
+        "version": v.policy.version, "lines": v.policy.lines()})
 
 
 @router.post("/policy", name="policy.apply", operation_id="policy_apply")

@@ -7,6 +7,7 @@ from __future__ import annotations
 import os
 import re
 import shutil
+import threading
 import time
 import uuid
 from dataclasses import dataclass
@@ -31,6 +32,7 @@ class Outbox:
         self.root = Path(vault_path) / OUTBOX_NAME
         self.keep_s = keep_s
         self._waiting: dict[str, Waiting] = {}
+        self._lock = threading.Lock()  # the vault's thread publishes, download threads finish
         self.root.mkdir(mode=0o700, exist_ok=True)
         os.chmod(self.root, 0o700)
         for leftover in self.root.iterdir():  # after the vault's own recovery at open
@@ -45,7 +47,8 @@ class Outbox:
             raise NotFound("the export has an unexpected id")
         final = self.root / export_id
         os.replace(run, final)
-        self._waiting[export_id] = Waiting(final, member, time.monotonic())
+        with self._lock:
+            self._waiting[export_id] = Waiting(final, member, time.monotonic())
         return final
 
     def discard(self, run: Path) -> None:
@@ -53,7 +56,8 @@ class Outbox:
 
     def find(self, export_id: str, member: str) -> Path:
         """The folder of a waiting export, for the member who made it only."""
-        waiting = self._waiting.get(export_id)
+        with self._lock:
+            waiting = self._waiting.get(export_id)
         if (waiting is None or waiting.member != member
                 or time.monotonic() - waiting.made_at > self.keep_s or not waiting.folder.is_dir()):
             raise NotFound(f"no export {export_id} waiting for you (an export is kept for its maker "
@@ -61,13 +65,15 @@ class Outbox:
         return waiting.folder
 
     def done(self, export_id: str) -> None:
-        waiting = self._waiting.pop(export_id, None)
+        with self._lock:
+            waiting = self._waiting.pop(export_id, None)
         if waiting is not None:
             _remove(waiting.folder)
 
     def expire(self) -> int:
         now = time.monotonic()
-        old = [e for e, w in self._waiting.items() if now - w.made_at > self.keep_s]
+        with self._lock:
+            old = [e for e, w in self._waiting.items() if now - w.made_at > self.keep_s]
         for export_id in old:
             self.done(export_id)
         return len(old)

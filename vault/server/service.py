@@ -100,15 +100,3 @@ def policy_folder(files: dict[str, str]) -> tempfile.TemporaryDirectory[str]:
                        encoding="utf-8") as handle:
             handle.write(text)
     return folder
-
-
-def memory_file(data: bytes) -> tuple[int, Path]:
-    """`data` in an anonymous in-memory file (never on disk), and the path that reads it."""
-    if not hasattr(os, "memfd_create"):
-        raise vault.UsageError("uploading scores needs Linux (an in-memory file); ingest them "
-                               "locally instead")
-    fd = os.memfd_create("mindward-upload", os.MFD_CLOEXEC)
-    view = memoryview(data)
-    while view:
-        view = view[os.write(fd, view):]
-    return fd, Path(f"/proc/self/fd/{fd}")
