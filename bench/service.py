@@ -14,9 +14,9 @@ and measured both ways, the runs of each side alternating so that neither gets a
 The targets are ratios of the two (service / in-process), each side's fastest run. The service
 makes every vault call on one thread (the vault's SQLite connection belongs to it), so its
 access-check rate is bounded by that thread: token check (a keyed tag and an audited entry) plus
-the check itself, one call at a time.
-`vault_thread_per_s` measures that ceiling in-process. Nothing here is participant data; the vault
-lives in the system's temporary directory and is deleted afterwards.
+the check itself, one call at a time. `vault_thread_per_s` measures that ceiling in-process (with
+the reply's JSON encoding). Nothing here is participant data; the vault lives in the system's
+temporary directory and is deleted afterwards.
 """
 
 from __future__ import annotations
