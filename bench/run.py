@@ -31,7 +31,7 @@ from vault.storage import db as storage
 
 # the [bench] extra: checked here, so that `mindward bench` without it says how to install it
 # (the CLI maps this ImportError) instead of failing halfway through a run
-for _name in ("edfio", "pandas", "opendp"):
+for _name in ("edfio", "pandas", "opendp", "httpx"):
     if importlib.util.find_spec(_name) is None:
         raise ModuleNotFoundError(f"mindward bench needs {_name} (the [bench] extra)", name=_name)
 
@@ -45,6 +45,15 @@ _TARGETS = {
     "withdraw_1gib_vs_1mib": ("<=", 2.0), "receipt_verify_ms": ("<", 50.0),
     "export_matrix_vs_pandas": ("<=", 1.5), "sampler_vs_opendp": (">=", 10.0),
     "startup_vs_typer": ("<=", 1.5),
+    "service_access_vs_inprocess": (">=", 0.5), "service_export_vs_inprocess": (">=", 0.7),
+}
+
+# the service benchmark (bench/service.py): the full run's cohort is the one issue 15 states
+SERVICE_SIZES = {
+    "full": {"participants": 1000, "recordings": 8, "record_s": 60, "clients": 16,
+             "local_checks": 20, "service_checks": 128, "rounds": 3, "exports": 3},
+    "quick": {"participants": 200, "recordings": 2, "record_s": 10, "clients": 16,
+              "local_checks": 5, "service_checks": 32, "rounds": 2, "exports": 2},
 }
 
 
@@ -363,6 +372,9 @@ def run_all(*, quick: bool = False) -> dict[str, Any]:
         samplers = bench_samplers()
         figures.update(sampler_laplace_per_s=samplers["laplace_per_s"],
                        sampler_vs_opendp=samplers["laplace_ratio"] or 0.0)
+        from mindward_bench.service import bench_service
+
+        figures.update(bench_service(workdir, **SERVICE_SIZES["quick" if quick else "full"]))
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
     figures["targets"] = {name: {"rule": f"{op} {limit}", "value": figures[name],
@@ -396,6 +408,9 @@ def format_report(figures: dict[str, Any]) -> str:
                  "python -c 'import typer' {startup_typer_s:.3f} s (medians of {startup_runs}); "
                  "heavy modules at import: ".format(**figures)
                  + (", ".join(figures["startup_heavy_modules"]) or "none"))
+    from mindward_bench.service import format_lines
+
+    lines.extend(format_lines(figures))
     if figures["quick"]:
         lines.append("  (quick sizes: the targets are stated for the full run)")
     return "\n".join(lines)

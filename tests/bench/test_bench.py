@@ -16,7 +16,8 @@ def test_quick_bench_reports_every_target(capsys) -> None:
     assert set(report["targets"]) >= {"store_vs_raw", "read_vs_raw", "store_1gib_peak_mib",
                                       "audit_single_vs_sqlite", "audit_batch_vs_sqlite",
                                       "audit_verify_vs_hashlib", "decisions_per_s",
-                                      "ingest_vs_read_aes", "ingest_peak_mib"}
+                                      "ingest_vs_read_aes", "ingest_peak_mib",
+                                      "service_access_vs_inprocess", "service_export_vs_inprocess"}
     for target in report["targets"].values():
         assert isinstance(target["met"], bool) and target["value"] > 0
     # the baselines were really measured in this run
