@@ -208,3 +208,27 @@ def test_failed_authentications_are_throttled_per_client(lab, serve) -> None:
     assert error_of(throttled)["exit_code"] == 10 and throttled.headers["retry-after"].isdigit()
     with running.client(lab.tokens["auditor"], source="127.0.0.254") as http:
         assert http.get("/v1/info").status_code == 200
+
+
+def test_a_forwarded_for_header_neither_escapes_the_throttle_nor_names_the_client(lab, serve) -> None:
+    """A caller on loopback sending a new X-Forwarded-For (or Forwarded) address with every
+    guess: still throttled after 10 as one address, and the log names the real peer. (From
+    127.0.0.1 itself: the address uvicorn would trust such headers from by default.)"""
+    running = serve(lab.vault)  # a fresh process: no failures counted yet
+    codes = []
+    with running.client("mwt1-" + "e" * 16 + "0" * 64, source="127.0.0.1") as http:
+        for i in range(12):
+            spoof = f"203.0.113.{i + 1}"
+            codes.append(http.get("/v1/info", headers={"X-Forwarded-For": spoof,
+                                                        "Forwarded": f"for={spoof}",
+                                                        "X-Real-IP": spoof}).status_code)
+    assert codes[:10] == [401] * 10 and codes[10:] == [429, 429], codes
+    running.stop()
+    from tests.conftest import TEST_PASSPHRASE
+    from vault import Vault
+
+    with Vault.open(lab.vault, TEST_PASSPHRASE) as v:
+        refused = [e for e in v.audit_entries() if e["action"] == "auth.token"
+                   and e["decision"] == "refuse"]
+    clients = {e["details"]["client"] for e in refused}
+    assert "127.0.0.1" in clients and not any(c.startswith("203.0.113.") for c in clients)

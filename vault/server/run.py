@@ -41,6 +41,10 @@ def serve(options: ServeOptions, passphrase: Callable[[], str],
                 build_app(service), host=options.host, port=options.port,
                 ssl_certfile=str(options.tls_cert) if options.tls_cert else None,
                 ssl_keyfile=str(options.tls_key) if options.tls_key else None,
+                # the peer's own address only: forwarded-for headers (which uvicorn trusts from
+                # loopback by default) would let any local caller pick the address the throttle
+                # counts and the audit log names
+                proxy_headers=False, forwarded_allow_ips="",
                 log_level="warning", access_log=False, server_header=False, lifespan="on",
                 timeout_graceful_shutdown=30)
             _announcing(config, options, facts, on_start).run()
