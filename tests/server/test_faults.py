@@ -8,7 +8,9 @@ service is started again on the same vault (which opens it, recovering what was 
   file of the vault);
 - an export is all-or-nothing: the outbox holds nothing after the restart (the archive endpoint
   serves no run that is not done), every export run is in a final state, and the budget ledger is
-  exactly what the exports the lineage records charged;
+  exactly what the exports the lineage records charged, plus the runs voided after their files
+  were being written (their charge stands by design, vault/services/export_runs.py: a caller who
+  could kill the process and copy the half-written files must not get the budget back);
 - an upload is all-or-nothing: the participant has no recording, or the complete one (uploading
   the file again finds it stored);
 - a withdrawal is all-or-nothing: processed with a receipt and the participant erased, or still
@@ -24,6 +26,7 @@ from __future__ import annotations
 
 import datetime as dt
 import itertools
+import json
 import os
 import random
 import shutil
@@ -192,6 +195,12 @@ def _check_exports(lab: Lab) -> None:
     charged: Counter[str] = Counter(pid for (pid,) in _rows(
         lab.vault, "SELECT pid FROM export_members JOIN exports USING (export_id) "
                    "WHERE purpose = ?", PURPOSE))
+    voided = {e for (e,) in _rows(lab.vault, "SELECT export_id FROM export_runs WHERE state = 'void' "
+                                             "AND purpose = ?", PURPOSE)}
+    for (raw,) in _rows(lab.vault, "SELECT entry FROM audit_log"):  # what each voided run charged
+        entry = json.loads(raw)
+        if entry.get("action") == "budget.charge" and entry["details"].get("export") in voided:
+            charged.update(entry["subjects"])
     ledger = dict(_rows(lab.vault, "SELECT pid, epsilon FROM budget_ledger WHERE purpose = ?",
                         PURPOSE))
     assert {pid: Fraction(e) for pid, e in ledger.items() if Fraction(e)} == {
